@@ -1,0 +1,1 @@
+"""gripsight planning: cell file, arm kinematics, motion, checks and outputs (no images, no OpenCV)."""

@@ -1,0 +1,311 @@
+"""Arm geometry: forward and inverse kinematics for three elbow linkages, vectorised over N poses.
+
+Joints (angles in radians inside, degrees at the edges):
+
+- ``base``: yaw about the table's z axis, 0 along +x, positive toward +y.
+- ``shoulder``: upper-arm elevation above horizontal.
+- ``elbow``: the elbow servo's angle. The forearm's absolute elevation psi depends on the linkage:
+  ``serial`` psi = shoulder + elbow; ``parallel`` psi = elbow (parallelogram drive);
+  ``four_bar`` psi from the closure of :class:`planning.linkage.FourBar` with elbow = crank angle.
+
+Forward kinematics, in the arm's vertical plane (r radial, z up), with u(t) = (cos t, sin t)::
+
+    wrist = (shoulder_offset, base_height) + L2 u(shoulder) + L3 u(psi)
+    tool  = wrist + (reach, -drop)                           tool kept level
+    tool  = wrist + reach u(psi) - drop u(psi + 90 deg)      tool fixed to the forearm
+    x, y  = r cos(base), r sin(base)
+
+Inverse kinematics is closed form (law of cosines on the shoulder-wrist triangle), elbow ``up`` (the
+elbow above the shoulder-to-wrist line) or ``down``. Every target gets a :class:`Reason`; angles are
+kept for targets that only fail a limit (so a report can quote the value) and are NaN where no
+geometric solution exists (``out_of_reach``, ``linkage_cannot_assemble``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import Enum, IntEnum
+
+import numpy as np
+
+from planning.angles import wrap_angle
+from planning.linkage import FourBar, grashof_class
+from planning.servo import ServoMap
+
+__all__ = ["Arm", "Branch", "IKSolution", "Linkage", "Reason", "JOINT_NAMES"]
+
+JOINT_NAMES = ("base", "shoulder", "elbow")
+_LIMIT_TOL_RAD = 1e-9
+
+
+class Linkage(str, Enum):
+    SERIAL = "serial"
+    PARALLEL = "parallel"
+    FOUR_BAR = "four_bar"
+
+
+class Branch(str, Enum):
+    UP = "up"
+    DOWN = "down"
+
+
+class Reason(IntEnum):
+    """Why a pose cannot be used; ``OK`` if it can. ``label`` is the text used in outputs."""
+
+    OK = 0
+    OUT_OF_REACH = 1
+    LINKAGE_CANNOT_ASSEMBLE = 2
+    ELBOW_INTERIOR = 3
+    JOINT_LIMIT_BASE = 4
+    JOINT_LIMIT_SHOULDER = 5
+    JOINT_LIMIT_ELBOW = 6
+
+    @property
+    def label(self) -> str:
+        return {
+            0: "ok", 1: "out_of_reach", 2: "linkage_cannot_assemble", 3: "elbow_interior",
+            4: "joint_limit:base", 5: "joint_limit:shoulder", 6: "joint_limit:elbow",
+        }[int(self)]
+
+
+_JOINT_LIMIT_REASONS = (Reason.JOINT_LIMIT_BASE, Reason.JOINT_LIMIT_SHOULDER, Reason.JOINT_LIMIT_ELBOW)
+
+
+@dataclass(frozen=True)
+class IKSolution:
+    """Result of :meth:`Arm.inverse` for N targets.
+
+    Attributes
+    ----------
+    joints_rad : ndarray, shape (N, 3)
+        base, shoulder, elbow servo angles in radians (NaN rows where no geometric solution exists).
+    forearm_rad : ndarray, shape (N,)
+        Absolute forearm elevation psi.
+    reason : ndarray of int, shape (N,)
+        :class:`Reason` codes; 0 where the pose is usable.
+    """
+
+    joints_rad: np.ndarray
+    forearm_rad: np.ndarray
+    reason: np.ndarray
+
+    @property
+    def ok(self) -> np.ndarray:
+        return self.reason == Reason.OK
+
+    @property
+    def joints_deg(self) -> np.ndarray:
+        return np.degrees(self.joints_rad)
+
+    def reason_labels(self) -> list[str]:
+        return [Reason(int(r)).label for r in self.reason]
+
+
+def _as_points(xyz_mm, name: str = "xyz_mm") -> np.ndarray:
+    arr = np.asarray(xyz_mm, dtype=float)
+    if arr.ndim == 1 and arr.shape[0] == 3:
+        arr = arr[None, :]
+    if arr.ndim != 2 or arr.shape[1] != 3:
+        raise ValueError(f"{name}: expected shape (N, 3), got {arr.shape}")
+    return arr
+
+
+@dataclass(frozen=True)
+class Arm:
+    """A three-joint tabletop arm. Build it from the cell file with :meth:`from_config`."""
+
+    base_height_mm: float
+    shoulder_offset_mm: float
+    upper_arm_mm: float
+    forearm_mm: float
+    tool_reach_mm: float
+    tool_drop_mm: float
+    tool_level: bool
+    linkage: Linkage
+    limits_rad: np.ndarray              # (3, 2) min, max per joint
+    elbow_interior_rad: tuple[float, float]
+    branch: Branch = Branch.UP
+    four_bar: FourBar | None = None
+    servos: tuple[ServoMap, ...] = ()
+    max_speed_rad_s: np.ndarray | None = None
+
+    @classmethod
+    def from_config(cls, arm_cfg) -> "Arm":
+        """Build from a validated ``ArmConfig`` (see :mod:`planning.config`)."""
+        joints = [getattr(arm_cfg.joints, n) for n in JOINT_NAMES]
+        link = arm_cfg.linkage
+        four_bar = None
+        if link.type == "four_bar":
+            four_bar = FourBar(arm_cfg.upper_arm_mm, link.crank_mm, link.coupler_mm, link.rocker_mm,
+                               crossed=link.assembly == "crossed")
+        return cls(
+            base_height_mm=arm_cfg.base_height_mm,
+            shoulder_offset_mm=arm_cfg.shoulder_offset_mm,
+            upper_arm_mm=arm_cfg.upper_arm_mm,
+            forearm_mm=arm_cfg.forearm_mm,
+            tool_reach_mm=arm_cfg.tool.reach_mm,
+            tool_drop_mm=arm_cfg.tool.drop_mm,
+            tool_level=arm_cfg.tool.level,
+            linkage=Linkage(link.type),
+            limits_rad=np.radians([[j.min_deg, j.max_deg] for j in joints]),
+            elbow_interior_rad=tuple(np.radians(arm_cfg.elbow_interior_deg)),
+            branch=Branch(arm_cfg.elbow),
+            four_bar=four_bar,
+            servos=tuple(ServoMap.from_config(n, j.servo) for n, j in zip(JOINT_NAMES, joints)),
+            max_speed_rad_s=np.radians([j.max_speed_deg_s for j in joints]),
+        )
+
+    # ------------------------------------------------------------ linkage
+    def forearm_rad(self, shoulder_rad, elbow_rad) -> np.ndarray:
+        """Absolute forearm elevation psi from the shoulder and elbow servo angles (NaN: cannot assemble)."""
+        th1 = np.asarray(shoulder_rad, dtype=float)
+        th2 = np.asarray(elbow_rad, dtype=float)
+        if self.linkage is Linkage.SERIAL:
+            return th1 + th2
+        if self.linkage is Linkage.PARALLEL:
+            return th2 + 0.0 * th1
+        return self.four_bar.forearm_rad(th1, th2)
+
+    def elbow_servo_rad(self, shoulder_rad, forearm_rad) -> np.ndarray:
+        """Elbow servo angle that gives forearm elevation psi (NaN: cannot assemble)."""
+        th1 = np.asarray(shoulder_rad, dtype=float)
+        psi = np.asarray(forearm_rad, dtype=float)
+        if self.linkage is Linkage.SERIAL:
+            return wrap_angle(psi - th1)
+        if self.linkage is Linkage.PARALLEL:
+            return psi + 0.0 * th1
+        return self.four_bar.crank_rad(th1, psi)
+
+    def elbow_interior_angle_rad(self, shoulder_rad, forearm_rad) -> np.ndarray:
+        """Angle at the elbow between upper arm and forearm: pi - |psi - shoulder| (pi = straight)."""
+        return np.pi - np.abs(wrap_angle(np.asarray(forearm_rad) - np.asarray(shoulder_rad)))
+
+    def grashof(self) -> str | None:
+        """Grashof class of the elbow four-bar (``None`` for a serial elbow)."""
+        if self.linkage is Linkage.FOUR_BAR:
+            fb = self.four_bar
+            return grashof_class(fb.upper_arm_mm, fb.crank_mm, fb.coupler_mm, fb.rocker_mm)
+        if self.linkage is Linkage.PARALLEL:
+            return "change-point"
+        return None
+
+    # ------------------------------------------------------------ forward
+    def _tool_offset(self, psi):
+        if self.tool_level:
+            return np.full_like(psi, self.tool_reach_mm), np.full_like(psi, -self.tool_drop_mm)
+        c, s = np.cos(psi), np.sin(psi)
+        return self.tool_reach_mm * c + self.tool_drop_mm * s, self.tool_reach_mm * s - self.tool_drop_mm * c
+
+    def forward(self, joints_rad) -> np.ndarray:
+        """Tool point in the table frame for joint angles.
+
+        Parameters
+        ----------
+        joints_rad : array_like, shape (N, 3)
+            base, shoulder, elbow servo angles in radians.
+
+        Returns
+        -------
+        ndarray, shape (N, 3)
+            Tool point x, y, z in table mm (NaN rows where the linkage cannot assemble).
+        """
+        q = _as_points(joints_rad, "joints_rad")
+        psi = self.forearm_rad(q[:, 1], q[:, 2])
+        return self._forward_psi(q[:, 0], q[:, 1], psi)
+
+    def _forward_psi(self, base, shoulder, psi):
+        tr, tz = self._tool_offset(psi)
+        r = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(shoulder) + self.forearm_mm * np.cos(psi) + tr
+        z = self.base_height_mm + self.upper_arm_mm * np.sin(shoulder) + self.forearm_mm * np.sin(psi) + tz
+        return np.column_stack([r * np.cos(base), r * np.sin(base), z])
+
+    def elbow_wrist_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
+        """Elbow and wrist points in table mm, each shape (N, 3), for drawing and clearance checks."""
+        q = _as_points(joints_rad, "joints_rad")
+        psi = self.forearm_rad(q[:, 1], q[:, 2])
+        r_e = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(q[:, 1])
+        z_e = self.base_height_mm + self.upper_arm_mm * np.sin(q[:, 1])
+        r_w, z_w = r_e + self.forearm_mm * np.cos(psi), z_e + self.forearm_mm * np.sin(psi)
+        c, s = np.cos(q[:, 0]), np.sin(q[:, 0])
+        return (np.column_stack([r_e * c, r_e * s, z_e]), np.column_stack([r_w * c, r_w * s, z_w]))
+
+    # ------------------------------------------------------------ inverse
+    def inverse(self, xyz_mm, branch: Branch | str | None = None) -> IKSolution:
+        """Joint angles that put the tool point at table points, in closed form.
+
+        Parameters
+        ----------
+        xyz_mm : array_like, shape (N, 3)
+            Tool targets in the table frame, mm.
+        branch : Branch or {'up', 'down'}, optional
+            Elbow branch; default the arm's configured one.
+
+        Returns
+        -------
+        IKSolution
+            Angles and a per-target :class:`Reason` (first failing of: out_of_reach,
+            linkage_cannot_assemble, elbow_interior, joint_limit:base/shoulder/elbow).
+
+        Notes
+        -----
+        A target on the base axis (r = 0) has no defined base yaw; 0 is used.
+        """
+        p = _as_points(xyz_mm)
+        branch = self.branch if branch is None else Branch(branch)
+        x, y, z = p[:, 0], p[:, 1], p[:, 2]
+        r = np.hypot(x, y)
+        base = np.where(r > 1e-9, np.arctan2(y, x), 0.0)
+        l2 = self.upper_arm_mm
+        if self.tool_level:
+            wx = r - self.shoulder_offset_mm - self.tool_reach_mm
+            wz = z + self.tool_drop_mm - self.base_height_mm
+            l3, beta = self.forearm_mm, 0.0
+        else:  # forearm and tool are one rigid link of length l3 at angle beta to the forearm
+            along = self.forearm_mm + self.tool_reach_mm
+            wx, wz = r - self.shoulder_offset_mm, z - self.base_height_mm
+            l3, beta = float(np.hypot(along, self.tool_drop_mm)), float(np.arctan2(-self.tool_drop_mm, along))
+        d = np.hypot(wx, wz)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cos_a = (l2 * l2 + d * d - l3 * l3) / (2.0 * l2 * d)
+        reachable = (np.abs(cos_a) <= 1.0 + 1e-12) & (d > 1e-9)
+        alpha = np.arccos(np.clip(cos_a, -1.0, 1.0))
+        sign = 1.0 if branch is Branch.UP else -1.0
+        shoulder = np.arctan2(wz, wx) + sign * alpha
+        psi = np.arctan2(wz - l2 * np.sin(shoulder), wx - l2 * np.cos(shoulder)) - beta
+        shoulder, psi = wrap_angle(shoulder), wrap_angle(psi)
+        elbow = self.elbow_servo_rad(shoulder, psi)
+
+        reason = np.zeros(len(p), dtype=np.int8)
+        for code, fails in self._limit_failures(base, shoulder, psi, elbow)[::-1]:
+            reason = np.where(fails, code, reason)
+        reason = np.where(np.isnan(elbow) & reachable, Reason.LINKAGE_CANNOT_ASSEMBLE, reason)
+        reason = np.where(~reachable, Reason.OUT_OF_REACH, reason)
+        joints = np.column_stack([base, shoulder, elbow])
+        joints[~reachable] = np.nan
+        psi = np.where(reachable, psi, np.nan)
+        return IKSolution(joints, psi, reason.astype(np.int8))
+
+    def _limit_failures(self, base, shoulder, psi, elbow):
+        """(reason, mask) pairs in priority order, for the limit checks after geometry."""
+        lo_i, hi_i = self.elbow_interior_rad
+        interior = self.elbow_interior_angle_rad(shoulder, psi)
+        out = [(Reason.ELBOW_INTERIOR, ~((interior >= lo_i - _LIMIT_TOL_RAD) & (interior <= hi_i + _LIMIT_TOL_RAD)))]
+        for code, value, (lo, hi) in zip(_JOINT_LIMIT_REASONS, (base, shoulder, elbow), self.limits_rad):
+            with np.errstate(invalid="ignore"):
+                out.append((code, ~((value >= lo - _LIMIT_TOL_RAD) & (value <= hi + _LIMIT_TOL_RAD))))
+        return out
+
+    def check_joints(self, joints_rad) -> np.ndarray:
+        """Reason codes for joint-space poses (limits, interior stop, assembly), shape (N,)."""
+        q = _as_points(joints_rad, "joints_rad")
+        psi = self.forearm_rad(q[:, 1], q[:, 2])
+        reason = np.zeros(len(q), dtype=np.int8)
+        for code, fails in self._limit_failures(q[:, 0], q[:, 1], psi, q[:, 2])[::-1]:
+            reason = np.where(fails, code, reason)
+        return np.where(np.isnan(psi), Reason.LINKAGE_CANNOT_ASSEMBLE, reason).astype(np.int8)
+
+    # ------------------------------------------------------------ servos
+    def pulses_us(self, joints_rad, check: bool = True) -> np.ndarray:
+        """Servo pulse widths for joint angles, shape (N, 3), via each joint's :class:`ServoMap`."""
+        q = np.degrees(_as_points(joints_rad, "joints_rad"))
+        return np.column_stack([s.pulse_us_from_deg(q[:, i], check=check) for i, s in enumerate(self.servos)])

@@ -1,0 +1,155 @@
+"""The ``gripsight`` command line: parse, load the cell, call the library, print.
+
+Heavy modules (numpy, OpenCV, matplotlib, pydantic) are imported inside the commands so that
+``gripsight --help`` starts fast. Every expected error is one line on stderr and a non-zero exit code;
+``--verbose`` adds the trace.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+import traceback
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+app = typer.Typer(
+    name="gripsight",
+    help="Calibrate an overhead camera to the table, find parts, and plan checked pick-and-place "
+         "joint sequences for a small tabletop arm.",
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+)
+
+_state = {"verbose": False}
+
+
+@app.callback()
+def _global(verbose: bool = typer.Option(False, "--verbose", "-v", help="Print the full trace on errors.")):
+    _state["verbose"] = verbose
+
+
+def _echo_err(text: str) -> None:
+    typer.echo(text, err=True)
+
+
+def _guarded(fn):
+    """Turn the library's expected errors into one line on stderr and the error's exit code."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        from planning.errors import CellFileError, GripsightError
+
+        try:
+            return fn(*args, **kwargs)
+        except GripsightError as exc:
+            lines = exc.lines() if isinstance(exc, CellFileError) else [str(exc)]
+            for line in lines:
+                _echo_err(f"error: {line}")
+            if _state["verbose"]:
+                traceback.print_exc()
+            raise typer.Exit(exc.exit_code) from None
+        except KeyboardInterrupt:
+            _echo_err("interrupted")
+            raise typer.Exit(130) from None
+
+    return wrapper
+
+
+def command(*args, **kwargs):
+    """``app.command`` with :func:`_guarded` error handling."""
+    return lambda fn: app.command(*args, **kwargs)(_guarded(fn))
+
+
+# ------------------------------------------------------------------ init / validate
+@command()
+def init(
+    path: Path = typer.Argument(Path("cell.yaml"), help="Where to write the starter cell file."),
+    force: bool = typer.Option(False, "--force", help="Overwrite an existing file."),
+):
+    """Write a commented starter cell file to fill in with your cell's measurements."""
+    from planning.config import starter_cell_text
+    from planning.errors import GripsightError
+    from planning.fileio import write_text_atomic
+
+    if path.is_dir():
+        raise GripsightError(f"{path}: is a directory; give a file name such as {path / 'cell.yaml'}")
+    if path.exists() and not force:
+        raise GripsightError(f"{path}: already exists; pass --force to overwrite it or choose another name")
+    write_text_atomic(path, starter_cell_text())
+    typer.echo(f"wrote {path}: fill in the keys marked MEASURE, then run: gripsight validate {path}")
+
+
+@command()
+def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
+    """Check a cell file; print a summary, or every problem with its key path (exit 2)."""
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.reach import lowest_grip_z_mm, radial_reach
+
+    cfg = load_cell(cell)
+    arm = Arm.from_config(cfg.arm)
+    raised = sum(1 for m in cfg.markers.layout.values() if m.z > 0)
+    grip = radial_reach(arm, lowest_grip_z_mm(cfg))
+    link = cfg.arm.linkage.type + (f" ({arm.grashof()})" if cfg.arm.linkage.type == "four_bar" else "")
+    typer.echo(
+        f"ok: {cfg.cell}: {link} arm {cfg.arm.upper_arm_mm:g}+{cfg.arm.forearm_mm:g} mm, "
+        f"{len(cfg.markers.layout)} markers ({raised} raised), {len(cfg.parts)} part classes, "
+        f"{len(cfg.bins)} bins; reach at grip height {grip.describe()}")
+
+
+# ------------------------------------------------------------------ reach
+@command()
+def reach(
+    cell: Path = typer.Argument(..., help="The cell file."),
+    out: Path = typer.Option(Path("reach.png"), "--out", "-o", help="Where to write the picture (PNG)."),
+    resolution_mm: float = typer.Option(2.0, "--resolution-mm", min=0.5, max=20.0, help="Grid step of the drawing."),
+):
+    """Draw the reachable region (top and side view) and flag bins or corners the arm cannot reach."""
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.fileio import atomic_output
+    from planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
+    from planning.reach_plot import draw_reach
+
+    cfg = load_cell(cell)
+    arm = Arm.from_config(cfg.arm)
+    with atomic_output(out) as tmp:
+        draw_reach(cfg, arm, tmp, resolution_mm=resolution_mm)
+    safe = radial_reach(arm, cfg.motion.safe_z_mm)
+    grip = radial_reach(arm, lowest_grip_z_mm(cfg))
+    table = radial_reach(arm, 0.0)
+    typer.echo(f"reach: table {table.describe()}; grip {grip.describe()}; safe {safe.describe()}")
+    bad = unreachable_places(cfg, arm)
+    for u in bad:
+        typer.echo(f"cannot reach: {u.describe()}")
+    typer.echo(f"wrote {out}")
+
+
+# ------------------------------------------------------------------ entry point
+def main(argv: Optional[list[str]] = None) -> int:
+    """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""
+    try:
+        result = app(args=argv, prog_name="gripsight", standalone_mode=False)
+    except typer.Exit as exc:
+        return exc.exit_code
+    except typer.Abort:
+        _echo_err("interrupted")
+        return 130
+    except typer.exceptions.TyperException as exc:  # usage errors: bad option, missing argument
+        show = getattr(exc, "show", None)
+        _echo_err(f"error: {exc}") if show is None else show()
+        return int(getattr(exc, "exit_code", 2))
+    return result if isinstance(result, int) else 0
+
+
+def entry() -> None:
+    """The ``gripsight`` console script."""
+    sys.exit(main())
+
+
+if __name__ == "__main__":
+    entry()

@@ -1,0 +1,486 @@
+"""The cell file: schema, defaults, loading and error reporting.
+
+A cell file (YAML) describes one cell: markers on the table, the camera, the work area, the arm, the
+colour classes of parts, the bins and the motion settings. Lengths are millimetres, angles degrees,
+times seconds, pulses microseconds; every key carries its unit in its name where it has one.
+
+Loading is done by :func:`load_cell`. It reads with YAML safe loading only, validates with pydantic v2
+(strict types: a quoted ``"12"`` is not a number) and then runs the cross-field checks of
+:func:`_semantic_problems`. Every problem is reported with its dotted key path, e.g.
+``arm.joints.shoulder.min_deg: must be less than max_deg (135)``, in one :class:`CellFileError`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+from pathlib import Path
+from typing import Annotated, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
+
+from planning.errors import CellFileError, Problem
+
+__all__ = [
+    "ARUCO_DICTIONARY_SIZES",
+    "Cell",
+    "ArmConfig",
+    "JointConfig",
+    "ServoConfig",
+    "load_cell",
+    "parse_cell",
+    "starter_cell_text",
+]
+
+Number = Annotated[float, Field(allow_inf_nan=False)]
+PositiveMm = Annotated[float, Field(gt=0, allow_inf_nan=False)]
+NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False)]
+Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
+Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
+
+# Published ArUco / AprilTag dictionaries and how many ids each holds (OpenCV's predefined set).
+ARUCO_DICTIONARY_SIZES = {
+    "aruco_4x4_50": 50, "aruco_4x4_100": 100, "aruco_4x4_250": 250, "aruco_4x4_1000": 1000,
+    "aruco_5x5_50": 50, "aruco_5x5_100": 100, "aruco_5x5_250": 250, "aruco_5x5_1000": 1000,
+    "aruco_6x6_50": 50, "aruco_6x6_100": 100, "aruco_6x6_250": 250, "aruco_6x6_1000": 1000,
+    "aruco_original": 1024, "apriltag_16h5": 30, "apriltag_25h9": 35, "apriltag_36h10": 2320,
+    "apriltag_36h11": 587,
+}
+DictionaryName = Literal[
+    "aruco_4x4_50", "aruco_4x4_100", "aruco_4x4_250", "aruco_4x4_1000",
+    "aruco_5x5_50", "aruco_5x5_100", "aruco_5x5_250", "aruco_5x5_1000",
+    "aruco_6x6_50", "aruco_6x6_100", "aruco_6x6_250", "aruco_6x6_1000",
+    "aruco_original", "apriltag_16h5", "apriltag_25h9", "apriltag_36h10", "apriltag_36h11",
+]
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False, frozen=True)
+
+
+# ---------------------------------------------------------------- markers and camera
+class MarkerPlacement(_Model):
+    x: Number
+    y: Number
+    z: NonNegativeMm = 0.0
+    yaw_deg: Number = 0.0
+
+
+class MarkersConfig(_Model):
+    dictionary: DictionaryName = "aruco_4x4_50"
+    size_mm: PositiveMm
+    margin_mm: NonNegativeMm = 10.0
+    layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1)
+
+
+class CameraConfig(_Model):
+    lens: Literal["none", "estimate", "file"] = "estimate"
+    lens_file: str | None = None
+    centre_mm: Point3 | None = None
+    height_mm: PositiveMm | None = None
+    drift_tolerance_mm: PositiveMm = 1.0
+    on_move: Literal["refit", "stop"] = "refit"
+
+
+# ---------------------------------------------------------------- arm
+class ServoConfig(_Model):
+    channel: Annotated[int, Field(ge=0, le=63)]
+    map: Annotated[list[Point2], Field(min_length=2, max_length=2)]
+    min_us: PositiveMm = 500.0    # common practice: hobby servos accept 500-2500 us at 50 Hz
+    max_us: PositiveMm = 2500.0
+
+
+class JointConfig(_Model):
+    min_deg: Number
+    max_deg: Number
+    max_speed_deg_s: PositiveMm
+    servo: ServoConfig
+
+
+class JointsConfig(_Model):
+    base: JointConfig
+    shoulder: JointConfig
+    elbow: JointConfig
+
+
+class ToolConfig(_Model):
+    reach_mm: NonNegativeMm = 0.0
+    drop_mm: Number = 0.0
+    level: bool = True
+
+
+class LinkageConfig(_Model):
+    type: Literal["serial", "parallel", "four_bar"]
+    crank_mm: PositiveMm | None = None
+    coupler_mm: PositiveMm | None = None
+    rocker_mm: PositiveMm | None = None
+    assembly: Literal["open", "crossed"] = "open"
+
+
+class GripperConfig(_Model):
+    max_opening_mm: PositiveMm
+    open_us: PositiveMm
+    closed_us: PositiveMm
+    channel: Annotated[int, Field(ge=0, le=63)] = 3
+    jaw: Literal["tangential", "radial"] = "tangential"
+    margin_mm: NonNegativeMm = 2.0
+    min_us: PositiveMm = 500.0
+    max_us: PositiveMm = 2500.0
+
+
+class ArmConfig(_Model):
+    base_height_mm: Number
+    shoulder_offset_mm: Number = 0.0
+    upper_arm_mm: PositiveMm
+    forearm_mm: PositiveMm
+    tool: ToolConfig = ToolConfig()
+    linkage: LinkageConfig
+    elbow: Literal["up", "down"] = "up"
+    joints: JointsConfig
+    elbow_interior_deg: Point2 = [20.0, 170.0]
+    gripper: GripperConfig
+
+
+# ---------------------------------------------------------------- parts, bins, zones, motion
+class PartClass(_Model):
+    lab: Point3
+    tolerance: PositiveMm = 18.0
+    height_mm: PositiveMm
+    shape: Literal["box", "cylinder"] = "box"
+    footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
+    seen_as: Literal["auto", "top", "silhouette"] = "auto"
+
+
+class BinConfig(_Model):
+    x: Number
+    y: Number
+    z: Number = 0.0
+    capacity: Annotated[int, Field(ge=1)] | None = None
+
+
+class KeepOutZone(_Model):
+    name: str = "zone"
+    shape: Literal["cylinder", "box"]
+    x: Number | None = None            # cylinder centre
+    y: Number | None = None
+    radius_mm: PositiveMm | None = None
+    min_mm: Point3 | None = None       # box corners
+    max_mm: Point3 | None = None
+    top_mm: Number = 1.0e4             # cylinder top; boxes use max_mm[2]
+
+
+class HomeConfig(_Model):
+    base: Number = 0.0
+    shoulder: Number = 90.0
+    elbow: Number = 0.0
+
+
+class MotionConfig(_Model):
+    safe_z_mm: PositiveMm = 120.0
+    grip_depth_mm: NonNegativeMm = 12.0
+    drop_z_mm: NonNegativeMm = 50.0
+    floor_clearance_mm: NonNegativeMm = 2.0
+    speed_mm_s: PositiveMm = 150.0
+    time_scaling: Literal["cubic", "quintic", "trapezoid"] = "quintic"
+    sample_hz: Annotated[float, Field(gt=0, le=1000, allow_inf_nan=False)] = 50.0
+    dwell_s: NonNegativeMm = 0.4
+    home_deg: HomeConfig = HomeConfig()
+
+
+class Cell(_Model):
+    cell: str = Field(min_length=1)
+    markers: MarkersConfig
+    camera: CameraConfig = CameraConfig()
+    work_area: Annotated[list[Point2], Field(min_length=3)]
+    arm: ArmConfig
+    parts: dict[str, PartClass] = {}
+    bins: dict[str, BinConfig] = {}
+    keep_out: list[KeepOutZone] = []
+    motion: MotionConfig = MotionConfig()
+
+    _source_path: str | None = PrivateAttr(default=None)
+    _sha256: str | None = PrivateAttr(default=None)
+
+    @property
+    def source_path(self) -> str | None:
+        """The file this cell was loaded from, if any."""
+        return self._source_path
+
+    @property
+    def sha256(self) -> str | None:
+        """SHA-256 of the cell file's bytes, if loaded from a file."""
+        return self._sha256
+
+
+# ---------------------------------------------------------------- cross-field checks
+def _joint_problems(where: str, joint: JointConfig) -> list[Problem]:
+    out = []
+    if joint.min_deg >= joint.max_deg:
+        out.append(Problem(f"{where}.min_deg", f"must be less than max_deg ({joint.max_deg:g})"))
+    (a0, p0), (a1, p1) = joint.servo.map
+    servo = joint.servo
+    if servo.min_us >= servo.max_us:
+        out.append(Problem(f"{where}.servo.min_us", f"must be less than max_us ({servo.max_us:g})"))
+    if a0 == a1:
+        out.append(Problem(f"{where}.servo.map", "the two calibration points need different angles"))
+    elif joint.min_deg < joint.max_deg:
+        for limit_name, angle in (("min_deg", joint.min_deg), ("max_deg", joint.max_deg)):
+            pulse = p0 + (angle - a0) * (p1 - p0) / (a1 - a0)
+            if not servo.min_us - 1e-9 <= pulse <= servo.max_us + 1e-9:
+                out.append(Problem(
+                    f"{where}.{limit_name}",
+                    f"{angle:g} deg maps to {pulse:.0f} us, outside the servo range "
+                    f"{servo.min_us:g}-{servo.max_us:g} us"))
+    return out
+
+
+def _polygon_area(points: list[list[float]]) -> float:
+    area = 0.0
+    for (x0, y0), (x1, y1) in zip(points, points[1:] + points[:1]):
+        area += x0 * y1 - x1 * y0
+    return 0.5 * area
+
+
+def _semantic_problems(cell: Cell) -> list[Problem]:
+    """Checks that need more than one key; each problem names the key to change."""
+    out: list[Problem] = []
+    arm = cell.arm
+    for name in ("base", "shoulder", "elbow"):
+        out += _joint_problems(f"arm.joints.{name}", getattr(arm.joints, name))
+    lo, hi = arm.elbow_interior_deg
+    if not 0 <= lo < hi <= 180:
+        out.append(Problem("arm.elbow_interior_deg", f"must be [min, max] with 0 <= min < max <= 180, got [{lo:g}, {hi:g}]"))
+    link = arm.linkage
+    if link.type == "four_bar":
+        for key in ("crank_mm", "coupler_mm", "rocker_mm"):
+            if getattr(link, key) is None:
+                out.append(Problem(f"arm.linkage.{key}", "required for a four_bar linkage"))
+    else:
+        for key in ("crank_mm", "coupler_mm", "rocker_mm"):
+            if getattr(link, key) is not None:
+                out.append(Problem(f"arm.linkage.{key}", f"only used by four_bar, not {link.type}"))
+    grip = arm.gripper
+    for key in ("open_us", "closed_us"):
+        if not grip.min_us <= getattr(grip, key) <= grip.max_us:
+            out.append(Problem(f"arm.gripper.{key}", f"outside the servo range {grip.min_us:g}-{grip.max_us:g} us"))
+    channels: dict[int, str] = {}
+    for name in ("base", "shoulder", "elbow"):
+        ch = getattr(arm.joints, name).servo.channel
+        if ch in channels:
+            out.append(Problem(f"arm.joints.{name}.servo.channel", f"channel {ch} is already used by {channels[ch]}"))
+        channels[ch] = name
+    if grip.channel in channels:
+        out.append(Problem("arm.gripper.channel", f"channel {grip.channel} is already used by {channels[grip.channel]}"))
+
+    home = cell.motion.home_deg
+    for name in ("base", "shoulder", "elbow"):
+        joint = getattr(arm.joints, name)
+        value = getattr(home, name)
+        if joint.min_deg < joint.max_deg and not joint.min_deg <= value <= joint.max_deg:
+            out.append(Problem(f"motion.home_deg.{name}", f"{value:g} is outside the joint limits [{joint.min_deg:g}, {joint.max_deg:g}]"))
+
+    size = ARUCO_DICTIONARY_SIZES[cell.markers.dictionary]
+    layout = cell.markers.layout
+    for marker_id in layout:
+        if marker_id >= size:
+            out.append(Problem(f"markers.layout.{marker_id}", f"id {marker_id} does not exist in {cell.markers.dictionary} (ids 0-{size - 1})"))
+    ids = sorted(layout)
+    for i, a in enumerate(ids):
+        for b in ids[i + 1:]:
+            pa, pb = layout[a], layout[b]
+            if math.hypot(pa.x - pb.x, pa.y - pb.y) < cell.markers.size_mm:
+                out.append(Problem(f"markers.layout.{b}", f"overlaps marker {a} (centres closer than size_mm)"))
+
+    if abs(_polygon_area(cell.work_area)) < 1.0:
+        out.append(Problem("work_area", "the polygon has no area (points collinear or repeated)"))
+
+    for name, part in cell.parts.items():
+        if not 0 <= part.lab[0] <= 100:
+            out.append(Problem(f"parts.{name}.lab", f"L* must be in 0-100, got {part.lab[0]:g}"))
+        if name == "reject":
+            out.append(Problem(f"parts.{name}", "'reject' is reserved for the bin of unknown colours"))
+    for name in cell.parts:
+        if cell.bins and name not in cell.bins:
+            out.append(Problem(f"bins.{name}", f"no bin for part class '{name}'"))
+    for name in cell.bins:
+        if name != "reject" and name not in cell.parts:
+            out.append(Problem(f"bins.{name}", f"no part class '{name}' (bins are named after classes, or 'reject')"))
+
+    tallest = max((p.height_mm for p in cell.parts.values()), default=0.0)
+    motion = cell.motion
+    if motion.safe_z_mm <= tallest + motion.floor_clearance_mm:
+        out.append(Problem("motion.safe_z_mm", f"must be above the tallest part ({tallest:g} mm) plus floor_clearance_mm"))
+    if motion.drop_z_mm >= motion.safe_z_mm:
+        out.append(Problem("motion.drop_z_mm", f"must be below safe_z_mm ({motion.safe_z_mm:g})"))
+    for name, part in cell.parts.items():
+        if motion.grip_depth_mm >= part.height_mm:
+            out.append(Problem(f"parts.{name}.height_mm", f"must exceed motion.grip_depth_mm ({motion.grip_depth_mm:g})"))
+
+    for i, zone in enumerate(cell.keep_out):
+        where = f"keep_out.{i}"
+        if zone.shape == "cylinder":
+            for key in ("x", "y", "radius_mm"):
+                if getattr(zone, key) is None:
+                    out.append(Problem(f"{where}.{key}", "required for a cylinder zone"))
+        else:
+            if zone.min_mm is None or zone.max_mm is None:
+                out.append(Problem(f"{where}", "a box zone needs min_mm and max_mm"))
+            elif any(a >= b for a, b in zip(zone.min_mm, zone.max_mm)):
+                out.append(Problem(f"{where}.min_mm", "every coordinate must be less than max_mm's"))
+    if cell.camera.lens == "file" and not cell.camera.lens_file:
+        out.append(Problem("camera.lens_file", "required when camera.lens is 'file'"))
+    return out
+
+
+# ---------------------------------------------------------------- loading
+_PYDANTIC_MESSAGES = {
+    "missing": "required key is missing",
+    "extra_forbidden": "unknown key (check the spelling; see `gripsight init` for every key)",
+    "float_type": "must be a number",
+    "int_type": "must be a whole number",
+    "bool_type": "must be true or false",
+    "string_type": "must be text",
+    "dict_type": "must be a mapping of keys to values",
+    "model_type": "must be a mapping of keys to values",
+    "list_type": "must be a list",
+    "finite_number": "must be a finite number (not nan or inf)",
+}
+
+
+def _format_loc(loc: tuple) -> str:
+    return ".".join(str(part) for part in loc)
+
+
+def _describe(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _pydantic_problems(error: ValidationError) -> list[Problem]:
+    out = []
+    for item in error.errors(include_url=False):
+        kind = item["type"]
+        message = _PYDANTIC_MESSAGES.get(kind)
+        if kind == "literal_error":
+            expected = item.get("ctx", {}).get("expected", "")
+            message = f"must be one of {expected}, got {_describe(item.get('input'))}"
+        elif message is None:
+            message = item["msg"][0].lower() + item["msg"][1:]
+        elif kind.endswith("_type") or kind == "finite_number":
+            message += f", got {_describe(item.get('input'))}"
+        out.append(Problem(_format_loc(item["loc"]), message))
+    return out
+
+
+def parse_cell(data, source: str = "<cell>") -> Cell:
+    """Validate already-parsed YAML data as a cell.
+
+    Raises
+    ------
+    CellFileError
+        With every problem found, each naming its key path.
+    """
+    if not isinstance(data, dict):
+        kind = "empty" if data is None else f"a {type(data).__name__}, not a mapping of keys"
+        raise CellFileError(source, [Problem("", f"the file is {kind}; start from `gripsight init`")])
+    try:
+        cell = Cell.model_validate(data)
+    except ValidationError as exc:
+        raise CellFileError(source, _pydantic_problems(exc)) from None
+    problems = _semantic_problems(cell)
+    if problems:
+        raise CellFileError(source, problems)
+    return cell
+
+
+class _UniqueKeyLoader(yaml.SafeLoader):
+    """Safe loader that refuses duplicated keys (a silent overwrite would hide a typo)."""
+
+
+def _construct_mapping(loader, node, deep=False):
+    seen = set()
+    for key_node, _ in node.value:
+        key = loader.construct_object(key_node, deep=deep)
+        try:
+            duplicate = key in seen
+        except TypeError:
+            raise yaml.constructor.ConstructorError(
+                None, None, "a key must be a plain value", key_node.start_mark) from None
+        if duplicate:
+            raise yaml.constructor.ConstructorError(
+                None, None, f"duplicate key {key!r}", key_node.start_mark)
+        seen.add(key)
+    return loader.construct_mapping(node, deep)
+
+
+_UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+
+
+def read_yaml(path: str | os.PathLike, what: str = "file"):
+    """Read a YAML file with safe loading; return (data, raw bytes).
+
+    Raises
+    ------
+    CellFileError
+        For a missing file, a directory, an unreadable or non-UTF-8 file, or a YAML error (with its line).
+    """
+    path = Path(path)
+    name = str(path)
+    if not path.exists():
+        raise CellFileError(name, [Problem("", f"no such {what}")])
+    if path.is_dir():
+        raise CellFileError(name, [Problem("", f"is a directory, not a {what}")])
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise CellFileError(name, [Problem("", f"cannot be read ({exc.strerror})")]) from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise CellFileError(name, [Problem("", "is not UTF-8 text (is it a YAML file?)")]) from None
+    try:
+        data = yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - SafeLoader subclass
+    except yaml.MarkedYAMLError as exc:
+        mark = exc.problem_mark or exc.context_mark
+        where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+        what_wrong = exc.problem or exc.context or "YAML syntax error"
+        raise CellFileError(name, [Problem(where, f"YAML error: {what_wrong}")]) from None
+    except yaml.YAMLError as exc:
+        raise CellFileError(name, [Problem("", f"YAML error: {exc}")]) from None
+    except RecursionError:
+        raise CellFileError(name, [Problem("", "YAML nesting too deep")]) from None
+    return data, raw
+
+
+def load_cell(path: str | os.PathLike) -> Cell:
+    """Load and validate a cell file.
+
+    Parameters
+    ----------
+    path : str or PathLike
+        The YAML cell file.
+
+    Returns
+    -------
+    Cell
+        The validated cell, with ``source_path`` and ``sha256`` set.
+
+    Raises
+    ------
+    CellFileError
+        Every problem found, each with its key path (or YAML line).
+    """
+    data, raw = read_yaml(path, "cell file")
+    cell = parse_cell(data, str(path))
+    cell._source_path = str(path)
+    cell._sha256 = hashlib.sha256(raw).hexdigest()
+    return cell
+
+
+def starter_cell_text() -> str:
+    """The commented starter cell file written by ``gripsight init``."""
+    from importlib.resources import files
+
+    return files("planning").joinpath("templates/cell.yaml").read_text(encoding="utf-8")

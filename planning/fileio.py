@@ -1,0 +1,45 @@
+"""Atomic file writes: a temporary file in the same folder, flushed, then renamed over the target.
+
+An interrupted write leaves the old file or none, never half a file.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from pathlib import Path
+
+__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic"]
+
+
+@contextlib.contextmanager
+def atomic_output(path: str | os.PathLike):
+    """Yield a temporary path beside ``path``; on success it replaces ``path``, on error it is removed.
+
+    The temporary name keeps the target's suffix so writers that look at it (matplotlib) still work.
+    """
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
+    os.close(fd)
+    try:
+        yield Path(tmp)
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
+    """Write bytes to ``path`` atomically."""
+    with atomic_output(path) as tmp:
+        Path(tmp).write_bytes(data)
+
+
+def write_text_atomic(path: str | os.PathLike, text: str) -> None:
+    """Write UTF-8 text to ``path`` atomically."""
+    write_bytes_atomic(path, text.encode("utf-8"))

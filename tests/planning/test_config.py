@@ -1,0 +1,131 @@
+"""The cell file: the demo and starter cells load; each kind of broken file gives one clear line per
+problem naming the key or YAML line, exit code 2 from `gripsight validate`, and no traceback."""
+
+from __future__ import annotations
+
+import copy
+
+import pytest
+import yaml
+
+from planning.cli import main
+from planning.config import load_cell, parse_cell, starter_cell_text
+from planning.errors import CellFileError
+from tests.conftest import SAMPLE_CELL, sample_cell_data
+
+
+def test_demo_cell_loads_with_hash_and_values():
+    cell = load_cell(SAMPLE_CELL)
+    assert cell.cell == "print-farm-token-sorter"
+    assert cell.arm.joints.shoulder.max_deg == 150
+    assert cell.markers.layout[9].z == 60
+    assert set(cell.bins) == {"red", "green", "blue", "yellow", "reject"}
+    assert len(cell.sha256) == 64
+    assert cell.motion.time_scaling == "quintic"
+
+
+def test_starter_file_is_a_valid_cell_and_keeps_its_comments():
+    text = starter_cell_text()
+    assert "MEASURE" in text
+    cell = parse_cell(yaml.safe_load(text))
+    assert cell.arm.linkage.type == "parallel"
+
+
+def test_defaults_fill_optional_sections():
+    data = sample_cell_data()
+    for key in ("camera", "motion", "keep_out"):
+        data.pop(key)
+    cell = parse_cell(data)
+    assert cell.camera.lens == "estimate"
+    assert cell.motion.sample_hz == 50
+    assert cell.keep_out == []
+
+
+def _mutate(path_keys, value):
+    data = copy.deepcopy(sample_cell_data())
+    node = data
+    for key in path_keys[:-1]:
+        node = node[key]
+    if value is _DELETE:
+        del node[path_keys[-1]]
+    else:
+        node[path_keys[-1]] = value
+    return yaml.safe_dump(data, sort_keys=False)
+
+
+_DELETE = object()
+
+# (name, file text, expected substring of the first error line)
+BROKEN = [
+    ("missing key", _mutate(["arm", "upper_arm_mm"], _DELETE), "arm.upper_arm_mm: required key is missing"),
+    ("wrong type", _mutate(["arm", "forearm_mm"], [160]), "arm.forearm_mm: must be a number"),
+    ("min above max", _mutate(["arm", "joints", "shoulder", "min_deg"], 170),
+     "arm.joints.shoulder.min_deg: must be less than max_deg (150)"),
+    ("negative length", _mutate(["arm", "upper_arm_mm"], -150), "arm.upper_arm_mm: input should be greater than 0"),
+    ("unknown linkage", _mutate(["arm", "linkage", "type"], "delta"),
+     "arm.linkage.type: must be one of 'serial', 'parallel' or 'four_bar', got 'delta'"),
+    ("non-numeric value", _mutate(["markers", "size_mm"], "forty"), "markers.size_mm: must be a number, got 'forty'"),
+    ("quoted number", _mutate(["motion", "safe_z_mm"], "100"), "motion.safe_z_mm: must be a number, got '100'"),
+    ("nan", _mutate(["bins", "red", "x"], float("nan")), "bins.red.x: must be a finite number"),
+    ("unknown key", _mutate(["arm", "fore_arm_mm"], 160), "arm.fore_arm_mm: unknown key"),
+    ("four_bar without lengths", _mutate(["arm", "linkage"], {"type": "four_bar"}),
+     "arm.linkage.crank_mm: required for a four_bar linkage"),
+    ("servo range", _mutate(["arm", "joints", "base", "max_deg"], 120),
+     "arm.joints.base.max_deg: 120 deg maps to 2833 us, outside the servo range 500-2500 us"),
+    ("home outside limits", _mutate(["motion", "home_deg", "shoulder"], 170),
+     "motion.home_deg.shoulder: 170 is outside the joint limits [0, 150]"),
+    ("marker id not in dictionary", _mutate(["markers", "layout", 9], _DELETE).replace("  layout:\n", "  layout:\n    77: {x: 300, y: 0}\n"),
+     "markers.layout.77: id 77 does not exist in aruco_4x4_50"),
+    ("bin without class", _mutate(["bins", "purple"], {"x": 1, "y": 2}), "bins.purple: no part class 'purple'"),
+    ("yaml syntax error", "cell: x\narm: {upper_arm_mm: 150\nmarkers: [\n", "line "),
+    ("duplicate key", "cell: a\ncell: b\n", "line 2, column 1: YAML error: duplicate key 'cell'"),
+    ("python tag", "cell: !!python/object/apply:os.system ['echo pwned']\n", "YAML error: could not determine a constructor"),
+    ("empty file", "", "the file is empty"),
+    ("a list, not a mapping", "- 1\n- 2\n", "the file is a list, not a mapping of keys"),
+]
+
+
+@pytest.mark.parametrize("name, text, expected", BROKEN, ids=[b[0] for b in BROKEN])
+def test_broken_cell_file_gives_one_line_per_problem_and_exit_2(tmp_path, capsys, name, text, expected):
+    path = tmp_path / "cell.yaml"
+    path.write_text(text)
+    code = main(["validate", str(path)])
+    out, err = capsys.readouterr()
+    assert code == 2
+    lines = err.strip().splitlines()
+    assert lines, "an error must be printed"
+    assert all(line.startswith(f"error: {path}: ") for line in lines)
+    assert any(expected in line for line in lines), lines
+    assert "Traceback" not in err and out == ""
+
+
+def test_directory_and_missing_file(tmp_path, capsys):
+    assert main(["validate", str(tmp_path)]) == 2
+    assert "is a directory, not a cell file" in capsys.readouterr().err
+    assert main(["validate", str(tmp_path / "nope.yaml")]) == 2
+    assert "no such cell file" in capsys.readouterr().err
+
+
+def test_binary_file(tmp_path, capsys):
+    path = tmp_path / "cell.yaml"
+    path.write_bytes(b"\xff\xd8\xff\xe0 not yaml")
+    assert main(["validate", str(path)]) == 2
+    assert "is not UTF-8 text" in capsys.readouterr().err
+
+
+def test_every_problem_is_reported_not_just_the_first(tmp_path):
+    data = sample_cell_data()
+    data["arm"]["upper_arm_mm"] = -1
+    data["arm"]["joints"]["elbow"]["max_speed_deg_s"] = "fast"
+    data["motion"]["time_scaling"] = "linear"
+    with pytest.raises(CellFileError) as info:
+        parse_cell(data, "cell.yaml")
+    wheres = [p.where for p in info.value.problems]
+    assert wheres == ["arm.upper_arm_mm", "arm.joints.elbow.max_speed_deg_s", "motion.time_scaling"]
+
+
+def test_validate_ok_summary(capsys):
+    assert main(["validate", str(SAMPLE_CELL)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith("ok: print-farm-token-sorter: parallel arm 150+160 mm, 9 markers (1 raised)")
+    assert "reach at grip height z=6 mm: r 118.1-351.0 mm" in out
