@@ -129,6 +129,82 @@ def reach(
     typer.echo(f"wrote {out}")
 
 
+# ------------------------------------------------------------------ plan
+def _find_cell(cell: Optional[Path], near: Path) -> Path:
+    """--cell, or cell.yaml in the input's folder or its parent."""
+    from planning.errors import GripsightError
+
+    if cell is not None:
+        return cell
+    folder = near if near.is_dir() else near.parent
+    for candidate in (folder / "cell.yaml", folder.parent / "cell.yaml"):
+        if candidate.is_file():
+            return candidate
+    raise GripsightError(f"{near}: no cell.yaml beside it or in its parent folder; pass --cell CELL")
+
+
+@command()
+def plan(
+    parts: Path = typer.Option(..., "--parts", help="Parts in table coordinates (YAML list of {class, x_mm, y_mm, ...})."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the input or in its parent)."),
+    out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the plots."),
+    order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
+    plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png."),
+):
+    """Plan checked pick-and-place moves for parts given in table coordinates; write the joint sequence."""
+    import json
+
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+    from planning.export import write_plan_outputs
+    from planning.picks import Planner
+    from planning.targets import load_parts_file
+
+    if order not in ("nearest", "detected"):
+        raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
+    cfg = load_cell(_find_cell(cell, parts))
+    arm = Arm.from_config(cfg.arm)
+    targets = load_parts_file(parts, cfg)
+    result = Planner(cfg, arm).plan(targets, order=order)
+    data = write_plan_outputs(out, result, cfg, arm, plots=plots)
+    if as_json:
+        typer.echo(json.dumps(data, indent=2))
+        return
+    _print_plan_summary(data, out)
+
+
+def _print_plan_summary(data: dict, out: Path) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
+    for col in ("#", "part", "class", "bin", "duration s"):
+        table.add_column(col, justify="right" if col in ("#", "duration s") else "left")
+    for i, pick in enumerate(data["picks"], 1):
+        table.add_row(str(i), pick["part"], pick["class"], pick["bin"], f"{pick['duration_s']:.2f}")
+    console.print(table)
+    rejected = [p for p in data["parts"] if p["status"] != "planned"]
+    if rejected:
+        rt = Table(title="rejected", title_justify="left")
+        for col in ("part", "class", "reason", "detail"):
+            rt.add_column(col)
+        for p in rejected:
+            rej = p["rejection"]
+            where = f" ({rej['segment']})" if rej.get("segment") else ""
+            rt.add_row(p["id"], p["class"], rej["check"], rej["detail"] + where)
+        console.print(rt)
+    tot = data["totals"]
+    console.print(f"{tot['planned']} planned, {tot['rejected']} rejected; cycle time {tot['cycle_s']:.2f} s "
+                  f"({tot['samples']} samples at {tot['sample_hz']:g} Hz)")
+    for w in data["warnings"]:
+        console.print(f"warning: {w}")
+    console.print(f"wrote {out / 'plan.json'}, {out / 'joints.csv'}" +
+                  (f", {out / 'joints.png'}, {out / 'path.png'}" if (out / "joints.png").exists() else ""))
+
+
 # ------------------------------------------------------------------ entry point
 def main(argv: Optional[list[str]] = None) -> int:
     """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""

@@ -35,7 +35,10 @@ class Problem:
 
 
 class CellFileError(GripsightError):
-    """The cell file cannot be used; carries every problem found, each with its key path."""
+    """A cell file (or another YAML input: parts file, calibration) cannot be used.
+
+    Carries every problem found, each with its key path or YAML line.
+    """
 
     exit_code = 2
 

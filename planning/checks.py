@@ -1,0 +1,204 @@
+"""Checks on every sample of a planned segment, each failure a named reason with time and value.
+
+Checks, in priority order at one sample (the earliest failing sample wins): the IK reasons (reach,
+linkage assembly, elbow-interior stop, joint limits), floor clearance, keep-out zones, joint speed,
+branch consistency. Grip fit is checked per part before any motion is planned (see
+:func:`grip_fit_rejection`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from planning.angles import wrap_angle
+from planning.arm import JOINT_NAMES, Arm, Reason
+from planning.motion import SampledSegment
+
+__all__ = ["CheckContext", "Rejection", "first_failure", "grip_fit_rejection", "jaw_width_mm"]
+
+_LINK_POINTS = 6  # points tested along each moving link for keep-out zones
+
+
+@dataclass(frozen=True)
+class Rejection:
+    """Why a part was not planned: the check, where and when it failed, the value and the limit."""
+
+    check: str
+    detail: str
+    segment: str | None = None
+    time_s: float | None = None
+    value: float | None = None
+    limit: float | None = None
+    unit: str = ""
+
+    def describe(self) -> str:
+        when = f" ({self.segment} at t={self.time_s:.2f} s)" if self.segment is not None and self.time_s is not None else ""
+        return f"{self.check}: {self.detail}{when}"
+
+    def as_dict(self) -> dict:
+        return {"check": self.check, "detail": self.detail, "segment": self.segment,
+                "time_s": None if self.time_s is None else round(self.time_s, 4),
+                "value": None if self.value is None else round(float(self.value), 4),
+                "limit": None if self.limit is None else round(float(self.limit), 4), "unit": self.unit}
+
+
+@dataclass(frozen=True)
+class CheckContext:
+    """What the sample checks need from the cell."""
+
+    arm: Arm
+    floor_clearance_mm: float
+    keep_out: tuple = ()
+    dt_s: float = 0.02
+
+
+def _link_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[np.ndarray, list[str]]:
+    """Points along shoulder->elbow->wrist->tool, shape (M, 3 * _LINK_POINTS, 3), and their link names."""
+    elbow, wrist = arm.elbow_wrist_mm(joints_rad)
+    base = joints_rad[:, 0]
+    shoulder = np.column_stack([arm.shoulder_offset_mm * np.cos(base), arm.shoulder_offset_mm * np.sin(base),
+                                np.full(len(base), arm.base_height_mm)])
+    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, :, None]
+    pts, names = [], []
+    for name, a, b in (("upper arm", shoulder, elbow), ("forearm", elbow, wrist), ("tool", wrist, tool_mm)):
+        pts.append(a[:, None, :] + f * (b - a)[:, None, :])
+        names += [name] * _LINK_POINTS
+    return np.concatenate(pts, axis=1), names
+
+
+def _zone_inside(zone, pts: np.ndarray) -> np.ndarray:
+    """Mask (M, K) of points inside a keep-out zone."""
+    if zone.shape == "cylinder":
+        d = np.hypot(pts[..., 0] - zone.x, pts[..., 1] - zone.y)
+        return (d < zone.radius_mm) & (pts[..., 2] < zone.top_mm)
+    lo, hi = np.asarray(zone.min_mm), np.asarray(zone.max_mm)
+    return np.all((pts > lo) & (pts < hi), axis=-1)
+
+
+def _deg(x) -> float:
+    """Degrees for a report, rounded off the radian round trip (240 deg, not 239.99999999999997)."""
+    return float(np.round(np.degrees(x), 9))
+
+
+def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Rejection:
+    arm = ctx.arm
+    x, y, z = s.xyz_mm[i]
+    reason = Reason(code)
+    q = np.degrees(s.joints_rad[i])
+    if reason is Reason.OUT_OF_REACH:
+        from planning.reach import radial_reach
+
+        rr = radial_reach(arm, float(z), step_mm=0.5)
+        span = "nothing" if rr.r_min_mm is None else f"{rr.r_min_mm:.1f}-{rr.r_max_mm:.1f} mm"
+        r = float(np.hypot(x, y))
+        return Rejection(reason.label, f"tool at r={r:.1f} mm, z={z:.1f} mm; reachable r at that height: {span}",
+                         value=r, limit=rr.r_max_mm, unit="mm")
+    if reason is Reason.LINKAGE_CANNOT_ASSEMBLE:
+        return Rejection(reason.label, f"the elbow four-bar cannot close at ({x:.1f}, {y:.1f}, {z:.1f}) mm")
+    if reason is Reason.ELBOW_INTERIOR:
+        lo, hi = (_deg(v) for v in arm.elbow_interior_rad)
+        interior = float(np.degrees(arm.elbow_interior_angle_rad(s.joints_rad[i, 1], arm.forearm_rad(
+            s.joints_rad[i, 1:2], s.joints_rad[i, 2:3]))[0]))
+        limit = lo if interior < lo else hi
+        side = "<" if interior < lo else ">"
+        return Rejection(reason.label, f"elbow interior angle {interior:.1f} deg {side} {limit:g} deg",
+                         value=interior, limit=limit, unit="deg")
+    j = {Reason.JOINT_LIMIT_BASE: 0, Reason.JOINT_LIMIT_SHOULDER: 1, Reason.JOINT_LIMIT_ELBOW: 2}[reason]
+    lo, hi = (_deg(v) for v in arm.limits_rad[j])
+    value = float(q[j])
+    limit, side, word = (lo, "<", "min") if value < lo else (hi, ">", "max")
+    return Rejection(reason.label, f"{JOINT_NAMES[j]} {value:.1f} deg {side} {word} {limit:g} deg",
+                     value=value, limit=limit, unit="deg")
+
+
+def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0) -> Rejection | None:
+    """The earliest failing sample of a sampled segment, as a :class:`Rejection`; None if all pass.
+
+    Parameters
+    ----------
+    ctx : CheckContext
+    s : SampledSegment
+        Its first sample is the previous segment's last (so joint speed is checked across the joint).
+    t0_s : float
+        Sequence time of the segment's first sample, for the report.
+    """
+    arm = ctx.arm
+    m = len(s.t_s)
+    found: list[tuple[int, int, object]] = []   # (sample, priority, make-rejection)
+
+    bad_ik = np.flatnonzero(s.reason != Reason.OK)
+    if bad_ik.size:
+        i = int(bad_ik[0])
+        found.append((i, 0, lambda i=i: _ik_rejection(ctx, s, i, int(s.reason[i]))))
+    valid = s.reason == Reason.OK
+    if valid.any():
+        q = np.where(valid[:, None], s.joints_rad, 0.0)
+        pts, names = _link_points(arm, q, s.xyz_mm)
+        low = np.where(valid[:, None], pts[..., 2], np.inf)
+        floor = low < ctx.floor_clearance_mm - 1e-9
+        if floor.any():
+            i, k = np.argwhere(floor)[0]
+            z = float(low[i, k])
+            found.append((int(i), 1, lambda z=z, n=names[k]: Rejection(
+                "floor_clearance", f"{n} at z={z:.1f} mm < {ctx.floor_clearance_mm:g} mm above the table",
+                value=z, limit=ctx.floor_clearance_mm, unit="mm")))
+        for zone in ctx.keep_out:
+            inside = _zone_inside(zone, pts) & valid[:, None]
+            if inside.any():
+                i, k = np.argwhere(inside)[0]
+                p = pts[i, k]
+                found.append((int(i), 2, lambda zone=zone, n=names[k], p=p: Rejection(
+                    f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
+    if m > 1:
+        dq = np.abs(np.diff(s.joints_rad, axis=0)) / ctx.dt_s                   # (M-1, 3) rad/s
+        over = (dq > arm.max_speed_rad_s[None, :] * (1 + 1e-9)) & valid[1:, None] & valid[:-1, None]
+        if over.any():
+            i, j = np.argwhere(over)[0]
+            v, lim = _deg(dq[i, j]), _deg(arm.max_speed_rad_s[j])
+            found.append((int(i) + 1, 3, lambda j=j, v=v, lim=lim: Rejection(
+                f"joint_speed:{JOINT_NAMES[j]}", f"{JOINT_NAMES[j]} {v:.1f} deg/s > {lim:g} deg/s",
+                value=v, limit=lim, unit="deg/s")))
+        psi = arm.forearm_rad(s.joints_rad[:, 1], s.joints_rad[:, 2])
+        bend = np.sign(wrap_angle(psi - s.joints_rad[:, 1]))
+        jump = np.abs(wrap_angle(np.diff(s.joints_rad, axis=0))).max(axis=1) > np.pi / 2
+        flip = ((bend[1:] != bend[:-1]) & (bend[1:] != 0) & (bend[:-1] != 0) | jump) & valid[1:] & valid[:-1]
+        if flip.any():
+            i = int(np.flatnonzero(flip)[0]) + 1
+            found.append((i, 4, lambda: Rejection("branch_flip", "the elbow would change branch inside one move")))
+    if not found:
+        return None
+    i, _, make = min(found, key=lambda f: (f[0], f[1]))
+    rej = make()
+    return Rejection(rej.check, rej.detail, s.segment.kind.value, t0_s + float(s.t_s[i]), rej.value, rej.limit, rej.unit)
+
+
+def jaw_width_mm(part, base_rad: float, jaw: str) -> float:
+    """Width of a part's footprint across the jaws at a given base angle.
+
+    The jaws close along the tangential direction (perpendicular to the arm's radial line) for
+    ``jaw: tangential`` and along the radial line for ``jaw: radial``. A rectangle of length L along
+    yaw and width W has extent |L (d . u)| + |W (d . v)| along a unit direction d; a cylinder its
+    diameter.
+    """
+    if part.round:
+        return float(part.width_mm)
+    d = (np.array([-np.sin(base_rad), np.cos(base_rad)]) if jaw == "tangential"
+         else np.array([np.cos(base_rad), np.sin(base_rad)]))
+    yaw = np.radians(part.yaw_deg)
+    u = np.array([np.cos(yaw), np.sin(yaw)])
+    v = np.array([-np.sin(yaw), np.cos(yaw)])
+    return float(abs(part.length_mm * d @ u) + abs(part.width_mm * d @ v))
+
+
+def grip_fit_rejection(part, gripper) -> Rejection | None:
+    """Part width across the jaws must be <= opening - margin (``gripper`` from the cell file)."""
+    base = float(np.arctan2(part.xy_mm[1], part.xy_mm[0]))
+    width = jaw_width_mm(part, base, gripper.jaw)
+    limit = gripper.max_opening_mm - gripper.margin_mm
+    if width <= limit + 1e-9:
+        return None
+    return Rejection("grip_fit", f"{width:.1f} mm across the jaws > {limit:g} mm "
+                     f"(opening {gripper.max_opening_mm:g} - margin {gripper.margin_mm:g})",
+                     segment="close", value=width, limit=limit, unit="mm")

@@ -1,0 +1,123 @@
+"""Outputs of a plan: ``plan.json`` and ``joints.csv`` (DESIGN.md sec. 9), written atomically.
+
+``joints.csv`` starts with comment lines (``#``): the safety cautions, the cell name, the cell file's
+SHA-256, the time and the sample rate; then a header and one row per sample::
+
+    time_s, segment, part, x_mm, y_mm, z_mm, base_deg, shoulder_deg, elbow_deg, gripper,
+    base_us, shoulder_us, elbow_us, gripper_us
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from datetime import datetime, timezone
+
+import numpy as np
+
+from planning.fileio import write_text_atomic
+from planning.picks import Plan
+from planning.safety import SAFETY_LINES
+
+__all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs", "utc_now"]
+
+CSV_COLUMNS = ["time_s", "segment", "part", "x_mm", "y_mm", "z_mm", "base_deg", "shoulder_deg", "elbow_deg",
+               "gripper", "base_us", "shoulder_us", "elbow_us", "gripper_us"]
+
+
+def utc_now() -> str:
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
+
+def _r(values, nd=4):
+    return [round(float(v), nd) for v in values]
+
+
+def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | None = None,
+                 calibration: dict | None = None) -> dict:
+    """The plan as the JSON object of ``plan.json`` and ``--json``."""
+    picks = []
+    for pick in plan.picks:
+        segs = []
+        for s in pick.segments:
+            segs.append({"kind": s.segment.kind.value,
+                         "duration_s": round(s.duration_s, 4),
+                         "start_mm": _r(s.xyz_mm[0]), "end_mm": _r(s.xyz_mm[-1]),
+                         "start_deg": _r(np.degrees(s.joints_rad[0])), "end_deg": _r(np.degrees(s.joints_rad[-1])),
+                         "gripper": "closed" if s.segment.gripper_closed else "open"})
+        picks.append({"part": pick.part_id, "class": pick.class_name, "bin": pick.bin_name,
+                      "start_s": round(pick.start_s, 4), "duration_s": round(pick.duration_s, 4), "segments": segs})
+    parts = []
+    for o in plan.parts:
+        p = o.part
+        parts.append({"id": p.id, "class": p.class_name, "known_class": p.known_class,
+                      "pixel": None if p.pixel_uv is None else _r(p.pixel_uv, 2),
+                      "table_mm": _r(p.xy_mm, 3), "height_mm": round(p.height_mm, 3),
+                      "yaw_deg": round(p.yaw_deg, 2), "width_mm": round(p.width_mm, 3), "length_mm": round(p.length_mm, 3),
+                      "bin": o.bin_name, "status": o.status,
+                      "reason": None if o.rejection is None else o.rejection.check,
+                      "rejection": None if o.rejection is None else o.rejection.as_dict()})
+    rejected: dict[str, int] = {}
+    for o in plan.parts:
+        if o.rejection is not None:
+            rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
+    return {
+        "gripsight": "plan",
+        "created": created or utc_now(),
+        "cell": cell.cell,
+        "cell_sha256": cell.sha256,
+        "safety": list(SAFETY_LINES),
+        "photo": photo,
+        "calibration": calibration,
+        "parts": parts,
+        "picks": picks,
+        "totals": {"parts": len(plan.parts), "planned": len(plan.picks),
+                   "rejected": len(plan.parts) - len(plan.picks), "rejected_by_reason": rejected,
+                   "cycle_s": round(plan.cycle_s, 4), "samples": int(len(plan.samples.t_s)),
+                   "sample_hz": cell.motion.sample_hz},
+        "warnings": list(plan.warnings),
+    }
+
+
+def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
+    """The joint sequence as CSV text, safety comment lines first."""
+    s = plan.samples
+    q_deg = np.degrees(s.joints_rad)
+    pulses = arm.pulses_us(s.joints_rad, check=True)
+    grip = cell.arm.gripper
+    grip_us = np.where(s.gripper_closed, grip.closed_us, grip.open_us)
+    out = io.StringIO()
+    out.write("# gripsight joint sequence\n")
+    for line in SAFETY_LINES:
+        out.write(f"# SAFETY: {line}\n")
+    out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(CSV_COLUMNS)
+    for i in range(len(s.t_s)):
+        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], s.part_id[i],
+                         f"{s.xyz_mm[i, 0]:.4f}", f"{s.xyz_mm[i, 1]:.4f}", f"{s.xyz_mm[i, 2]:.4f}",
+                         f"{q_deg[i, 0]:.6f}", f"{q_deg[i, 1]:.6f}", f"{q_deg[i, 2]:.6f}",
+                         "closed" if s.gripper_closed[i] else "open",
+                         f"{pulses[i, 0]:.1f}", f"{pulses[i, 1]:.1f}", f"{pulses[i, 2]:.1f}", f"{grip_us[i]:.0f}"])
+    return out.getvalue()
+
+
+def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None,
+                       calibration: dict | None = None, plots: bool = True) -> dict:
+    """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
+    from pathlib import Path
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    created = utc_now()
+    data = plan_to_dict(plan, cell, created, photo, calibration)
+    write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))
+    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    if plots:
+        from planning.plan_plot import draw_joint_plot, draw_path_plot
+
+        draw_joint_plot(plan, cell, arm, out / "joints.png")
+        draw_path_plot(plan, cell, arm, out / "path.png")
+    return data

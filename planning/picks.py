@@ -1,0 +1,307 @@
+"""Pick-and-place sequences: order the parts, build each pick's segments, check every sample.
+
+A pick, from wherever the tool is (DESIGN.md sec. 8)::
+
+    [lower/rise to safe height] -> transfer (arc at safe height via the mid base angle) to above the
+    part -> descend to grip height -> close (dwell) -> rise -> transfer to above the part's bin ->
+    descend to drop height -> open (dwell) -> rise
+
+Every sample of every segment goes through :func:`planning.checks.first_failure`. A part whose pick
+fails any check is rejected with that check's reason, segment, time and value; the arm does not move
+for it and the plan goes on with the next part. Only checked samples ever reach the joint sequence.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from planning.arm import Arm
+from planning.checks import CheckContext, Rejection, first_failure, grip_fit_rejection
+from planning.errors import CellFileError, Problem
+from planning.motion import SampledSegment, Segment, SegmentKind, sample_segment, segment_duration_s
+from planning.ordering import order_nearest_two_opt
+from planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
+from planning.targets import PartTarget
+
+__all__ = ["Planner", "Plan", "PartOutcome", "PlannedPick", "JointSamples"]
+
+_MIN_ARC_BULGE_MM = 0.5     # a transfer whose via point is closer than this to the chord is straight
+_SAME_POINT_MM = 1e-6
+
+
+@dataclass(frozen=True)
+class PartOutcome:
+    """What became of one part: ``planned``, or ``rejected`` with a :class:`Rejection`."""
+
+    part: PartTarget
+    status: str
+    bin_name: str | None
+    rejection: Rejection | None = None
+
+
+@dataclass(frozen=True)
+class PlannedPick:
+    part_id: str
+    class_name: str
+    bin_name: str
+    segments: list[SampledSegment]
+    start_s: float
+
+    @property
+    def duration_s(self) -> float:
+        return float(sum(s.duration_s for s in self.segments))
+
+
+@dataclass(frozen=True)
+class JointSamples:
+    """The whole joint sequence on one clock (M samples)."""
+
+    t_s: np.ndarray               # (M,)
+    xyz_mm: np.ndarray            # (M, 3)
+    joints_rad: np.ndarray        # (M, 3)
+    gripper_closed: np.ndarray    # (M,) bool
+    segment_index: np.ndarray     # (M,) index into Plan.segments
+    segment_kind: list[str]       # per sample
+    part_id: list[str]            # per sample ('' for moves that serve no part)
+
+
+@dataclass
+class Plan:
+    """A checked plan: outcomes per part, the picks in order, the segments and the samples."""
+
+    parts: list[PartOutcome]
+    picks: list[PlannedPick]
+    segments: list[tuple[SampledSegment, float]]      # (segment, start time on the clock)
+    samples: JointSamples
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def cycle_s(self) -> float:
+        return float(self.samples.t_s[-1]) if len(self.samples.t_s) else 0.0
+
+    @property
+    def end_joints_rad(self) -> np.ndarray:
+        return self.samples.joints_rad[-1]
+
+
+class Planner:
+    """Plans pick-and-place sequences for one cell.
+
+    Raises
+    ------
+    CellFileError
+        At construction, if a bin cannot be reached at drop or safe height, or the home pose is not
+        the pose IK gives for its own tool point (the sequence would jump at the start).
+    """
+
+    def __init__(self, cell, arm: Arm | None = None):
+        self.cell = cell
+        self.arm = arm or Arm.from_config(cell.arm)
+        m = cell.motion
+        self.safe_z = m.safe_z_mm
+        self.dt_s = 1.0 / m.sample_hz
+        self.scaling = TimeScaling(m.time_scaling)
+        self.ctx = CheckContext(self.arm, m.floor_clearance_mm, tuple(cell.keep_out), self.dt_s)
+        self.home_rad = np.radians([m.home_deg.base, m.home_deg.shoulder, m.home_deg.elbow])
+        self._check_cell()
+
+    # ------------------------------------------------------------ cell-level checks
+    def _check_cell(self) -> None:
+        problems = []
+        for name, b in self.cell.bins.items():
+            for label, z in (("drop", b.z + self.cell.motion.drop_z_mm), ("safe", self.safe_z)):
+                sol = self.arm.inverse([[b.x, b.y, z]])
+                if not sol.ok[0]:
+                    problems.append(Problem(f"bins.{name}", f"cannot be reached at {label} height (z={z:g} mm): "
+                                                           f"{sol.reason_labels()[0]}"))
+        home_mm = self.arm.forward(self.home_rad[None])[0]
+        sol = self.arm.inverse(home_mm[None])
+        if not sol.ok[0] or np.abs(sol.joints_rad[0] - self.home_rad).max() > 1e-6:
+            problems.append(Problem("motion.home_deg", f"the home pose is not reachable on the elbow-{self.arm.branch.value} "
+                                                       "branch the plan uses; choose a home pose on that branch"))
+        if problems:
+            raise CellFileError(self.cell.source_path or "<cell>", problems)
+
+    # ------------------------------------------------------------ segment builders
+    def _sample(self, seg: Segment) -> SampledSegment:
+        m = self.cell.motion
+        duration = segment_duration_s(seg, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s)
+        return sample_segment(seg, self.arm, duration, self.scaling, self.dt_s)
+
+    def _straight(self, kind, p0, p1, part_id, closed) -> list[Segment]:
+        if np.linalg.norm(np.asarray(p1) - np.asarray(p0)) < _SAME_POINT_MM:
+            return []
+        return [Segment(kind, StraightPath(p0, p1), part_id=part_id, gripper_closed=closed)]
+
+    def _transfer(self, p0, p1, part_id, closed) -> list[Segment]:
+        """Arc at safe height from p0 to p1 through the point at the mid base angle and mean radius."""
+        p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
+        if np.linalg.norm(p1 - p0) < _SAME_POINT_MM:
+            return []
+        r0, r1 = np.hypot(*p0[:2]), np.hypot(*p1[:2])
+        a0, a1 = np.arctan2(p0[1], p0[0]), np.arctan2(p1[1], p1[0])
+        am, rm = 0.5 * (a0 + a1), 0.5 * (r0 + r1)
+        via = np.array([rm * np.cos(am), rm * np.sin(am), 0.5 * (p0[2] + p1[2])])
+        chord = p1 - p0
+        off = via - p0
+        bulge = np.linalg.norm(off - chord * (off @ chord) / (chord @ chord))
+        if bulge < _MIN_ARC_BULGE_MM:
+            return self._straight(SegmentKind.TRANSFER, p0, p1, part_id, closed)
+        try:
+            path = ArcPath(p0, via, p1)
+        except PathGeometryError:
+            return self._straight(SegmentKind.TRANSFER, p0, p1, part_id, closed)
+        return [Segment(SegmentKind.TRANSFER, path, part_id=part_id, gripper_closed=closed)]
+
+    def _to_safe(self, p0, part_id, closed) -> tuple[list[Segment], np.ndarray]:
+        p_safe = np.array([p0[0], p0[1], self.safe_z])
+        kind = SegmentKind.RISE if p_safe[2] > p0[2] else SegmentKind.LOWER
+        return self._straight(kind, p0, p_safe, part_id, closed), p_safe
+
+    def pick_segments(self, part: PartTarget, bin_name: str, start_mm: np.ndarray) -> list[Segment]:
+        """The segments of one pick from tool point ``start_mm`` (gripper open at the start)."""
+        x, y = part.xy_mm
+        grip_z = part.height_mm - self.cell.motion.grip_depth_mm
+        b = self.cell.bins[bin_name]
+        drop_z = b.z + self.cell.motion.drop_z_mm
+        pid = part.id
+        segs, p = self._to_safe(start_mm, pid, False)
+        above_part = np.array([x, y, self.safe_z])
+        above_bin = np.array([b.x, b.y, self.safe_z])
+        segs += self._transfer(p, above_part, pid, False)
+        segs += self._straight(SegmentKind.DESCEND, above_part, [x, y, grip_z], pid, False)
+        segs.append(Segment(SegmentKind.CLOSE, None, np.array([x, y, grip_z]), pid, True))
+        segs += self._straight(SegmentKind.RISE, [x, y, grip_z], above_part, pid, True)
+        segs += self._transfer(above_part, above_bin, pid, True)
+        segs += self._straight(SegmentKind.DESCEND, above_bin, [b.x, b.y, drop_z], pid, True)
+        segs.append(Segment(SegmentKind.OPEN, None, np.array([b.x, b.y, drop_z]), pid, False))
+        segs += self._straight(SegmentKind.RISE, [b.x, b.y, drop_z], above_bin, pid, False)
+        return segs
+
+    def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], Rejection | None]:
+        sampled, t = [], t0_s
+        for seg in segments:
+            s = self._sample(seg)
+            rej = first_failure(self.ctx, s, t)
+            if rej is not None:
+                return sampled, rej
+            sampled.append(s)
+            t += s.duration_s
+        return sampled, None
+
+    # ------------------------------------------------------------ the plan
+    def bin_for(self, part: PartTarget) -> str | None:
+        if part.known_class and part.class_name in self.cell.bins:
+            return part.class_name
+        return "reject" if "reject" in self.cell.bins else None
+
+    def plan(self, parts: list[PartTarget], order: str = "nearest", start_joints_rad=None,
+             end_at_home: bool = True, t0_s: float = 0.0) -> Plan:
+        """Plan every part; rejected parts carry their reason, the rest form one checked sequence.
+
+        Parameters
+        ----------
+        parts : list of PartTarget
+        order : {'nearest', 'detected'}
+            Nearest-next from the tool's position with a 2-opt pass, or the given order.
+        start_joints_rad : ndarray, shape (3,), optional
+            Where the arm is (default: the home pose).
+        end_at_home : bool
+            Finish with a move back to the home pose.
+        t0_s : float
+            Clock time of the first sample (for runs that continue a previous plan).
+        """
+        if order not in ("nearest", "detected"):
+            raise ValueError(f"order: expected 'nearest' or 'detected', got {order!r}")
+        q0 = self.home_rad if start_joints_rad is None else np.asarray(start_joints_rad, float)
+        start_mm = self.arm.forward(q0[None])[0]
+        outcomes: dict[str, PartOutcome] = {}
+        candidates: list[PartTarget] = []
+        for part in parts:
+            rej = self._precheck(part)
+            if rej is not None:
+                outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), rej)
+            else:
+                candidates.append(part)
+        if order == "nearest" and len(candidates) > 1:
+            part_xy = np.array([p.xy_mm for p in candidates])
+            bin_xy = np.array([[self.cell.bins[self.bin_for(p)].x, self.cell.bins[self.bin_for(p)].y] for p in candidates])
+            candidates = [candidates[i] for i in order_nearest_two_opt(start_mm[:2], part_xy, bin_xy)]
+
+        picks: list[PlannedPick] = []
+        accepted: list[SampledSegment] = []
+        t, here = t0_s, start_mm
+        for part in candidates:
+            bin_name = self.bin_for(part)
+            segs = self.pick_segments(part, bin_name, here)
+            sampled, rej = self._check_all(segs, t)
+            if rej is not None:
+                outcomes[part.id] = PartOutcome(part, "rejected", bin_name, rej)
+                continue
+            picks.append(PlannedPick(part.id, part.class_name, bin_name, sampled, t))
+            outcomes[part.id] = PartOutcome(part, "planned", bin_name)
+            accepted += sampled
+            t += sum(s.duration_s for s in sampled)
+            here = sampled[-1].xyz_mm[-1]
+        warnings = []
+        home_mm = self.arm.forward(self.home_rad[None])[0]
+        if end_at_home and np.linalg.norm(here - home_mm) > _SAME_POINT_MM:
+            segs, p = self._to_safe(here, None, False)
+            segs += self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
+            segs += self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
+                                   [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
+            sampled, rej = self._check_all(segs, t)
+            if rej is None:
+                accepted += sampled
+            else:
+                warnings.append(f"the move back to the home pose failed a check and was left out: {rej.describe()}")
+        ordered = [outcomes[p.id] for p in parts]
+        return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings)
+
+    def _precheck(self, part: PartTarget) -> Rejection | None:
+        """Reasons known before any motion: no bin, grip fit, grip or above-part point unreachable."""
+        if self.bin_for(part) is None:
+            return Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no 'reject' bin")
+        rej = grip_fit_rejection(part, self.cell.arm.gripper)
+        if rej is not None:
+            return rej
+        x, y = part.xy_mm
+        grip_z = part.height_mm - self.cell.motion.grip_depth_mm
+        pts = np.array([[x, y, grip_z], [x, y, self.safe_z]])
+        sol = self.arm.inverse(pts)
+        for i, where in enumerate(("descend", "transfer")):
+            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[i]), 0.0, np.zeros(1), pts[i:i + 1],
+                                   sol.joints_rad[i:i + 1], sol.reason[i:i + 1])
+            bad = first_failure(self.ctx, probe)
+            if bad is not None:
+                return Rejection(bad.check, bad.detail, where, None, bad.value, bad.limit, bad.unit)
+        return None
+
+    def _join(self, sampled: list[SampledSegment], q0, start_mm, t0_s):
+        """Concatenate segments on one clock (each segment's first sample is the previous one's last)."""
+        segments, t_parts, xyz, q, closed, seg_idx, kinds, pids = [], [], [], [], [], [], [], []
+        t = t0_s
+        t_parts.append(np.array([t0_s]))
+        xyz.append(start_mm[None])
+        q.append(q0[None])
+        closed.append(np.array([False]))
+        seg_idx.append(np.array([-1]))
+        kinds.append("start")
+        pids.append("")
+        for k, s in enumerate(sampled):
+            segments.append((s, t))
+            n = len(s.t_s) - 1
+            t_parts.append(t + s.t_s[1:])
+            xyz.append(s.xyz_mm[1:])
+            q.append(s.joints_rad[1:])
+            closed.append(np.full(n, s.segment.gripper_closed))
+            seg_idx.append(np.full(n, k))
+            kinds += [s.segment.kind.value] * n
+            pids += [s.segment.part_id or ""] * n
+            t += s.duration_s
+        samples = JointSamples(np.concatenate(t_parts), np.concatenate(xyz), np.concatenate(q),
+                               np.concatenate(closed), np.concatenate(seg_idx), kinds, pids)
+        return segments, samples
+
