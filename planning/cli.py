@@ -205,6 +205,110 @@ def _print_plan_summary(data: dict, out: Path) -> None:
                   (f", {out / 'joints.png'}, {out / 'path.png'}" if (out / "joints.png").exists() else ""))
 
 
+# ------------------------------------------------------------------ render
+def _floats(text: Optional[str], name: str, count: tuple[int, int]) -> Optional[list[float]]:
+    from planning.errors import GripsightError
+
+    if text is None:
+        return None
+    try:
+        values = [float(v) for v in text.split(",") if v.strip()]
+    except ValueError:
+        raise GripsightError(f"{name}: expected numbers separated by commas, got '{text}'") from None
+    if not count[0] <= len(values) <= count[1]:
+        raise GripsightError(f"{name}: expected {count[0]}-{count[1]} numbers, got {len(values)}")
+    return values
+
+
+def _progress():
+    from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
+
+    return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
+                    transient=False)
+
+
+@command()
+def render(
+    cell: Path = typer.Argument(..., help="The cell file (markers, work area and part classes are used)."),
+    out: Path = typer.Option(Path("renders"), "--out", "-o", help="Folder for the photos and their .truth.yaml files."),
+    scene: Optional[Path] = typer.Option(None, "--scene", help="Render one given scene (YAML), or again from a .truth.yaml."),
+    scenes: int = typer.Option(1, "--scenes", min=1, max=10000, help="How many random scenes."),
+    seed: int = typer.Option(0, "--seed", help="Seed: the same seed gives the same photos."),
+    sample_set: bool = typer.Option(False, "--sample-set", help="Render the whole demo set (calibration, bumped, demo, batch)."),
+    camera_shift_mm: float = typer.Option(0.0, "--camera-shift-mm", help="Move the camera sideways by this much (random direction)."),
+    camera_tilt_deg: float = typer.Option(0.0, "--camera-tilt-deg", min=0, max=30, help="Tilt the camera (random direction)."),
+    distortion: Optional[str] = typer.Option(None, "--distortion", help="Lens distortion K1[,K2] (OpenCV model), e.g. -0.15,0.03."),
+    noise: float = typer.Option(1.5, "--noise", min=0, max=30, help="Sensor noise, sigma in 8-bit levels."),
+    brightness: float = typer.Option(1.0, "--brightness", min=0.05, max=3, help="Light level (1 = normal)."),
+    white_balance: Optional[str] = typer.Option(None, "--white-balance", help="R,G,B gains, e.g. 1.15,1,0.75 for warm light."),
+    jpeg_quality: int = typer.Option(92, "--jpeg-quality", min=30, max=100),
+    vary: bool = typer.Option(False, "--vary", help="Random light, white balance, noise and lens per scene."),
+    touching: bool = typer.Option(False, "--touching", help="Put two touching tokens in every scene."),
+    unknown: bool = typer.Option(False, "--unknown", help="Put one token of an unknown colour in every scene."),
+    fmt: str = typer.Option("jpg", "--format", help="jpg or png."),
+):
+    """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
+    import numpy as np
+
+    from planning.config import load_cell, read_yaml
+    from planning.errors import GripsightError
+    from vision.photoset import UNKNOWN_LAB, _varied_conditions, write_photo, write_sample_set
+    from vision.render import render_scene
+    from vision.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
+
+    if fmt not in ("jpg", "png"):
+        raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
+    cfg = load_cell(cell)
+    if sample_set:
+        total = 53
+        with _progress() as bar:
+            task = bar.add_task("rendering the sample set", total=total)
+            paths = write_sample_set(cfg, out, seed=seed, progress=lambda p: bar.advance(task))
+        typer.echo(f"wrote {len(paths)} photos with truth files under {out}")
+        return
+    if scene is not None:
+        from pydantic import ValidationError
+
+        from planning.config import _pydantic_problems
+        from planning.errors import CellFileError
+
+        data, _ = read_yaml(scene, "scene file")
+        if isinstance(data, dict) and data.get("gripsight") == "render-truth":
+            data = data.get("scene")          # a truth file: render its photo again
+        try:
+            sc = Scene.model_validate(data or {})
+        except ValidationError as exc:
+            raise CellFileError(str(scene), _pydantic_problems(exc)) from None
+        try:
+            rendered = render_scene(cfg, sc)
+        except ValueError as exc:
+            raise GripsightError(f"{scene}: {exc}") from None
+        path = write_photo(out / f"{scene.stem}.{fmt}", rendered, sc.sensor.jpeg_quality)
+        typer.echo(f"wrote {path} and {path.stem}.truth.yaml")
+        return
+    k = _floats(distortion, "--distortion", (1, 2)) or [0.0]
+    wb = _floats(white_balance, "--white-balance", (3, 3)) or [1.0, 1.0, 1.0]
+    rng = np.random.default_rng(seed)
+    base = make_camera(CameraSpec(), cfg)
+    with _progress() as bar:
+        task = bar.add_task("rendering", total=scenes)
+        for i in range(scenes):
+            az = float(rng.uniform(0, 360))
+            centre = base.centre_mm + camera_shift_mm * np.array([np.cos(np.radians(az)), np.sin(np.radians(az)), 0.0])
+            cam = dict(centre_mm=centre.tolist(), focal_px=float(base.K[0, 0]), tilt_deg=camera_tilt_deg,
+                       tilt_azimuth_deg=float(rng.uniform(0, 360)), k1=k[0], k2=k[1] if len(k) > 1 else 0.0)
+            lighting = LightingSpec(brightness=brightness, white_balance=wb)
+            sensor = SensorSpec(noise=noise, jpeg_quality=jpeg_quality)
+            if vary:
+                lighting, sensor, lens = _varied_conditions(rng)
+                cam.update(lens)
+            sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
+                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor)
+            write_photo(out / f"render_{seed}_{i:03d}.{fmt}", render_scene(cfg, sc), sc.sensor.jpeg_quality)
+            bar.advance(task)
+    typer.echo(f"wrote {scenes} photos with truth files under {out}")
+
+
 # ------------------------------------------------------------------ entry point
 def main(argv: Optional[list[str]] = None) -> int:
     """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""
