@@ -309,6 +309,169 @@ def render(
     typer.echo(f"wrote {scenes} photos with truth files under {out}")
 
 
+# ------------------------------------------------------------------ markers, calibrate, check
+@command()
+def markers(
+    cell: Path = typer.Argument(..., help="The cell file."),
+    out: Path = typer.Option(Path("markers.pdf"), "--out", "-o", help="sheet.pdf (all pages) or sheet.png (one file per page)."),
+    paper: str = typer.Option("a4", "--paper", help="a4 or letter."),
+    dpi: int = typer.Option(300, "--dpi", min=72, max=1200, help="Resolution of PNG pages."),
+):
+    """Write a printable sheet of the layout's markers at true size, with a 100 mm scale bar."""
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+    from vision.sheet import PAPER_MM, write_marker_sheet
+
+    if paper not in PAPER_MM:
+        raise GripsightError(f"--paper: expected a4 or letter, got '{paper}'")
+    if out.suffix.lower() not in (".pdf", ".png"):
+        raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
+    cfg = load_cell(cell)
+    paths = write_marker_sheet(cfg, out, paper, dpi)
+    typer.echo(f"wrote {', '.join(map(str, paths))}: {len(cfg.markers.layout)} markers, "
+               f"{cfg.markers.size_mm:g} mm; print at 100 % and check the 100 mm scale bar")
+
+
+def _lens_for(cfg):
+    if cfg.camera.lens != "file":
+        return None
+    from vision.lens import load_opencv_lens
+
+    path = Path(cfg.camera.lens_file)
+    if not path.is_absolute() and cfg.source_path:
+        path = Path(cfg.source_path).parent / path
+    return load_opencv_lens(path)
+
+
+def _default_calibration(cell_path: Path) -> Path:
+    return cell_path.parent / "calibration.yaml"
+
+
+@command()
+def calibrate(
+    photo: Path = typer.Argument(..., help="A photo of the table with the markers in view."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Calibration file (default: calibration.yaml beside the cell file)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Overlay PNG (default: <calibration>_overlay.png)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the calibration record as JSON and nothing else."),
+):
+    """Fit the camera-to-table mapping (and lens, camera centre) from the markers in one photo."""
+    import json
+
+    import cv2
+
+    from planning.config import load_cell
+    from planning.fileio import write_bytes_atomic
+    from vision.calfile import calibration_record, write_calibration
+    from vision.calibration import calibrate as fit
+    from vision.markers import detect_markers
+    from vision.overlay import calibration_overlay
+    from vision.photo import read_photo
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    image = read_photo(photo)
+    detections = detect_markers(image, cfg.markers.dictionary)
+    cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
+    out = out or _default_calibration(cell_path)
+    moved = write_calibration(out, cal, cfg, photo)
+    overlay = overlay or out.with_name(out.stem + "_overlay.png")
+    ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
+    write_bytes_atomic(overlay, buf.tobytes())
+    if as_json:
+        typer.echo(json.dumps(calibration_record(cal, cfg, photo), indent=2))
+        return
+    _print_calibration(cal, out, overlay, moved)
+
+
+def _print_calibration(cal, out, overlay, moved) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    table = Table(title="markers", title_justify="left")
+    for col in ("id", "residual mm", "residual px", "status"):
+        table.add_column(col, justify="right" if col != "status" else "left")
+    for m in sorted(cal.markers, key=lambda m: m.id):
+        status = "used" if m.used else m.reason
+        mm = "" if m.residual_mm is None else f"{m.residual_mm:.3f}"
+        px = "" if m.residual_px is None else f"{m.residual_px:.2f}"
+        table.add_row(str(m.id), mm, px, status)
+    console.print(table)
+    for note in cal.notes:
+        console.print(f"note: {note}")
+    c = cal.camera_centre_mm
+    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.replace('_', ' ')}")
+    console.print(f"verdict: {cal.verdict}: RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm "
+                  f"over {len(cal.used)} markers")
+    moved_markers = [m for m in cal.markers if m.reason.startswith("moved")]
+    for m in moved_markers:
+        console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
+                      "where the cell file says, or update its position")
+    if moved is not None:
+        console.print(f"the previous calibration was moved to {moved}")
+    console.print(f"wrote {out} and {overlay}")
+
+
+@command()
+def check(
+    photo: Path = typer.Argument(..., help="A new photo from the calibrated camera."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write an overlay PNG of old and new work area."),
+    as_json: bool = typer.Option(False, "--json", help="Print the drift report as JSON and nothing else."),
+):
+    """Has the camera moved since calibration? Exit 0 if ok, 3 if moved."""
+    import json
+
+    from planning.config import load_cell
+    from vision.calfile import read_calibration
+    from vision.drift import check_drift
+    from vision.markers import detect_markers
+    from vision.photo import read_photo
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    stored = read_calibration(calibration or _default_calibration(cell_path))
+    image = read_photo(photo)
+    report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,
+                         (image.shape[1], image.shape[0]), str(photo))
+    if overlay is not None:
+        import cv2
+
+        from planning.fileio import write_bytes_atomic
+        from vision.overlay import drift_overlay
+
+        write_bytes_atomic(overlay, cv2.imencode(".png", drift_overlay(image, report, stored, cfg))[1].tobytes())
+    if as_json:
+        typer.echo(json.dumps(dict(report.as_dict(), photo=str(photo), calibration=stored.path), indent=2))
+    else:
+        _print_drift(report, photo, cell_path)
+    if report.verdict == "moved":
+        raise typer.Exit(3)
+
+
+def _print_drift(report, photo, cell_path) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    table = Table(title="marker shifts", title_justify="left")
+    for col in ("id", "shift px", "shift mm"):
+        table.add_column(col, justify="right")
+    for m in report.markers:
+        table.add_row(str(m.id), f"{m.shift_px:.2f}", f"{m.shift_mm:.2f}")
+    console.print(table)
+    for note in report.notes:
+        console.print(f"note: {note}")
+    if report.grid_max_mm is not None:
+        console.print(f"work-area mapping moved by max {report.grid_max_mm:.2f} mm, mean {report.grid_mean_mm:.2f} mm "
+                      f"(tolerance {report.tolerance_mm:g} mm)")
+    console.print(f"verdict: {report.verdict}")
+    if report.verdict == "moved":
+        console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")
+
+
 # ------------------------------------------------------------------ entry point
 def main(argv: Optional[list[str]] = None) -> int:
     """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""

@@ -98,11 +98,11 @@ def write_sample_set(cell, out_dir, seed: int = 2026, progress=None) -> list[Pat
     cam = demo_camera_spec(cell)
     quiet = SensorSpec(noise=1.2, jpeg_quality=90)
     jobs.append((out / "calibration.jpg", Scene(camera=cam, sensor=quiet, table_seed=int(rng.integers(2**31)))))
-    # the bump: the camera centre moves 10 mm sideways and the mount tilts to 2 degrees the other way
+    # the bump: the camera centre moves 10 mm sideways and the mount turns by about 2 degrees
     demo_cam = make_camera(cam, cell)
     shift = rng.normal(size=2)
     shift = 10.0 * shift / np.linalg.norm(shift)
-    bumped = demo_camera_spec(cell, tilt_deg=2.0, tilt_azimuth_deg=200.0, focal_px=float(demo_cam.K[0, 0]),
+    bumped = demo_camera_spec(cell, tilt_deg=2.4, tilt_azimuth_deg=95.0, focal_px=float(demo_cam.K[0, 0]),
                               centre_mm=[float(demo_cam.centre_mm[0] + shift[0]),
                                          float(demo_cam.centre_mm[1] + shift[1]), float(demo_cam.centre_mm[2])])
     jobs.append((out / "bumped" / "calibration.jpg", Scene(camera=bumped, sensor=quiet, table_seed=int(rng.integers(2**31)))))

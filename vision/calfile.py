@@ -1,0 +1,174 @@
+"""The calibration file: YAML, written atomically, an existing one moved to a dated history file.
+
+Content: ``H_table_from_pixel`` (ideal pixels -> table mm), the lens, the camera centre and where it
+came from, the image size, the photo's SHA-256, the time, per-marker residuals (and the corners seen,
+which the drift check compares against), the overall residuals and a verdict.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+from datetime import datetime, timezone
+from pathlib import Path
+from typing import Annotated, Literal
+
+import numpy as np
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError
+
+from planning.errors import CellFileError, Problem
+from planning.fileio import write_text_atomic
+from vision.calibration import Calibration, MarkerFit
+from vision.homography import TableMapping
+from vision.lens import lens_from_dict
+
+__all__ = ["write_calibration", "read_calibration", "StoredCalibration", "history_path", "file_sha256"]
+
+Finite = Annotated[float, Field(allow_inf_nan=False)]
+
+
+def file_sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+class _Model(BaseModel):
+    model_config = ConfigDict(extra="ignore", allow_inf_nan=False)
+
+
+class _Marker(_Model):
+    id: int
+    used: bool
+    reason: str = ""
+    residual_mm: Finite | None = None
+    residual_px: Finite | None = None
+    corners_px: Annotated[list[Annotated[list[Finite], Field(min_length=2, max_length=2)]], Field(min_length=4, max_length=4)]
+
+
+class _Lens(_Model):
+    model: Literal["none", "division", "opencv"]
+    model_config = ConfigDict(extra="allow", allow_inf_nan=False)
+
+
+class _Photo(_Model):
+    path: str
+    sha256: str
+    width_px: Annotated[int, Field(gt=0)]
+    height_px: Annotated[int, Field(gt=0)]
+
+
+class _File(_Model):
+    gripsight: Literal["calibration"]
+    created: str
+    cell: str
+    photo: _Photo
+    H_table_from_pixel: Annotated[list[Annotated[list[Finite], Field(min_length=3, max_length=3)]], Field(min_length=3, max_length=3)]
+    lens: _Lens
+    camera_centre_mm: Annotated[list[Finite], Field(min_length=3, max_length=3)]
+    camera_centre_source: Literal["measured", "raised_markers", "assumed"]
+    markers: list[_Marker]
+    residual: dict[str, Finite]
+    verdict: Literal["good", "fair", "poor"]
+    notes: list[str] = []
+
+
+class StoredCalibration:
+    """A calibration read back from its file."""
+
+    def __init__(self, path: str, data: _File):
+        self.path = path
+        self.data = data
+        self.mapping = TableMapping(np.array(data.H_table_from_pixel, float), lens_from_dict(data.lens.model_dump()))
+        self.camera_centre_mm = np.array(data.camera_centre_mm, float)
+        self.centre_source = data.camera_centre_source
+        self.image_size = (data.photo.width_px, data.photo.height_px)
+        self.marker_corners_px = {m.id: np.array(m.corners_px, float) for m in data.markers if m.used}
+        self.verdict = data.verdict
+
+
+def history_path(path: Path, when: datetime) -> Path:
+    """``calibration.yaml`` -> ``calibration_history/calibration-20261202T041500Z.yaml`` (never an existing name)."""
+    folder = path.parent / f"{path.stem}_history"
+    stamp = when.strftime("%Y%m%dT%H%M%SZ")
+    candidate = folder / f"{path.stem}-{stamp}{path.suffix}"
+    n = 1
+    while candidate.exists():
+        candidate = folder / f"{path.stem}-{stamp}-{n}{path.suffix}"
+        n += 1
+    return candidate
+
+
+def _marker_record(m: MarkerFit) -> dict:
+    return {"id": int(m.id), "used": bool(m.used), "reason": m.reason,
+            "residual_mm": None if m.residual_mm is None else round(m.residual_mm, 4),
+            "residual_px": None if m.residual_px is None else round(m.residual_px, 4),
+            "corners_px": np.round(m.corners_px, 4).tolist()}
+
+
+def calibration_record(cal: Calibration, cell, photo_path) -> dict:
+    w, h = cal.image_size
+    return {
+        "gripsight": "calibration",
+        "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z"),
+        "cell": cell.cell,
+        "photo": {"path": str(photo_path), "sha256": file_sha256(photo_path), "width_px": int(w), "height_px": int(h)},
+        "H_table_from_pixel": [[float(v) for v in row] for row in cal.mapping.H_table_from_pixel],
+        "lens": cal.mapping.lens.as_dict(),
+        "camera_centre_mm": [round(float(v), 3) for v in cal.camera_centre_mm],
+        "camera_centre_source": cal.centre_source,
+        "markers": [_marker_record(m) for m in sorted(cal.markers, key=lambda m: m.id)],
+        "residual": {"rms_mm": round(cal.rms_mm, 4), "max_mm": round(cal.max_mm, 4),
+                     "rms_px": round(cal.rms_px, 4), "max_px": round(cal.max_px, 4),
+                     "markers_used": len(cal.used)},
+        "verdict": cal.verdict,
+        "notes": list(cal.notes),
+    }
+
+
+def write_calibration(path, cal: Calibration, cell, photo_path) -> Path | None:
+    """Write the calibration atomically; an existing file is first moved to its history folder.
+
+    Returns the history file the old calibration went to, or None.
+    """
+    path = Path(path)
+    record = calibration_record(cal, cell, photo_path)
+    text = "# gripsight calibration: table frame in mm, pixels as in the photo (OpenCV's convention)\n" + \
+        yaml.safe_dump(record, sort_keys=False, default_flow_style=None, width=140)
+    moved = None
+    if path.exists():
+        moved = history_path(path, datetime.now(timezone.utc))
+        moved.parent.mkdir(parents=True, exist_ok=True)
+        os.replace(path, moved)
+    write_text_atomic(path, text)
+    return moved
+
+
+def read_calibration(path) -> StoredCalibration:
+    """Read and validate a calibration file.
+
+    Raises
+    ------
+    CellFileError
+        Missing file, YAML errors, or invalid content (each problem with its key path).
+    """
+    from planning.config import _pydantic_problems, read_yaml
+
+    data, _ = read_yaml(path, "calibration file")
+    if not isinstance(data, dict):
+        raise CellFileError(str(path), [Problem("", "not a gripsight calibration file; make one with `gripsight calibrate`")])
+    try:
+        parsed = _File.model_validate(data)
+    except ValidationError as exc:
+        raise CellFileError(str(path), _pydantic_problems(exc)) from None
+    H = np.array(parsed.H_table_from_pixel, float)
+    if abs(np.linalg.det(H)) < 1e-15:
+        raise CellFileError(str(path), [Problem("H_table_from_pixel", "is singular")])
+    try:
+        lens_from_dict(parsed.lens.model_dump())
+    except (KeyError, TypeError, ValueError) as exc:
+        raise CellFileError(str(path), [Problem("lens", f"invalid ({exc})")]) from None
+    return StoredCalibration(str(path), parsed)

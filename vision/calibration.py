@@ -1,0 +1,299 @@
+"""Camera-to-table calibration from the printed markers in one photo.
+
+Every corner of every marker lying on the table is a correspondence (photo pixel <-> table mm).
+
+1. Markers that cannot be used are set aside with a reason: ids not in the layout, ids seen twice,
+   raised markers (they serve the camera centre, not the table plane).
+2. ``H_table_from_pixel`` is fitted jointly with the lens (Fitzgibbon's division model when the cell asks
+   ``lens: estimate``) by ``scipy.optimize.least_squares`` on the table-mm residuals, starting from the
+   normalised DLT. A marker whose residual is an outlier among the others (robust z-score > 5 and more
+   than 1 mm) has moved on the table: it is named, left out, and the fit is repeated.
+3. The division model is kept only when it lowers the RMS residual by at least 20 % and the markers
+   reach far enough from the image centre to show the distortion; otherwise no lens correction.
+4. The camera centre: measured (``camera.centre_mm``), or from raised markers. A raised corner P at height
+   z appears, through the table mapping, at q = C + (P - C) C_z / (C_z - z): linear in
+   (C_xy (1 - k), k) with k = C_z / (C_z - z) for one height, refined over all raised corners by least
+   squares; C_z = k z / (k - 1). Without either, the nadir is assumed under the image centre.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+from scipy.optimize import least_squares
+
+from planning.errors import GripsightError
+from vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
+from vision.lens import DivisionLens, NoLens
+from vision.markers import MarkerDetection
+from vision.scene import marker_paper_corners_mm
+
+__all__ = ["Calibration", "CalibrationError", "MarkerFit", "calibrate", "camera_centre_from_raised", "VERDICTS"]
+
+_MOVED_MIN_MM = 1.0
+_LENS_GAIN = 0.8            # keep the division model if it brings the RMS below 80 % of the plain fit
+_LENS_MIN_REACH = 0.55      # ... and used corners reach this fraction of the half-diagonal from the centre
+_DEFAULT_HEIGHT_MM = 750.0
+VERDICTS = ("good", "fair", "poor")
+
+
+class CalibrationError(GripsightError):
+    """No usable calibration can be made from this photo (the message says why and what to do)."""
+
+
+@dataclass
+class MarkerFit:
+    """One marker's part in a calibration."""
+
+    id: int
+    corners_px: np.ndarray                 # (4, 2) as detected
+    corners_mm: np.ndarray | None          # (4, 3) from the layout, None if not in it
+    used: bool
+    reason: str = ""
+    residual_mm: float | None = None       # RMS over its corners
+    residual_px: float | None = None
+    vectors_px: np.ndarray | None = None   # (4, 2) predicted - observed, for the overlay
+
+    @property
+    def raised(self) -> bool:
+        return self.corners_mm is not None and float(self.corners_mm[0, 2]) > 0
+
+
+@dataclass
+class Calibration:
+    """The result: the mapping, the camera centre, per-marker residuals, and a verdict."""
+
+    mapping: TableMapping
+    camera_centre_mm: np.ndarray
+    centre_source: str                    # measured | raised_markers | assumed
+    markers: list[MarkerFit]
+    image_size: tuple[int, int]           # (width, height) px
+    rms_mm: float
+    max_mm: float
+    rms_px: float
+    max_px: float
+    verdict: str
+    notes: list[str] = field(default_factory=list)
+    lens_rms_without_mm: float | None = None
+
+    @property
+    def used(self) -> list[MarkerFit]:
+        return [m for m in self.markers if m.used]
+
+
+def _table_markers(detections: list[MarkerDetection], cell):
+    layout = cell.markers.layout
+    counts: dict[int, int] = {}
+    for d in detections:
+        counts[d.id] = counts.get(d.id, 0) + 1
+    fits = []
+    for d in detections:
+        corners_mm = None
+        if d.id in layout:
+            corners_mm = marker_paper_corners_mm(layout[d.id], cell.markers.size_mm)
+        if d.id not in layout:
+            fits.append(MarkerFit(d.id, d.corners_px, None, False, "not in the cell's layout"))
+        elif counts[d.id] > 1:
+            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, f"id seen {counts[d.id]} times in the photo"))
+        elif layout[d.id].z > 0:
+            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, "raised: used for the camera centre"))
+        else:
+            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, True))
+    return fits
+
+
+def _check_geometry(fits: list[MarkerFit], photo: str) -> None:
+    used = [f for f in fits if f.used]
+    if len(used) < 3:
+        found = ", ".join(str(f.id) for f in fits) or "none"
+        raise CalibrationError(f"{photo}: {len(used)} usable table marker(s) found (ids: {found}); at least 3 "
+                               "not in a line are needed; check that the markers are in view, lit and in focus")
+    centres = np.array([f.corners_mm[:, :2].mean(axis=0) for f in used])
+    sv = np.linalg.svd(centres - centres.mean(axis=0), compute_uv=False)
+    if sv[1] < 0.08 * sv[0]:
+        ids = ", ".join(str(f.id) for f in used)
+        raise CalibrationError(f"{photo}: the usable markers ({ids}) lie nearly in a line; the mapping across "
+                               "the table would be unreliable; make sure markers on both sides of the work area are seen")
+
+
+def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None):
+    """Least-squares fit of H (and lambda for 'division') from photo pixels to table mm; returns
+    (mapping, residual vectors (N, 2) mm)."""
+    w, h = image_size
+    base = fixed_lens if fixed_lens is not None else DivisionLens.for_image(0.0, w, h)
+    ideal0 = base.ideal(uv) if fixed_lens is not None else uv
+    T_px, T_mm = normalising_transform(ideal0), normalising_transform(xy)
+    Hn0 = T_mm @ fit_homography_dlt(ideal0, xy) @ np.linalg.inv(T_px)
+    Hn0 = Hn0 / Hn0[2, 2]
+    free_lens = lens_kind == "division"
+
+    def unpack(params):
+        Hn = np.append(params[:8], 1.0).reshape(3, 3)
+        lam = params[8] if free_lens else 0.0
+        return Hn, lam
+
+    def residual(params):
+        Hn, lam = unpack(params)
+        ideal = DivisionLens(lam, base.centre_px, base.scale_px).ideal(uv) if free_lens else ideal0
+        pred = apply_homography(np.linalg.inv(T_mm) @ Hn @ T_px, ideal)
+        return (pred - xy).ravel()
+
+    x0 = np.append(Hn0.ravel()[:8], [0.0] if free_lens else [])
+    sol = least_squares(residual, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=2000)
+    Hn, lam = unpack(sol.x)
+    H = np.linalg.inv(T_mm) @ Hn @ T_px
+    lens = DivisionLens(float(lam), base.centre_px, base.scale_px) if free_lens else (fixed_lens or NoLens())
+    return TableMapping(H / H[2, 2], lens), sol.fun.reshape(-1, 2)
+
+
+def _marker_residuals(mapping: TableMapping, fits: list[MarkerFit]) -> np.ndarray:
+    """RMS table-mm residual of each marker's corners under a mapping."""
+    return np.array([np.sqrt(((mapping(f.corners_px) - f.corners_mm[:, :2]) ** 2).sum(axis=1).mean()) for f in fits])
+
+
+def _fit_used(fits, lens_kind, image_size, fixed_lens, photo):
+    used = [f for f in fits if f.used]
+    _check_geometry(fits, photo)
+    uv = np.concatenate([f.corners_px for f in used])
+    xy = np.concatenate([f.corners_mm[:, :2] for f in used])
+    try:
+        return _fit(uv, xy, lens_kind, image_size, fixed_lens)
+    except FitFailure as exc:
+        raise CalibrationError(f"{photo}: {exc}") from None
+
+
+def _fit_with_outliers(fits, lens_kind, image_size, fixed_lens, photo):
+    """Fit, then test the worst marker against a fit of the others (leave one out): if the others
+    predict it more than 1 mm and 5x their own typical residual away, it has moved; repeat."""
+    while True:
+        mapping, res = _fit_used(fits, lens_kind, image_size, fixed_lens, photo)
+        used = [f for f in fits if f.used]
+        if len(used) <= 4:
+            return mapping, res
+        worst = used[int(np.argmax(_marker_residuals(mapping, used)))]
+        worst.used = False
+        try:
+            others, _ = _fit_used(fits, lens_kind, image_size, fixed_lens, photo)
+        except CalibrationError:
+            worst.used = True
+            return mapping, res
+        rest = [f for f in fits if f.used]
+        predicted = float(_marker_residuals(others, [worst])[0])
+        typical = float(np.median(_marker_residuals(others, rest)))
+        if predicted > max(_MOVED_MIN_MM, 5.0 * typical):
+            worst.reason = f"moved on the table? {predicted:.1f} mm from where the other markers put it"
+            continue
+        worst.used = True
+        return mapping, res
+
+
+def camera_centre_from_raised(mapping: TableMapping, raised: list[MarkerFit]) -> np.ndarray:
+    """Camera centre (3,) in table mm from raised markers' corners seen through the table mapping."""
+    q = np.concatenate([mapping(f.corners_px) for f in raised])           # (N, 2) where they appear
+    P = np.concatenate([f.corners_mm for f in raised])                     # (N, 3) where they are
+    z = P[:, 2]
+    # linear start with one k for the mean height
+    A = np.zeros((2 * len(q), 3))
+    A[0::2, 0] = 1
+    A[1::2, 1] = 1
+    A[0::2, 2] = P[:, 0]
+    A[1::2, 2] = P[:, 1]
+    a1, a2, k = np.linalg.lstsq(A, q.ravel(), rcond=None)[0]
+    zr = float(z.mean())
+    if k <= 1.0 + 1e-6:
+        raise CalibrationError("the raised markers do not show the camera's perspective (is their height right?)")
+    c0 = np.array([a1 / (1 - k), a2 / (1 - k), k * zr / (k - 1)])
+
+    def residual(c):
+        kk = c[2] / (c[2] - z)
+        return (c[:2] + (P[:, :2] - c[:2]) * kk[:, None] - q).ravel()
+
+    return least_squares(residual, c0, method="lm").x
+
+
+def _verdict(rms_mm: float, max_mm: float, n_used: int) -> str:
+    if rms_mm <= 0.25 and max_mm <= 1.0 and n_used >= 4:
+        return "good"
+    if rms_mm <= 0.6 and max_mm <= 2.0:
+        return "fair"
+    return "poor"
+
+
+def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, int], photo: str = "photo",
+              lens=None) -> Calibration:
+    """Fit the pixel -> table mapping, lens and camera centre from one photo's markers.
+
+    Parameters
+    ----------
+    detections : list of MarkerDetection
+    cell : the cell (uses ``markers`` and ``camera``)
+    image_size : (width, height) in px
+    photo : str
+        Name used in messages.
+    lens : OpenCVLens, optional
+        A known lens (``camera.lens: file``); then only the homography is fitted.
+
+    Raises
+    ------
+    CalibrationError
+        Fewer than 3 usable table markers, or markers nearly in a line.
+    """
+    if not detections:
+        raise CalibrationError(f"{photo}: no {cell.markers.dictionary} markers found; check the dictionary in "
+                               "the cell file, the lighting and the focus")
+    fits = _table_markers(detections, cell)
+    mode = cell.camera.lens
+    notes = []
+    if lens is not None or mode == "none":
+        kind, fixed = "fixed", lens
+    else:
+        kind, fixed = "division", None
+    mapping, res = _fit_with_outliers(fits, kind, image_size, fixed, photo)
+    rms_without = None
+    if kind == "division":
+        plain_fits = [replace(f) for f in fits]          # the plain fit may set other markers aside
+        plain, res_plain = _fit_with_outliers(plain_fits, "fixed", image_size, None, photo)
+        rms_plain = float(np.sqrt((res_plain ** 2).sum(axis=1).mean()))
+        rms_div = float(np.sqrt((res ** 2).sum(axis=1).mean()))
+        uv_used = np.concatenate([f.corners_px for f in fits if f.used])
+        reach = np.linalg.norm(uv_used - mapping.lens.centre_px, axis=1).max() / mapping.lens.scale_px
+        rms_without = rms_plain
+        if not (rms_div < _LENS_GAIN * rms_plain and reach >= _LENS_MIN_REACH):
+            why = ("it did not lower the residual by 20 %" if rms_div >= _LENS_GAIN * rms_plain
+                   else "the markers do not reach far enough toward the image corners")
+            notes.append(f"lens distortion not estimated: {why} ({rms_plain:.3f} -> {rms_div:.3f} mm RMS)")
+            mapping, res, fits = plain, res_plain, plain_fits
+        else:
+            notes.append(f"lens: division model lambda={mapping.lens.lam:.5f} took the RMS from "
+                         f"{rms_plain:.3f} to {rms_div:.3f} mm")
+    # residuals per marker, in mm (table) and px (photo)
+    for f in fits:
+        if f.corners_mm is None or f.raised:
+            continue
+        pred_mm = mapping(f.corners_px)
+        pred_px = mapping.inverse(f.corners_mm[:, :2])
+        f.residual_mm = float(np.sqrt(((pred_mm - f.corners_mm[:, :2]) ** 2).sum(axis=1).mean()))
+        f.residual_px = float(np.sqrt(((pred_px - f.corners_px) ** 2).sum(axis=1).mean()))
+        f.vectors_px = pred_px - f.corners_px
+    used = [f for f in fits if f.used]
+    err_mm = np.concatenate([np.linalg.norm(mapping(f.corners_px) - f.corners_mm[:, :2], axis=1) for f in used])
+    err_px = np.concatenate([np.linalg.norm(f.vectors_px, axis=1) for f in used])
+    rms_mm, max_mm = float(np.sqrt((err_mm ** 2).mean())), float(err_mm.max())
+    rms_px, max_px = float(np.sqrt((err_px ** 2).mean())), float(err_px.max())
+
+    raised = [f for f in fits if f.raised and f.reason.startswith("raised")]
+    if cell.camera.centre_mm is not None:
+        centre, source = np.array(cell.camera.centre_mm, float), "measured"
+    elif raised:
+        centre, source = camera_centre_from_raised(mapping, raised), "raised_markers"
+    else:
+        w, h = image_size
+        nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
+        height = cell.camera.height_mm or _DEFAULT_HEIGHT_MM
+        centre, source = np.array([nadir[0], nadir[1], height]), "assumed"
+        notes.append(f"camera centre assumed: nadir under the image centre, height {height:g} mm "
+                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}")
+    return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
+                       rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes, rms_without)
+

@@ -1,0 +1,143 @@
+"""Has the camera moved since the calibration? And what to do about it for one photo.
+
+:func:`check_drift` compares the markers in a new photo with the calibration: each marker's shift in
+pixels and in table mm (through the old mapping), then refits the mapping from the new photo's
+markers (keeping the calibrated lens: a bump moves the camera, not its optics) and measures, over a
+10 mm grid of the work area, how far the old mapping would put each point from where it now is.
+Verdict ``moved`` when that exceeds ``camera.drift_tolerance_mm``.
+
+:func:`register` applies the cell's ``camera.on_move`` policy for ``run`` and ``batch``: use the
+calibration (``ok``), refit from this photo (``refit``), or refuse the photo (``stop``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from vision.calibration import Calibration, CalibrationError, calibrate
+from vision.markers import MarkerDetection
+
+__all__ = ["DriftReport", "MarkerShift", "check_drift", "register", "Registration", "work_area_grid_mm"]
+
+
+@dataclass(frozen=True)
+class MarkerShift:
+    id: int
+    shift_px: float
+    shift_mm: float
+
+
+@dataclass
+class DriftReport:
+    verdict: str                      # ok | moved
+    tolerance_mm: float
+    grid_max_mm: float | None
+    grid_mean_mm: float | None
+    markers: list[MarkerShift]
+    missing: list[int]
+    refit: Calibration | None
+    notes: list[str] = field(default_factory=list)
+
+    def as_dict(self) -> dict:
+        return {"verdict": self.verdict, "tolerance_mm": self.tolerance_mm,
+                "grid_max_mm": None if self.grid_max_mm is None else round(self.grid_max_mm, 4),
+                "grid_mean_mm": None if self.grid_mean_mm is None else round(self.grid_mean_mm, 4),
+                "markers": [{"id": m.id, "shift_px": round(m.shift_px, 3), "shift_mm": round(m.shift_mm, 3)}
+                            for m in self.markers],
+                "missing": self.missing, "notes": self.notes}
+
+
+def work_area_grid_mm(cell, step_mm: float = 10.0) -> np.ndarray:
+    """Points (N, 2) of a grid with ``step_mm`` spacing inside the work-area polygon."""
+    from matplotlib.path import Path as PolyPath
+
+    wa = np.asarray(cell.work_area, float)
+    x = np.arange(wa[:, 0].min(), wa[:, 0].max() + 1e-9, step_mm)
+    y = np.arange(wa[:, 1].min(), wa[:, 1].max() + 1e-9, step_mm)
+    xx, yy = np.meshgrid(x, y)
+    pts = np.column_stack([xx.ravel(), yy.ravel()])
+    inside = PolyPath(wa).contains_points(pts, radius=1e-6) | PolyPath(wa[::-1]).contains_points(pts, radius=1e-6)
+    return pts[inside]
+
+
+def check_drift(stored, detections: list[MarkerDetection], cell, image_size, photo: str = "photo") -> DriftReport:
+    """Compare a photo's markers with a stored calibration (see the module docstring).
+
+    Raises
+    ------
+    CalibrationError
+        If the photo's size differs from the calibration photo's.
+    """
+    if tuple(image_size) != tuple(stored.image_size):
+        w, h = stored.image_size
+        raise CalibrationError(f"{photo}: the photo is {image_size[0]}x{image_size[1]} px but the calibration "
+                               f"was made from {w}x{h} px photos; calibrate again with a photo from this camera")
+    tol = cell.camera.drift_tolerance_mm
+    seen = {d.id: d.corners_px for d in detections}
+    shifts, missing = [], []
+    old = stored.mapping
+    for marker_id, old_px in sorted(stored.marker_corners_px.items()):
+        if marker_id not in seen or sum(1 for d in detections if d.id == marker_id) > 1:
+            missing.append(marker_id)
+            continue
+        new_px = seen[marker_id]
+        shift_px = float(np.linalg.norm(new_px - old_px, axis=1).mean())
+        shift_mm = float(np.linalg.norm(old(new_px) - old(old_px), axis=1).mean())
+        shifts.append(MarkerShift(marker_id, shift_px, shift_mm))
+    notes = []
+    try:
+        refit = calibrate(detections, cell, image_size, photo, lens=_fixed_lens(old.lens))
+    except CalibrationError as exc:
+        refit = None
+        notes.append(f"no refit from this photo: {exc}")
+    grid_max = grid_mean = None
+    if refit is not None:
+        grid = work_area_grid_mm(cell)
+        d = np.linalg.norm(refit.mapping(old.inverse(grid)) - grid, axis=1)
+        grid_max, grid_mean = float(d.max()), float(d.mean())
+        moved = grid_max > tol
+    else:
+        moved = any(s.shift_mm > tol for s in shifts) or not shifts
+    if missing:
+        notes.append(f"markers not seen: {', '.join(map(str, missing))}")
+    return DriftReport("moved" if moved else "ok", tol, grid_max, grid_mean, shifts, missing, refit, notes)
+
+
+def _fixed_lens(lens):
+    from vision.lens import NoLens
+
+    return None if isinstance(lens, NoLens) else lens
+
+
+@dataclass
+class Registration:
+    """How one photo is mapped to the table: the mapping and camera centre to use, and why."""
+
+    action: str                       # calibrated | refit | refused
+    mapping: object | None
+    camera_centre_mm: np.ndarray | None
+    drift: DriftReport | None
+    message: str = ""
+
+
+def register(stored, detections, cell, image_size, photo: str = "photo") -> Registration:
+    """Apply ``camera.on_move`` to one photo: use the calibration, refit from the photo, or refuse it."""
+    try:
+        report = check_drift(stored, detections, cell, image_size, photo)
+    except CalibrationError as exc:
+        return Registration("refused", None, None, None, str(exc))
+    if report.verdict == "ok":
+        return Registration("calibrated", stored.mapping, stored.camera_centre_mm, report)
+    moved = (f"camera moved: the calibration is off by up to {report.grid_max_mm:.2f} mm over the work area"
+             if report.grid_max_mm is not None else "camera moved (markers shifted)")
+    if cell.camera.on_move == "stop":
+        return Registration("refused", None, None, report, f"{moved}; camera.on_move is 'stop': nothing planned for "
+                                                           f"{photo}; recalibrate with: gripsight calibrate {photo}")
+    if report.refit is None:
+        return Registration("refused", None, None, report, f"{moved}, and this photo cannot be refitted: "
+                                                           f"{report.notes[0] if report.notes else ''}")
+    centre = report.refit.camera_centre_mm if report.refit.centre_source != "assumed" else stored.camera_centre_mm
+    return Registration("refit", report.refit.mapping, centre, report,
+                        f"{moved}; refitted from this photo's markers (RMS {report.refit.rms_mm:.3f} mm)")

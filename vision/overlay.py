@@ -1,0 +1,93 @@
+"""Pictures drawn over a photo: what the calibration and the drift check saw and decided."""
+
+from __future__ import annotations
+
+import cv2
+import numpy as np
+
+__all__ = ["calibration_overlay", "drift_overlay", "draw_panel", "draw_polyline_mm"]
+
+# BGR
+_USED = (60, 170, 40)
+_SET_ASIDE = (0, 140, 255)
+_MOVED = (40, 40, 220)
+_TEXT_BG = (30, 30, 30)
+_ARROW = (255, 0, 200)
+
+
+def draw_panel(image, lines: list[str], corner: str = "top-left") -> None:
+    """A dark box with white text lines in a corner of the image."""
+    font, scale, thick = cv2.FONT_HERSHEY_SIMPLEX, 0.55, 1
+    sizes = [cv2.getTextSize(t, font, scale, thick)[0] for t in lines]
+    w = max((s[0] for s in sizes), default=0) + 16
+    h = 22 * len(lines) + 10
+    if corner == "centre":
+        x0, y0 = (image.shape[1] - w) // 2, (image.shape[0] - h) // 2
+    else:
+        x0 = 8 if corner.endswith("left") else image.shape[1] - w - 8
+        y0 = 8 if corner.startswith("top") else image.shape[0] - h - 8
+    sub = image[y0:y0 + h, x0:x0 + w]
+    sub[...] = (0.35 * sub + 0.65 * np.array(_TEXT_BG)).astype(np.uint8)
+    for i, t in enumerate(lines):
+        cv2.putText(image, t, (x0 + 8, y0 + 22 * (i + 1)), font, scale, (255, 255, 255), thick, cv2.LINE_AA)
+
+
+def draw_polyline_mm(image, mapping, pts_mm, colour, closed=True, thickness=2, samples_per_edge=20) -> None:
+    """Draw a table-frame polyline through the mapping (edges sampled, so lens curvature shows)."""
+    pts = np.asarray(pts_mm, float)
+    if closed:
+        pts = np.vstack([pts, pts[:1]])
+    t = np.linspace(0, 1, samples_per_edge)[:, None]
+    dense = np.concatenate([a + t * (b - a) for a, b in zip(pts[:-1], pts[1:])])
+    uv = mapping.inverse(dense)
+    cv2.polylines(image, [np.round(uv * 16).astype(np.int32)], False, colour, thickness, cv2.LINE_AA, shift=4)
+
+
+def calibration_overlay(image_bgr, cal, cell) -> np.ndarray:
+    """Markers (used / set aside / moved) with residual arrows magnified, the work area, and a summary."""
+    out = image_bgr.copy()
+    used = [m for m in cal.markers if m.used and m.vectors_px is not None]
+    longest = max((np.linalg.norm(m.vectors_px, axis=1).max() for m in used), default=0.0)
+    gain = float(np.clip(30.0 / max(longest, 1e-6), 1.0, 500.0))
+    draw_polyline_mm(out, cal.mapping, cell.work_area, (255, 200, 0), thickness=2)
+    for m in cal.markers:
+        colour = _USED if m.used else (_MOVED if m.reason.startswith("moved") else _SET_ASIDE)
+        pts = np.round(m.corners_px * 16).astype(np.int32)
+        cv2.polylines(out, [pts], True, colour, 2, cv2.LINE_AA, shift=4)
+        c = m.corners_px.mean(axis=0)
+        label = f"{m.id}" + (f" {m.residual_mm:.2f}mm" if m.residual_mm is not None else "")
+        if not m.used:
+            label += f" ({m.reason.split(':')[0]})"
+        cv2.putText(out, label, (int(c[0]) - 30, int(m.corners_px[:, 1].max()) + 18), cv2.FONT_HERSHEY_SIMPLEX,
+                    0.45, colour, 1, cv2.LINE_AA)
+        if m.vectors_px is not None:
+            for p, v in zip(m.corners_px, m.vectors_px):
+                tip = p + gain * v
+                cv2.arrowedLine(out, tuple(np.round(p).astype(int)), tuple(np.round(tip).astype(int)), _ARROW, 2,
+                                cv2.LINE_AA, tipLength=0.25)
+    lens = cal.mapping.lens.as_dict()
+    lens_text = f"division lambda {lens['lambda']:.4f}" if lens["model"] == "division" else lens["model"]
+    draw_panel(out, [
+        f"calibration: {cal.verdict}   RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm",
+        f"markers used {len(cal.used)} of {len(cal.markers)}   lens: {lens_text}",
+        f"camera centre ({cal.camera_centre_mm[0]:.0f}, {cal.camera_centre_mm[1]:.0f}, {cal.camera_centre_mm[2]:.0f}) mm"
+        f" from {cal.centre_source.replace('_', ' ')}",
+        f"magenta arrows: residual x{gain:.0f}; green used, orange set aside, red moved",
+    ], corner="centre")
+    return out
+
+
+def drift_overlay(image_bgr, report, stored, cell) -> np.ndarray:
+    """The work area as the calibration maps it (yellow) and as this photo's markers map it (cyan)."""
+    out = image_bgr.copy()
+    draw_polyline_mm(out, stored.mapping, cell.work_area, (0, 220, 255), thickness=2)
+    if report.refit is not None:
+        draw_polyline_mm(out, report.refit.mapping, cell.work_area, (255, 255, 0), thickness=2)
+    for m in report.markers:
+        old = stored.marker_corners_px[m.id]
+        cv2.polylines(out, [np.round(old * 16).astype(np.int32)], True, (0, 220, 255), 1, cv2.LINE_AA, shift=4)
+    grid = "n/a" if report.grid_max_mm is None else f"max {report.grid_max_mm:.2f} mm, mean {report.grid_mean_mm:.2f} mm"
+    draw_panel(out, [f"drift: {report.verdict} (tolerance {report.tolerance_mm:g} mm)",
+                     f"work-area mapping moved: {grid}",
+                     "yellow: calibrated work area and markers; cyan: as seen now"], corner="centre")
+    return out
