@@ -472,6 +472,96 @@ def _print_drift(report, photo, cell_path) -> None:
         console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")
 
 
+# ------------------------------------------------------------------ detect
+@command()
+def detect(
+    photo: Path = typer.Argument(..., help="A photo from the calibrated camera."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write a PNG with outlines, classes, pick points and reasons."),
+    as_json: bool = typer.Option(False, "--json", help="Print the parts as JSON and nothing else."),
+    sample: Optional[str] = typer.Option(None, "--sample", help="U,V: print the white-balanced CIELAB colour around that pixel."),
+):
+    """Find the parts in a photo: class, table position (mm, parallax corrected), size, status."""
+    import json
+
+    from planning.cell import analyse_photo, load_or_make_calibration
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+
+    cfg = load_cell(_find_cell(cell, photo))
+    if sample is not None:
+        _sample_colour(photo, cfg, sample)
+        return
+    stored = load_or_make_calibration(cfg, calibration)
+    result = analyse_photo(photo, cfg, stored)
+    if result.refused:
+        raise GripsightError(result.registration.message)
+    det = result.detection
+    if overlay is not None:
+        import cv2
+
+        from planning.fileio import write_bytes_atomic
+        from vision.overlay import detection_overlay
+
+        image = detection_overlay(result.image, det, result.registration.mapping,
+                                  result.registration.camera_centre_mm, cfg)
+        write_bytes_atomic(overlay, cv2.imencode(".png", image)[1].tobytes())
+    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action,
+            "registration_note": result.registration.message,
+            "drift": None if result.registration.drift is None else result.registration.drift.as_dict(),
+            "white_balance": None if det.illumination is None else det.illumination.as_dict(),
+            "parts": [p.as_dict() for p in det.parts], "notes": det.notes}
+    if as_json:
+        typer.echo(json.dumps(data, indent=2))
+        return
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console()
+    if result.registration.message:
+        console.print(f"note: {result.registration.message}")
+    table = Table(title=f"{photo}: parts", title_justify="left")
+    for col in ("id", "class", "x mm", "y mm", "yaw", "size mm", "ΔE", "status"):
+        table.add_column(col, justify="right" if col not in ("id", "class", "status") else "left")
+    for p in det.parts:
+        status = p.status if p.status == "ok" else f"{p.status}: {p.reason}"
+        table.add_row(p.id, p.class_name, f"{p.xy_mm[0]:.1f}", f"{p.xy_mm[1]:.1f}", f"{p.yaw_deg:.0f}",
+                      f"{p.length_mm:.0f}x{p.width_mm:.0f}", "" if p.delta_e != p.delta_e else f"{p.delta_e:.1f}", status)
+    console.print(table)
+    for note in det.notes:
+        console.print(f"note: {note}")
+    if overlay is not None:
+        console.print(f"wrote {overlay}")
+
+
+def _sample_colour(photo: Path, cfg, text: str) -> None:
+    """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
+    import numpy as np
+
+    from vision.colour import delta_e_2000
+    from vision.markers import detect_markers
+    from vision.photo import read_photo
+    from vision.whitebalance import fit_illumination, lab_image
+
+    uv = _floats(text, "--sample", (2, 2))
+    image = read_photo(photo)
+    u, v = int(round(uv[0])), int(round(uv[1]))
+    h, w = image.shape[:2]
+    if not (3 <= u < w - 3 and 3 <= v < h - 3):
+        from planning.errors import GripsightError
+
+        raise GripsightError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
+    ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary), cfg)
+    patch = lab_image(image[v - 3:v + 4, u - 3:u + 4], ill, (u - 3, v - 3)).reshape(-1, 3)
+    lab = np.median(patch, axis=0)
+    typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
+               + ("" if ill is not None else " (no marker paper seen: not white-balanced)"))
+    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(delta_e_2000(lab, kv[1].lab))):
+        d = float(delta_e_2000(lab, cls.lab))
+        typer.echo(f"  {name}: dE2000 {d:.1f} (tolerance {cls.tolerance:g}){'  <- match' if d < cls.tolerance else ''}")
+
+
 # ------------------------------------------------------------------ entry point
 def main(argv: Optional[list[str]] = None) -> int:
     """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""

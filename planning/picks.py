@@ -261,7 +261,10 @@ class Planner:
         return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings)
 
     def _precheck(self, part: PartTarget) -> Rejection | None:
-        """Reasons known before any motion: no bin, grip fit, grip or above-part point unreachable."""
+        """Reasons known before any motion: the photo's verdict, no bin, grip fit, grip or above-part
+        point unreachable."""
+        if part.vision_status not in ("ok", "unknown_colour"):
+            return Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
         if self.bin_for(part) is None:
             return Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no 'reject' bin")
         rej = grip_fit_rejection(part, self.cell.arm.gripper)

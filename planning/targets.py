@@ -52,6 +52,9 @@ class PartTarget:
         False for a class the cell does not know (planned to the ``reject`` bin).
     pixel_uv : tuple of float or None
         Where it was seen in the photo (u, v px), if it came from one.
+    vision_status, vision_detail : str
+        What the photo analysis said (``ok``, ``unknown_colour``, ``cut_by_edge``, ``too_small``,
+        ``too_large``, ``touching``); a part that is not ``ok`` or ``unknown_colour`` is rejected with it.
     """
 
     id: str
@@ -64,6 +67,8 @@ class PartTarget:
     round: bool = False
     known_class: bool = True
     pixel_uv: tuple[float, float] | None = None
+    vision_status: str = "ok"
+    vision_detail: str = ""
 
 
 class _Entry(BaseModel):

@@ -124,6 +124,10 @@ class Registration:
 
 def register(stored, detections, cell, image_size, photo: str = "photo") -> Registration:
     """Apply ``camera.on_move`` to one photo: use the calibration, refit from the photo, or refuse it."""
+    if not detections:
+        return Registration("refused", None, None, None,
+                            f"{photo}: no {cell.markers.dictionary} markers seen, so the camera cannot be checked; "
+                            "check the light and that the markers are in view")
     try:
         report = check_drift(stored, detections, cell, image_size, photo)
     except CalibrationError as exc:

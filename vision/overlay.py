@@ -5,7 +5,7 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-__all__ = ["calibration_overlay", "drift_overlay", "draw_panel", "draw_polyline_mm"]
+__all__ = ["calibration_overlay", "detection_overlay", "drift_overlay", "draw_panel", "draw_polyline_mm", "top_centre_px"]
 
 # BGR
 _USED = (60, 170, 40)
@@ -90,4 +90,48 @@ def drift_overlay(image_bgr, report, stored, cell) -> np.ndarray:
     draw_panel(out, [f"drift: {report.verdict} (tolerance {report.tolerance_mm:g} mm)",
                      f"work-area mapping moved: {grid}",
                      "yellow: calibrated work area and markers; cyan: as seen now"], corner="centre")
+    return out
+
+
+def _class_bgr(cell, name) -> tuple[int, int, int]:
+    from vision.colour import srgb_from_lab
+
+    cls = cell.parts.get(name)
+    if cls is None:
+        return (200, 0, 200)
+    r, g, b = (np.clip(srgb_from_lab(np.asarray(cls.lab, float)), 0, 1) * 255).astype(int)
+    return int(b), int(g), int(r)
+
+
+def top_centre_px(mapping, camera_centre_mm, xy_mm, height_mm) -> np.ndarray:
+    """Where the top-face centre of a part at ``xy_mm`` (footprint centre) of height h shows in the photo."""
+    n = np.asarray(camera_centre_mm[:2], float)
+    k = camera_centre_mm[2] / (camera_centre_mm[2] - height_mm)
+    return mapping.inverse((n + k * (np.asarray(xy_mm, float) - n))[None])[0]
+
+
+def detection_overlay(image_bgr, detection, mapping, camera_centre_mm, cell) -> np.ndarray:
+    """Outlines with class and id, pick points (a cross on the top face's centre), rejected parts in red
+    with their reason, the work area."""
+    out = image_bgr.copy()
+    draw_polyline_mm(out, mapping, cell.work_area, (255, 200, 0), thickness=2)
+    counts: dict[str, int] = {}
+    for p in detection.parts:
+        counts[p.status] = counts.get(p.status, 0) + 1
+        ok = p.status == "ok"
+        colour = _class_bgr(cell, p.class_name) if ok else _MOVED
+        if p.outline_px is not None:
+            cv2.polylines(out, [np.round(p.outline_px * 16).astype(np.int32)], True, (255, 255, 255), 3, cv2.LINE_AA, shift=4)
+            cv2.polylines(out, [np.round(p.outline_px * 16).astype(np.int32)], True, colour, 2, cv2.LINE_AA, shift=4)
+        c = top_centre_px(mapping, camera_centre_mm, p.xy_mm, p.height_mm)
+        ci = tuple(np.round(c).astype(int))
+        cv2.drawMarker(out, ci, (255, 255, 255), cv2.MARKER_CROSS, 16, 3, cv2.LINE_AA)
+        cv2.drawMarker(out, ci, (0, 0, 0), cv2.MARKER_CROSS, 16, 1, cv2.LINE_AA)
+        label = f"{p.id} {p.class_name}" + ("" if ok else f": {p.status}")
+        pos = (ci[0] + 12, ci[1] - 12)
+        cv2.putText(out, label, pos, cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
+        cv2.putText(out, label, pos, cv2.FONT_HERSHEY_SIMPLEX, 0.5, (255, 255, 255) if ok else (80, 80, 255), 1, cv2.LINE_AA)
+    summary = ", ".join(f"{n} {s}" for s, n in sorted(counts.items())) or "no parts"
+    draw_panel(out, [f"parts: {summary}", "cross: pick point (top face centre); red: rejected, with reason"],
+               corner="bottom-left")
     return out

@@ -1,0 +1,498 @@
+"""Finding the parts: colour classes in CIELAB, blobs, table coordinates, and the parallax fix.
+
+Per photo (see DESIGN.md sec. 6):
+
+1. The work area is projected into the photo and grown by a margin (a part inside it can appear beyond
+   its edge, seen from the camera); marker papers are masked out. Only that region is
+   converted to CIELAB, after white balance from the markers' paper (:mod:`vision.whitebalance`).
+2. Each pixel takes the class whose reference colour is nearest in CIEDE2000, if within that class's
+   tolerance (a fast CIE76 pre-filter at 2.5x the tolerance limits the CIEDE2000 work to candidates).
+   Saturated pixels (chroma > 30) near no class are candidates for an unknown colour.
+3. Per class: morphological opening and closing, connected components.
+4. Each blob's outline goes to table millimetres through the calibration (lens included); its area and
+   centroid are taken there. A part of height h seen from the camera centre C appears scaled by
+   k = C_z / (C_z - h) about the nadir n: the top face's centroid m gives the footprint centre
+   c = n + (m - n) / k; a blob holding the visible sides too gives c = n + (m - n) 2 / (1 + k).
+   ``seen_as: auto`` compares the blob's area with what each model predicts: k^2 A for the top face
+   alone, about k A + (k - 1)|m - n| sqrt(A) with the visible sides (A the footprint's area).
+5. A blob is rejected, with its reason, when it is cut by the photo's edge, a marker or the searched
+   area, or its corrected footprint centre lies outside the work area (``cut_by_edge``), too small, too
+   large, or two or more touching parts that k-means on its pixels cannot split into parts of the
+   right size (k from the blob's area).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import cv2
+import numpy as np
+
+from vision.colour import delta_e_2000
+from vision.scene import marker_paper_corners_mm
+from vision.whitebalance import Illumination, fit_illumination, lab_of_pixels
+
+__all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
+
+STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour")
+_UNKNOWN_CHROMA = 30.0
+_MIN_RATIO, _MAX_RATIO = 0.45, 1.6
+_MIN_UNKNOWN_MM2 = 60.0
+_COARSE = 4               # the coarse colour pass runs at 1/4 resolution
+
+
+@dataclass(frozen=True)
+class DetectedPart:
+    """A part found in a photo, in table coordinates (footprint centre corrected for parallax)."""
+
+    id: str
+    class_name: str
+    status: str
+    reason: str
+    pixel_uv: tuple[float, float]
+    xy_mm: tuple[float, float]
+    height_mm: float
+    area_mm2: float
+    yaw_deg: float
+    length_mm: float
+    width_mm: float
+    seen_as: str
+    delta_e: float
+    outline_px: np.ndarray = field(repr=False, compare=False, default=None)
+
+    def as_dict(self) -> dict:
+        return {"id": self.id, "class": self.class_name, "status": self.status, "reason": self.reason,
+                "pixel": [round(self.pixel_uv[0], 2), round(self.pixel_uv[1], 2)],
+                "table_mm": [round(self.xy_mm[0], 3), round(self.xy_mm[1], 3)], "height_mm": self.height_mm,
+                "area_mm2": round(self.area_mm2, 1), "yaw_deg": round(self.yaw_deg, 2),
+                "length_mm": round(self.length_mm, 2), "width_mm": round(self.width_mm, 2),
+                "seen_as": self.seen_as, "delta_e": round(self.delta_e, 2)}
+
+
+@dataclass
+class Detection:
+    parts: list[DetectedPart]
+    illumination: Illumination | None
+    notes: list[str]
+
+
+# ------------------------------------------------------------------ masks
+def _poly_px(mapping, pts_mm, samples=24) -> np.ndarray:
+    pts = np.asarray(pts_mm, float)
+    closed = np.vstack([pts, pts[:1]])
+    t = np.linspace(0, 1, samples, endpoint=False)[:, None]
+    dense = np.concatenate([a + t * (b - a) for a, b in zip(closed[:-1], closed[1:])])
+    return mapping.inverse(dense)
+
+
+def _search_margin_mm(cell) -> float:
+    """How far outside the work area blobs are followed: a part inside it, seen from the camera, can
+    reach beyond its edge (its top face is scaled about the nadir), so the blob must not be cut there."""
+    sizes = [max(c.footprint_mm) for c in cell.parts.values()] or [20.0]
+    return 0.75 * max(sizes) + 8.0
+
+
+_MASK_CACHE: dict = {}
+
+
+def _valid_mask(shape, mapping, cell, detections) -> np.ndarray:
+    """The searched region (uint8 0/255), cached: in a run every photo of one calibration shares it."""
+    key = (shape, id(mapping), id(cell), tuple(sorted(d.id for d in detections)))
+    cached = _MASK_CACHE.get(key)
+    if cached is not None and cached[0] is mapping:
+        return cached[1]
+    mask = _build_valid_mask(shape, mapping, cell, detections)
+    if len(_MASK_CACHE) > 8:
+        _MASK_CACHE.clear()
+    _MASK_CACHE[key] = (mapping, mask)
+    return mask
+
+
+def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
+    h, w = shape
+    mask = np.zeros((h, w), np.uint8)
+    wa = _poly_px(mapping, cell.work_area)
+    cv2.fillPoly(mask, [np.round(wa * 8).astype(np.int32)], 255, lineType=cv2.LINE_8, shift=3)
+    centre_px = wa.mean(axis=0)
+    grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(centre_px[None])[0])
+    outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
+    mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
+    pad = 2.0
+    for marker_id, m in cell.markers.layout.items():
+        paper = marker_paper_corners_mm(m, cell.markers.size_mm, cell.markers.margin_mm + pad)[:, :2]
+        if m.z == 0:
+            cv2.fillPoly(mask, [np.round(_poly_px(mapping, paper, 4) * 8).astype(np.int32)], 0, shift=3)
+    for d in detections:          # raised markers (and any marker) as seen
+        c = d.corners_px.mean(axis=0)
+        grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + pad) / cell.markers.size_mm)
+        cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
+    border = np.zeros_like(mask)
+    border[1:-1, 1:-1] = 255
+    return cv2.bitwise_and(mask, border)
+
+
+def _classify_pixels(lab: np.ndarray, classes: dict) -> tuple[np.ndarray, np.ndarray]:
+    """Class index + 1 (0 none, K + 1 unknown saturated) and the CIEDE2000 to it, for pixels (N, 3)."""
+    names = list(classes)
+    best = np.full(len(lab), np.inf, np.float32)
+    label = np.zeros(len(lab), np.uint8)
+    for k, name in enumerate(names):
+        ref = np.asarray(classes[name].lab, np.float32)
+        tol = classes[name].tolerance
+        d76 = np.sqrt(((lab - ref) ** 2).sum(axis=1))
+        cand = np.flatnonzero(d76 < 2.5 * tol)
+        if cand.size == 0:
+            continue
+        d00 = delta_e_2000(lab[cand], ref).astype(np.float32)
+        better = (d00 < tol) & (d00 < best[cand])
+        best[cand[better]] = d00[better]
+        label[cand[better]] = k + 1
+    chroma = np.hypot(lab[:, 1], lab[:, 2])
+    label[(label == 0) & (chroma > _UNKNOWN_CHROMA)] = len(names) + 1
+    return label, best
+
+
+def _candidates(lab: np.ndarray, classes: dict) -> np.ndarray:
+    """Pixels worth a full-resolution look: within 2.5x a class's tolerance in CIE76 (CIEDE2000 is
+    never more than about that), or saturated (a possible unknown colour)."""
+    near = np.hypot(lab[:, 1], lab[:, 2]) > _UNKNOWN_CHROMA
+    for cls in classes.values():
+        ref = np.asarray(cls.lab, np.float32)
+        near |= ((lab - ref) ** 2).sum(axis=1) < (2.5 * cls.tolerance) ** 2
+    return near
+
+
+def _classify(roi: np.ndarray, valid: np.ndarray, origin, illumination, classes) -> tuple[np.ndarray, np.ndarray]:
+    """Label and CIEDE2000 images of a region. Coarse to fine: classify at a quarter of the resolution,
+    then only the pixels near what the coarse pass found, at full resolution (parts cover a few % of
+    the work area)."""
+    h, w = valid.shape
+    u0, v0 = origin
+    f = _COARSE
+    small = cv2.resize(roi, (w // f, h // f), interpolation=cv2.INTER_AREA)
+    valid_small = cv2.resize(valid.astype(np.uint8), (w // f, h // f), interpolation=cv2.INTER_NEAREST) > 0
+    ys, xs = np.nonzero(valid_small)
+    lab = lab_of_pixels(small[ys, xs], f * xs + (f - 1) / 2 + u0, f * ys + (f - 1) / 2 + v0, illumination)
+    coarse = np.zeros(valid_small.shape, np.uint8)
+    coarse[ys, xs] = _candidates(lab, classes)
+    coarse = cv2.dilate(coarse, np.ones((3, 3), np.uint8))
+    near = np.zeros((h, w), np.uint8)
+    up = cv2.resize(coarse, ((w // f) * f, (h // f) * f), interpolation=cv2.INTER_NEAREST)
+    near[:up.shape[0], :up.shape[1]] = up
+    near = near > 0
+    near = cv2.dilate(near.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
+    ys, xs = np.nonzero(near & valid)
+    label = np.zeros((h, w), np.uint8)
+    best = np.full((h, w), np.inf, np.float32)
+    if len(ys):
+        lab = lab_of_pixels(roi[ys, xs], xs + u0, ys + v0, illumination)
+        label[ys, xs], best[ys, xs] = _classify_pixels(lab, classes)
+    return label, best
+
+
+# ------------------------------------------------------------------ geometry of one blob
+def _inside(point, polygon) -> bool:
+    """Point in polygon (even-odd rule), table mm."""
+    x, y = point
+    poly = np.asarray(polygon, float)
+    x0, y0 = poly[:, 0], poly[:, 1]
+    x1, y1 = np.roll(x0, -1), np.roll(y0, -1)
+    crosses = ((y0 > y) != (y1 > y)) & (x < x0 + (y - y0) * (x1 - x0) / np.where(y1 == y0, 1e-12, y1 - y0))
+    return bool(crosses.sum() % 2)
+
+
+def _polygon_area_centroid(xy: np.ndarray):
+    x, y = xy[:, 0], xy[:, 1]
+    xn, yn = np.roll(x, -1), np.roll(y, -1)
+    cross = x * yn - xn * y
+    area = 0.5 * cross.sum()
+    if abs(area) < 1e-9:
+        return 0.0, xy.mean(axis=0)
+    cx = ((x + xn) * cross).sum() / (6 * area)
+    cy = ((y + yn) * cross).sum() / (6 * area)
+    return abs(area), np.array([cx, cy])
+
+
+def _expected_area_mm2(cls) -> float:
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    return float(np.pi / 4 * fp[0] * fp[1]) if cls.shape == "cylinder" else float(fp[0] * fp[1])
+
+
+def _footprint_centre(m, area_mapped, nadir, k, expected_mm2, mode: str):
+    """(centre, model used) for a blob whose table-mapped centroid is m and area ``area_mapped``.
+
+    ``auto`` predicts the blob's mapped area under each model and takes the nearer: the top face alone
+    maps to k^2 A; the top face with the visible sides to about k A + (k - 1) r L, the hull of the
+    footprint (scale 1) and the top face (scale k, shifted (k - 1) r away from the nadir), L = sqrt(A).
+    """
+    if mode == "auto":
+        r = float(np.linalg.norm(m - nadir))
+        a_top = k * k * expected_mm2
+        a_sides = k * expected_mm2 + (k - 1) * r * np.sqrt(expected_mm2)
+        mode = "silhouette" if abs(area_mapped - a_sides) < abs(area_mapped - a_top) else "top"
+    if mode == "top":
+        return nadir + (m - nadir) / k, "top"
+    if mode == "silhouette":
+        return nadir + (m - nadir) * 2.0 / (1.0 + k), "silhouette"
+    return m, "none"
+
+
+def _outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
+    """Unit outward normals (N, 2) of a closed outline, from its neighbours ``step`` points either side."""
+    tangent = np.roll(outline, -step, axis=0) - np.roll(outline, step, axis=0)
+    tangent /= np.maximum(np.linalg.norm(tangent, axis=1, keepdims=True), 1e-12)
+    x, y = outline[:, 0], outline[:, 1]
+    ccw = (x * np.roll(y, -1) - np.roll(x, -1) * y).sum() > 0
+    normal = np.column_stack([tangent[:, 1], -tangent[:, 0]])
+    return normal if ccw else -normal
+
+
+def _robust_gauss_newton(residual, x0, iterations: int = 25, scale: float = 0.15):
+    """Minimise sum rho(r_i), rho soft L1 with scale ``scale`` (mm), by Levenberg-Marquardt on
+    iteratively reweighted least squares. ``residual`` takes parameter sets (P, n) and returns (P, N), so
+    the forward-difference Jacobian is one call. Returns (x, residuals)."""
+    def cost(r):
+        return np.sum(np.sqrt(1.0 + (r / scale) ** 2) - 1.0, axis=-1)
+
+    x = np.asarray(x0, float)
+    n = len(x)
+    eps = 1e-6 * np.maximum(1.0, np.abs(x))
+    r = residual(x[None])[0]
+    c = float(cost(r))
+    damping = 1e-3
+    for _ in range(iterations):
+        rr = residual(np.vstack([x, x + np.diag(eps)]))
+        J = ((rr[1:] - rr[0]) / eps[:, None]).T                     # (N, n)
+        w = 1.0 / np.sqrt(1.0 + (r / scale) ** 2)                    # IRLS weights of soft L1
+        A = J.T @ (J * w[:, None])
+        g = J.T @ (w * r)
+        diag = np.diag(np.diag(A) + 1e-12)
+        # try several dampings at once; keep the least damped step that lowers the cost
+        dampings = damping * 10.0 ** np.arange(4)
+        try:
+            steps = np.linalg.solve(A[None] + dampings[:, None, None] * diag[None], np.broadcast_to(g, (4, n))[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            break
+        trials = x - steps
+        r_trials = residual(trials)
+        costs = cost(r_trials)
+        ok = np.flatnonzero(costs < c)
+        if not ok.size:
+            break
+        j = int(ok[0])
+        step = steps[j]
+        x, r, c = trials[j], r_trials[j], float(costs[j])
+        damping = max(dampings[j] / 10.0, 1e-7)
+        if np.abs(step).max() < 1e-6:
+            break
+    return x, r
+
+
+def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k, cls, yaw_guess_deg: float):
+    """Fit the class's top face (circle, or rectangle of the class's proportions; centre, yaw, size
+    free) to the outer half of a blob's outline: the half away from the nadir, which is always the top
+    face's own edge whichever side faces the segmentation kept (outline points facing away from the
+    nadir, beyond the centre: the sides' own edges face the nadir). Two passes: the second keeps only the
+    outline beyond the first fit's centre. A robust loss (soft L1, 0.15 mm) discounts the stretches of
+    outline that run from the top face down the visible sides. Returns the top face's centre in
+    table-mapped mm, or None if the outline does not look like the class's shape."""
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    centre = np.asarray(centre, float)
+    radial = centre - nadir
+    e_r = radial / np.linalg.norm(radial) if np.linalg.norm(radial) > 1e-6 else None
+    round_part = cls.shape == "cylinder"
+    half = np.array([fp[0], fp[1]]) / 2.0
+    facing_out = np.ones(len(outline_mm), bool) if e_r is None else normals @ e_r > -0.1
+    params, res = None, None
+    for _ in range(2):
+        pts = outline_mm if e_r is None else outline_mm[((outline_mm - centre) @ e_r >= 0.0) & facing_out]
+        if len(pts) < 12:
+            return None
+        if len(pts) > 160:
+            pts = pts[:: int(np.ceil(len(pts) / 160))]
+        px, py = pts[:, 0][None, :], pts[:, 1][None, :]
+        if round_part:
+            def circle(p, px=px, py=py):
+                return np.hypot(px - p[:, :1], py - p[:, 1:2]) - p[:, 2:3]
+            params, res = _robust_gauss_newton(circle, [centre[0], centre[1], 0.5 * k * fp[0]])
+            scale = 2 * params[2] / fp[0]
+        else:
+            def rectangle(p, px=px, py=py):
+                c, sn = np.cos(p[:, 2:3]), np.sin(p[:, 2:3])
+                dx, dy = px - p[:, :1], py - p[:, 1:2]
+                qx = np.abs(dx * c + dy * sn) - p[:, 3:4] * half[0]
+                qy = np.abs(-dx * sn + dy * c) - p[:, 3:4] * half[1]
+                outside = np.hypot(np.maximum(qx, 0.0), np.maximum(qy, 0.0))
+                return np.where((qx > 0) | (qy > 0), outside, np.maximum(qx, qy))
+            guesses = [yaw_guess_deg, yaw_guess_deg + 45.0] if params is None else [np.degrees(params[2])]
+            best = None
+            for yaw in guesses:
+                trial = _robust_gauss_newton(rectangle, [centre[0], centre[1], np.radians(yaw), k])
+                cost = np.sum(np.sqrt(1.0 + (trial[1] / 0.15) ** 2) - 1.0)
+                if best is None or cost < best[0]:
+                    best = (cost, *trial)
+            _, params, res = best
+            scale = params[3]
+        centre = params[:2]
+    size_ratio = scale / k
+    if not (0.85 < size_ratio < 1.15) or float(np.median(np.abs(res))) > 0.4:
+        return None
+    return np.array(params[:2])
+
+
+def _min_rect(points_mm: np.ndarray, scale: float):
+    (_, _), (a, b), ang = cv2.minAreaRect(points_mm.astype(np.float32))
+    if a >= b:
+        length, width, yaw = a, b, ang
+    else:
+        length, width, yaw = b, a, ang + 90.0
+    yaw = (yaw + 90.0) % 180.0 - 90.0
+    return float(length / scale), float(width / scale), float(yaw)
+
+
+# ------------------------------------------------------------------ the detector
+def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detections,
+                 parallax: bool = True, seen_as: str | None = None) -> Detection:
+    """Find parts in a photo (see the module docstring).
+
+    Parameters
+    ----------
+    image_bgr : ndarray (H, W, 3) uint8
+    mapping : TableMapping (photo px -> table mm)
+    camera_centre_mm : ndarray (3,)
+    cell : the cell (work_area, markers, parts)
+    detections : markers found in the photo (for white balance and masking)
+    parallax : bool
+        Correct for the parts' height (False only to measure what the correction is worth).
+    seen_as : {'auto', 'top', 'silhouette'}, optional
+        Force the model for every class (default: each class's ``seen_as``).
+    """
+    h_img, w_img = image_bgr.shape[:2]
+    notes: list[str] = []
+    illumination = fit_illumination(image_bgr, detections, cell)
+    if illumination is None:
+        notes.append("no marker paper to white-balance from: colours taken as they are")
+    valid = _valid_mask((h_img, w_img), mapping, cell, detections)
+    u0, v0, bw, bh = cv2.boundingRect(valid)
+    if bw == 0 or bh == 0 or not cell.parts:
+        notes.append("the work area is not in the photo" if bw == 0 else "the cell has no part classes")
+        return Detection([], illumination, notes)
+    u1, v1 = u0 + bw, v0 + bh
+    roi = np.ascontiguousarray(image_bgr[v0:v1, u0:u1])
+    valid_roi = valid[v0:v1, u0:u1] > 0
+    label, best = _classify(roi, valid_roi, (u0, v0), illumination, cell.parts)
+    names = list(cell.parts)
+    edge_band = valid_roi & ~(cv2.erode(valid_roi.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0)
+    nadir = np.asarray(camera_centre_mm[:2], float)
+    cz = float(camera_centre_mm[2])
+    kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
+    tallest = max(c.height_mm for c in cell.parts.values())
+    found: list[DetectedPart] = []
+    for k_label in range(1, len(names) + 2):
+        full = (label == k_label).astype(np.uint8)
+        bx, by, bw2, bh2 = cv2.boundingRect(full)
+        if bw2 == 0:
+            continue
+        bx0, by0 = max(bx - 2, 0), max(by - 2, 0)
+        mask = full[by0:by + bh2 + 2, bx0:bx + bw2 + 2]
+        mask = cv2.morphologyEx(mask, cv2.MORPH_OPEN, kernel)
+        mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, kernel)
+        n, comp, stats, _ = cv2.connectedComponentsWithStats(mask, connectivity=8)
+        stats = stats + np.array([bx0, by0, 0, 0, 0])
+        unknown = k_label == len(names) + 1
+        name = "unknown" if unknown else names[k_label - 1]
+        cls = None if unknown else cell.parts[name]
+        height = tallest if unknown else cls.height_mm
+        k = cz / (cz - height) if parallax else 1.0
+        for i in range(1, n):
+            x, y, w, h, npx = stats[i]
+            if npx < 12:
+                continue
+            sub = (comp[y - by0:y - by0 + h, x - bx0:x - bx0 + w] == i).astype(np.uint8)
+            contours, _ = cv2.findContours(sub, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+            outline = max(contours, key=len).reshape(-1, 2).astype(float) + [x + u0, y + v0]
+            outline_mm = mapping(outline)
+            area_mapped, m = _polygon_area_centroid(outline_mm)
+            area = area_mapped / (k * k)
+            if unknown and area < _MIN_UNKNOWN_MM2:
+                continue
+            py, px = np.nonzero(sub)
+            pixel_uv = (float(px.mean() + x + u0), float(py.mean() + y + v0))
+            de = float(np.nanmean(np.where(np.isfinite(best[y:y + h, x:x + w][sub > 0]),
+                                           best[y:y + h, x:x + w][sub > 0], np.nan))) if not unknown else float("nan")
+            cut = bool(edge_band[y:y + h, x:x + w][sub > 0].any())
+            mode = seen_as or (cls.seen_as if cls is not None else "auto")
+            pieces = [(m, outline_mm, outline, area, pixel_uv)]
+            status, reason = "ok", ""
+            if unknown:
+                status, reason = "unknown_colour", "colour matches no class"
+            elif cut:
+                status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
+            else:
+                expected = _expected_area_mm2(cls)
+                ratio = area / expected
+                if ratio < _MIN_RATIO:
+                    status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
+                elif ratio > _MAX_RATIO:
+                    pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name)
+            expected = _expected_area_mm2(cls) if cls is not None else area
+            normals = _outward_normals(outline_mm)
+            for piece_m, piece_mm, piece_px, piece_area, piece_uv in pieces:
+                length, width, yaw = _min_rect(piece_mm, k)
+                top = None
+                if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
+                    top = _fit_top_face(outline_mm, normals, piece_m, nadir, k, cls, yaw)
+                if top is not None:
+                    centre, used = nadir + (top - nadir) / k, "top_outline"
+                    by_area, model = _footprint_centre(piece_m, piece_area * k * k, nadir, k, expected, "auto")
+                    if model == "silhouette":       # the whole visible part is in the blob: two estimates
+                        centre, used = 0.5 * (centre + by_area), "top_outline+silhouette"
+                else:
+                    centre, used = (piece_m, "none") if not parallax else _footprint_centre(
+                        piece_m, piece_area * k * k, nadir, k, expected, mode)
+                piece_status, piece_reason = status, reason
+                if status == "ok" and not _inside(centre, cell.work_area):
+                    piece_status, piece_reason = "cut_by_edge", "lies across the edge of the work area"
+                found.append(DetectedPart("", name, piece_status, piece_reason, piece_uv, (float(centre[0]), float(centre[1])),
+                                          float(height), float(piece_area), yaw, length, width, used, de, piece_px))
+    found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
+    parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
+             for i, p in enumerate(found)]
+    return Detection(parts, illumination, notes)
+
+
+def _split(sub, ox, oy, mapping, k, expected, ratio, name):
+    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size."""
+    n = int(round(ratio))
+    if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
+        return _whole(sub, ox, oy, mapping, k), "too_large", \
+            f"{ratio:.1f}x a {name} part's area and not a whole number of parts"
+    py, px = np.nonzero(sub)
+    uv = np.column_stack([px + ox, py + oy]).astype(float)
+    xy = mapping(uv).astype(np.float32)
+    crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_MAX_ITER, 50, 0.01)
+    cv2.setRNGSeed(0)
+    _, labels, _ = cv2.kmeans(xy, n, None, crit, 4, cv2.KMEANS_PP_CENTERS)
+    labels = labels.ravel()
+    per_px = (mapping.mm_per_px(uv[:1]) ** 2)[0]
+    pieces = []
+    for j in range(n):
+        sel = labels == j
+        area = sel.sum() * per_px / (k * k)
+        if not _MIN_RATIO < area / expected < 1.4:
+            return _whole(sub, ox, oy, mapping, k), "touching", \
+                f"{n} touching {name} parts that could not be split into parts of the right size"
+        pts_mm = xy[sel].astype(float)
+        hull = cv2.convexHull(pts_mm.astype(np.float32)).reshape(-1, 2).astype(float)
+        pieces.append((pts_mm.mean(axis=0), hull, mapping.inverse(hull), float(area),
+                       (float(uv[sel, 0].mean()), float(uv[sel, 1].mean()))))
+    return pieces, "ok", f"split from {n} touching parts"
+
+
+def _whole(sub, ox, oy, mapping, k):
+    contours, _ = cv2.findContours(sub, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+    outline = max(contours, key=len).reshape(-1, 2).astype(float) + [ox, oy]
+    outline_mm = mapping(outline)
+    area, m = _polygon_area_centroid(outline_mm)
+    py, px = np.nonzero(sub)
+    return [(m, outline_mm, outline, area / (k * k), (float(px.mean() + ox), float(py.mean() + oy)))]
