@@ -13,8 +13,8 @@ import numpy as np
 from planning.errors import GripsightError
 from planning.targets import PartTarget
 
-__all__ = ["PhotoAnalysis", "analyse_photo", "targets_from_detection", "default_calibration_path",
-           "load_or_make_calibration"]
+__all__ = ["PhotoAnalysis", "PhotoPlan", "analyse_photo", "plan_photo", "photo_record", "targets_from_detection",
+           "default_calibration_path", "load_or_make_calibration"]
 
 
 @dataclass
@@ -89,3 +89,60 @@ def targets_from_detection(detection, cell) -> list[PartTarget]:
                               known_class=cls is not None, pixel_uv=d.pixel_uv,
                               vision_status=d.status, vision_detail=d.reason))
     return out
+
+
+@dataclass
+class PhotoPlan:
+    """One photo's analysis and the plan made from it (None when the photo was refused)."""
+
+    analysis: PhotoAnalysis
+    plan: object | None           # planning.picks.Plan
+    message: str = ""
+
+
+def plan_photo(photo, cell, stored, planner, start_joints_rad=None, t0_s: float = 0.0, end_at_home: bool = True,
+               order: str = "nearest", image=None, bin_room: dict | None = None) -> PhotoPlan:
+    """Analyse a photo and plan its picks from ``start_joints_rad`` at clock time ``t0_s``.
+
+    ``bin_room`` (bin -> places left) leaves parts whose bin is full out of the plan, with a reason.
+    """
+    analysis = analyse_photo(photo, cell, stored, image=image)
+    if analysis.refused:
+        return PhotoPlan(analysis, None, analysis.registration.message)
+    targets = targets_from_detection(analysis.detection, cell)
+    if bin_room is not None:
+        targets = _respect_capacity(targets, planner, bin_room)
+    plan = planner.plan(targets, order=order, start_joints_rad=start_joints_rad, end_at_home=end_at_home, t0_s=t0_s)
+    return PhotoPlan(analysis, plan, analysis.registration.message)
+
+
+def _respect_capacity(targets, planner, bin_room: dict):
+    """Mark parts whose bin has no room left (counting the parts before them) as rejected ``bin_full``."""
+    from dataclasses import replace
+
+    room = dict(bin_room)
+    out = []
+    for t in targets:
+        name = planner.bin_for(t)
+        if t.vision_status in ("ok", "unknown_colour") and name is not None and name in room:
+            if room[name] <= 0:
+                t = replace(t, vision_status="bin_full", vision_detail=f"bin '{name}' is full")
+            else:
+                room[name] -= 1
+        out.append(t)
+    return out
+
+
+def photo_record(analysis: PhotoAnalysis, stored) -> tuple[dict, dict]:
+    """The ``photo`` and ``calibration`` objects of plan.json."""
+    reg = analysis.registration
+    photo = {"path": analysis.photo, "width_px": int(analysis.image.shape[1]), "height_px": int(analysis.image.shape[0]),
+             "markers_seen": [m.id for m in analysis.markers],
+             "white_balance": None if analysis.detection is None or analysis.detection.illumination is None
+             else analysis.detection.illumination.as_dict(),
+             "notes": [] if analysis.detection is None else analysis.detection.notes}
+    calibration = {"file": stored.path, "verdict": stored.verdict, "registration": reg.action,
+                   "message": reg.message, "drift": None if reg.drift is None else reg.drift.as_dict(),
+                   "camera_centre_mm": None if reg.camera_centre_mm is None else
+                   [round(float(v), 3) for v in reg.camera_centre_mm]}
+    return photo, calibration

@@ -55,6 +55,14 @@ def _guarded(fn):
         except KeyboardInterrupt:
             _echo_err("interrupted")
             raise typer.Exit(130) from None
+        except (typer.Exit, typer.Abort):
+            raise
+        except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, never a bare trace
+            _echo_err(f"error: internal error ({type(exc).__name__}: {exc}); run with --verbose for the trace "
+                      "and report it")
+            if _state["verbose"]:
+                traceback.print_exc()
+            raise typer.Exit(1) from None
 
     return wrapper
 
@@ -145,30 +153,45 @@ def _find_cell(cell: Optional[Path], near: Path) -> Path:
 
 @command()
 def plan(
-    parts: Path = typer.Option(..., "--parts", help="Parts in table coordinates (YAML list of {class, x_mm, y_mm, ...})."),
+    photo: Optional[Path] = typer.Argument(None, help="A photo from the calibrated camera (or give --parts)."),
+    parts: Optional[Path] = typer.Option(None, "--parts", help="Parts in table coordinates instead of a photo (YAML list of {class, x_mm, y_mm, ...})."),
     cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the input or in its parent)."),
-    out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the plots."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the pictures."),
     order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
     as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
     plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png."),
 ):
-    """Plan checked pick-and-place moves for parts given in table coordinates; write the joint sequence."""
+    """Plan checked pick-and-place moves for the parts in a photo (or a parts file); write the joint sequence."""
     import json
 
     from planning.arm import Arm
     from planning.config import load_cell
     from planning.errors import GripsightError
-    from planning.export import write_plan_outputs
     from planning.picks import Planner
-    from planning.targets import load_parts_file
 
     if order not in ("nearest", "detected"):
         raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
-    cfg = load_cell(_find_cell(cell, parts))
+    if (photo is None) == (parts is None):
+        raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
+    cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
     arm = Arm.from_config(cfg.arm)
-    targets = load_parts_file(parts, cfg)
-    result = Planner(cfg, arm).plan(targets, order=order)
-    data = write_plan_outputs(out, result, cfg, arm, plots=plots)
+    planner = Planner(cfg, arm)
+    if parts is not None:
+        from planning.export import write_plan_outputs
+        from planning.targets import load_parts_file
+
+        result = planner.plan(load_parts_file(parts, cfg), order=order)
+        data = write_plan_outputs(out, result, cfg, arm, plots=plots)
+    else:
+        from planning.cell import load_or_make_calibration, plan_photo
+        from planning.photo_outputs import write_photo_outputs
+
+        stored = load_or_make_calibration(cfg, calibration)
+        photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
+        data = write_photo_outputs(out, photo_plan, cfg, arm, stored)
+        if photo_plan.plan is None:
+            raise GripsightError(photo_plan.message)
     if as_json:
         typer.echo(json.dumps(data, indent=2))
         return
@@ -179,7 +202,7 @@ def _print_plan_summary(data: dict, out: Path) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
     for col in ("#", "part", "class", "bin", "duration s"):
         table.add_column(col, justify="right" if col in ("#", "duration s") else "left")
@@ -201,8 +224,8 @@ def _print_plan_summary(data: dict, out: Path) -> None:
                   f"({tot['samples']} samples at {tot['sample_hz']:g} Hz)")
     for w in data["warnings"]:
         console.print(f"warning: {w}")
-    console.print(f"wrote {out / 'plan.json'}, {out / 'joints.csv'}" +
-                  (f", {out / 'joints.png'}, {out / 'path.png'}" if (out / "joints.png").exists() else ""))
+    pictures = [name for name in ("joints.png", "path.png", "overlay.png") if (out / name).exists()]
+    console.print(f"wrote {out / 'plan.json'}, {out / 'joints.csv'}" + "".join(f", {out / n}" for n in pictures))
 
 
 # ------------------------------------------------------------------ render
@@ -388,7 +411,7 @@ def _print_calibration(cal, out, overlay, moved) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title="markers", title_justify="left")
     for col in ("id", "residual mm", "residual px", "status"):
         table.add_column(col, justify="right" if col != "status" else "left")
@@ -455,7 +478,7 @@ def _print_drift(report, photo, cell_path) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title="marker shifts", title_justify="left")
     for col in ("id", "shift px", "shift mm"):
         table.add_column(col, justify="right")
@@ -470,6 +493,111 @@ def _print_drift(report, photo, cell_path) -> None:
     console.print(f"verdict: {report.verdict}")
     if report.verdict == "moved":
         console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")
+
+
+# ------------------------------------------------------------------ run and batch
+@command()
+def run(
+    folder: Path = typer.Argument(..., help="Folder of photos, taken in name order by the cell."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out/run"), "--out", "-o", help="Folder for run.csv and one folder per photo."),
+    resume: bool = typer.Option(False, "--resume", help="Continue an interrupted or stopped run in --out."),
+    emptied: list[str] = typer.Option([], "--emptied", help="With --resume: this bin was emptied (repeatable)."),
+    order: str = typer.Option("nearest", "--order", help="nearest or detected."),
+):
+    """The sorting cell: plan photo after photo, the arm carried from one to the next; one run.csv."""
+    from rich.console import Console
+    from rich.table import Table
+
+    from planning.cell import load_or_make_calibration
+    from planning.config import load_cell
+    from planning.run import photos_in, run_folder
+
+    cfg = load_cell(_find_cell(cell, folder))
+    stored = load_or_make_calibration(cfg, calibration)
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    total = len(photos_in(folder))
+
+    def report(photo, summary):
+        picked = sum(summary["picked"].values())
+        rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
+        line = f"[{len(result_rows) + 1}/{total}] {photo.name}: "
+        line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
+                 else f"refused: {summary['message']}")
+        if summary["registration"] == "refit":
+            line += f" (camera moved: {summary['message']})"
+        result_rows.append(summary)
+        console.print(line)
+
+    result_rows: list = []
+    result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order, progress=report)
+    table = Table(title=f"run of {folder}", title_justify="left")
+    for col in ("photos", "picked", "by class", "rejected", "by reason", "cycle s"):
+        table.add_column(col)
+    table.add_row(str(len(result.photos)), str(sum(result.picked.values())),
+                  ", ".join(f"{k} {v}" for k, v in sorted(result.picked.items())) or "-",
+                  str(sum(result.rejected.values())),
+                  ", ".join(f"{k} {v}" for k, v in sorted(result.rejected.items())) or "-", f"{result.cycle_s:.1f}")
+    console.print(table)
+    if result.interrupted:
+        console.print(f"interrupted after {len(result.photos)} of {total} photos; every finished photo's outputs "
+                      f"are complete; resume with: gripsight run {folder} --out {out} --resume")
+        raise typer.Exit(130)
+    if result.stopped:
+        console.print(f"stopped: {result.stopped}")
+        raise typer.Exit(4)
+    console.print(f"wrote {out / 'run.csv'} and one folder per photo under {out}")
+
+
+@command()
+def batch(
+    folder: Path = typer.Argument(..., help="Folder of photos to test, each on its own."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out/batch"), "--out", "-o", help="Folder for batch.csv, batch.json, report.html."),
+    workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Parallel worker processes."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Dask scheduler address (tcp://host:port) instead of local workers."),
+):
+    """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
+    from planning.batch import run_batch, write_batch_tables
+    from planning.config import load_cell
+    from planning.run import photos_in
+
+    cell_path = _find_cell(cell, folder)
+    cfg = load_cell(cell_path)
+    n = len(photos_in(folder))
+    with _progress() as bar:
+        task = bar.add_task("batch", total=n)
+        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                         progress=lambda row: bar.advance(task))
+    totals = write_batch_tables(out, rows, cfg)
+    _print_batch(rows, totals, out)
+    if totals["errors"]:
+        raise typer.Exit(5)
+
+
+def _print_batch(rows, totals, out) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    table = Table(title="batch", title_justify="left")
+    for col in ("photo", "status", "found", "planned", "rejected", "cycle s"):
+        table.add_column(col, justify="right" if col in ("found", "planned", "cycle s") else "left")
+    for r in rows:
+        status = r["status"] if not r["error"] else f"{r['status']}: {r['error']}"
+        table.add_row(r["photo"], status, str(r["parts"]), str(r["planned"]),
+                      ", ".join(f"{k} {v}" for k, v in sorted(r["rejected"].items())), f"{r['cycle_s']:.1f}")
+    console.print(table)
+    line = (f"{totals['photos']} photos: {totals['ok']} planned, {totals['refused']} refused, {totals['errors']} failed; "
+            f"{totals['planned']} picks, rejected {sum(totals['rejected'].values())}")
+    if "truth" in totals:
+        t = totals["truth"]
+        line += (f"; against truth: recall {t['recall']:.1%}, precision {t['precision']:.1%}, "
+                 f"pick error {t['pick_error_rms_mm']:.2f} mm RMS ({t['pick_error_max_mm']:.2f} max)")
+    console.print(line)
+    console.print(f"wrote {out / 'batch.csv'}, {out / 'batch.json'}, {out / 'report.html'}")
 
 
 # ------------------------------------------------------------------ detect
@@ -518,7 +646,7 @@ def detect(
     from rich.console import Console
     from rich.table import Table
 
-    console = Console()
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     if result.registration.message:
         console.print(f"note: {result.registration.message}")
     table = Table(title=f"{photo}: parts", title_justify="left")

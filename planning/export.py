@@ -16,7 +16,7 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from planning.fileio import write_text_atomic
+from planning.fileio import output_dir, write_text_atomic
 from planning.picks import Plan
 from planning.safety import SAFETY_LINES
 
@@ -109,8 +109,7 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
     from pathlib import Path
 
-    out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
+    out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
     write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))

@@ -10,7 +10,21 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic"]
+__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir"]
+
+
+def output_dir(path) -> Path:
+    """Create an output folder (and parents); a clear error if a file stands in the way."""
+    from planning.errors import GripsightError
+
+    p = Path(path)
+    if p.exists() and not p.is_dir():
+        raise GripsightError(f"{p}: is a file, not a folder; give --out a folder")
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise GripsightError(f"{p}: cannot create the output folder ({exc.strerror or exc})") from None
+    return p
 
 
 @contextlib.contextmanager

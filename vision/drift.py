@@ -92,6 +92,14 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
     except CalibrationError as exc:
         refit = None
         notes.append(f"no refit from this photo: {exc}")
+    stored_rms = float(stored.data.residual.get("rms_mm", 0.1)) if hasattr(stored, "data") else 0.1
+    if refit is not None and cell.camera.lens == "estimate" and refit.rms_mm > max(0.15, 2 * stored_rms):
+        # the calibrated lens does not fit this photo's markers: another lens, or a zoom; estimate it again
+        again = calibrate(detections, cell, image_size, photo)
+        if again.rms_mm < refit.rms_mm:
+            notes.append(f"the calibrated lens did not fit this photo ({refit.rms_mm:.2f} mm RMS); lens estimated "
+                         f"again ({again.rms_mm:.2f} mm)")
+            refit = again
     grid_max = grid_mean = None
     if refit is not None:
         grid = work_area_grid_mm(cell)

@@ -5,7 +5,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-__all__ = ["calibration_overlay", "detection_overlay", "drift_overlay", "draw_panel", "draw_polyline_mm", "top_centre_px"]
+__all__ = ["calibration_overlay", "detection_overlay", "drift_overlay", "draw_panel", "draw_path_3d", "draw_polyline_mm",
+           "table_point_px", "top_centre_px"]
 
 # BGR
 _USED = (60, 170, 40)
@@ -135,3 +136,20 @@ def detection_overlay(image_bgr, detection, mapping, camera_centre_mm, cell) -> 
     draw_panel(out, [f"parts: {summary}", "cross: pick point (top face centre); red: rejected, with reason"],
                corner="bottom-left")
     return out
+
+
+def table_point_px(mapping, camera_centre_mm, xyz_mm) -> np.ndarray:
+    """Photo pixels (N, 2) of table-frame points (N, 3) at any height: the ray from the camera centre
+    through the point meets the table at n + (p - n) C_z / (C_z - z), which the mapping takes to pixels."""
+    p = np.asarray(xyz_mm, float).reshape(-1, 3)
+    c = np.asarray(camera_centre_mm, float)
+    k = c[2] / np.maximum(c[2] - p[:, 2], 1e-3)
+    return mapping.inverse(c[:2] + (p[:, :2] - c[:2]) * k[:, None])
+
+
+def draw_path_3d(image, mapping, camera_centre_mm, xyz_mm, colour, thickness=2) -> None:
+    """A polyline of table-frame points at any height, as the camera sees it."""
+    if len(xyz_mm) < 2:
+        return
+    uv = table_point_px(mapping, camera_centre_mm, xyz_mm)
+    cv2.polylines(image, [np.round(uv * 16).astype(np.int32)], False, colour, thickness, cv2.LINE_AA, shift=4)

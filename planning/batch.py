@@ -1,0 +1,224 @@
+"""Batch-testing a folder: every photo on its own (arm at home, no state carried), in parallel.
+
+Each photo is one job (:func:`process_photo`, a plain function of plain arguments, so it runs the same
+in a local process pool or on a Dask cluster) that writes ``OUT/<photo name>/`` and returns a row.
+A photo that cannot be read or fails becomes a row with its error; the batch goes on.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+from planning.fileio import output_dir, write_text_atomic
+
+__all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
+
+_CACHE: dict = {}
+
+
+@dataclass(frozen=True)
+class BatchJob:
+    photo: str
+    cell_path: str
+    calibration_path: str | None
+    out_dir: str
+    thumbnail_px: int = 240
+
+
+def _context(cell_path: str, calibration_path: str | None):
+    """Cell, arm, planner and calibration, loaded once per worker process."""
+    key = (cell_path, calibration_path)
+    if key not in _CACHE:
+        from planning.arm import Arm
+        from planning.cell import load_or_make_calibration
+        from planning.config import load_cell
+        from planning.picks import Planner
+
+        cell = load_cell(cell_path)
+        arm = Arm.from_config(cell.arm)
+        stored = load_or_make_calibration(cell, Path(calibration_path) if calibration_path else None)
+        _CACHE.clear()
+        _CACHE[key] = (cell, arm, Planner(cell, arm), stored)
+    return _CACHE[key]
+
+
+def process_photo(job: BatchJob) -> dict:
+    """Analyse, plan and write one photo; return its row (``error`` set if it failed)."""
+    from planning.errors import GripsightError
+
+    name = Path(job.photo).name
+    row = {"photo": name, "status": "error", "error": "", "registration": "", "drift": "", "parts": 0,
+           "found": {}, "planned": 0, "rejected": {}, "cycle_s": 0.0, "truth": None, "thumbnail": ""}
+    try:
+        from planning.cell import plan_photo
+        from planning.photo_outputs import write_photo_outputs
+
+        cell, arm, planner, stored = _context(job.cell_path, job.calibration_path)
+        pp = plan_photo(job.photo, cell, stored, planner)
+        out = Path(job.out_dir) / name
+        write_photo_outputs(out, pp, cell, arm, stored)
+        reg = pp.analysis.registration
+        row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict)
+        if pp.plan is None:
+            row.update(status="refused", error=pp.message)
+        else:
+            row["status"] = "ok"
+            for p in pp.analysis.detection.parts:
+                row["found"][p.class_name] = row["found"].get(p.class_name, 0) + 1
+            row["parts"] = len(pp.analysis.detection.parts)
+            row["planned"] = len(pp.plan.picks)
+            for o in pp.plan.parts:
+                if o.rejection is not None:
+                    row["rejected"][o.rejection.check] = row["rejected"].get(o.rejection.check, 0) + 1
+            row["cycle_s"] = round(pp.plan.cycle_s, 3)
+            row["truth"] = _truth_stats(job.photo, pp, cell)
+        row["thumbnail"] = _thumbnail(out / ("overlay.png" if (out / "overlay.png").exists() else ""), pp, job)
+    except GripsightError as exc:
+        row["error"] = str(exc)
+    except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
+        row["error"] = f"internal error ({type(exc).__name__}: {exc})"
+    return row
+
+
+def _truth_stats(photo: str, pp, cell) -> dict | None:
+    import yaml
+
+    from planning.truthcheck import compare_with_truth
+
+    truth_file = Path(photo).with_name(Path(photo).stem + ".truth.yaml")
+    if not truth_file.is_file():
+        return None
+    try:
+        truth = yaml.safe_load(truth_file.read_text())
+        return compare_with_truth(pp.analysis.detection.parts, truth, cell.work_area).as_dict()
+    except (OSError, yaml.YAMLError, KeyError, TypeError, ValueError):
+        return None
+
+
+def _thumbnail(overlay: Path, pp, job: BatchJob) -> str:
+    """A small JPEG of the overlay (or the photo), base64, for the self-contained report."""
+    import base64
+
+    import cv2
+
+    image = cv2.imread(str(overlay)) if overlay.is_file() else pp.analysis.image
+    h, w = image.shape[:2]
+    scale = job.thumbnail_px / max(w, 1)
+    small = cv2.resize(image, (job.thumbnail_px, max(1, int(h * scale))), interpolation=cv2.INTER_AREA)
+    return base64.b64encode(cv2.imencode(".jpg", small, [cv2.IMWRITE_JPEG_QUALITY, 70])[1].tobytes()).decode()
+
+
+def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, scheduler: str | None = None,
+              progress=None) -> list[dict]:
+    """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order."""
+    from planning.run import photos_in
+
+    out = output_dir(out)
+    photos = photos_in(folder)
+    _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
+    jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
+            for p in photos]
+    rows: dict[str, dict] = {}
+    if scheduler:
+        rows = _run_dask(jobs, scheduler, progress)
+    elif workers <= 1:
+        for job in jobs:
+            row = process_photo(job)
+            rows[row["photo"]] = row
+            if progress:
+                progress(row)
+    else:
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor, as_completed
+
+        ctx = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
+        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+            futures = [pool.submit(process_photo, job) for job in jobs]
+            for fut in as_completed(futures):
+                row = fut.result()
+                rows[row["photo"]] = row
+                if progress:
+                    progress(row)
+    return [rows[p.name] for p in photos]
+
+
+def _run_dask(jobs, scheduler: str, progress) -> dict:
+    from planning.errors import GripsightError
+
+    try:
+        from dask.distributed import Client, as_completed
+    except ImportError:
+        raise GripsightError("--scheduler needs Dask: pip install 'gripsight[cluster]'") from None
+    try:
+        client = Client(scheduler, timeout=20)
+    except (OSError, TimeoutError) as exc:
+        raise GripsightError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc})") from None
+    rows = {}
+    try:
+        futures = client.map(process_photo, jobs, pure=False)
+        for fut in as_completed(futures):
+            row = fut.result()
+            rows[row["photo"]] = row
+            if progress:
+                progress(row)
+    finally:
+        client.close()
+    return rows
+
+
+def write_batch_tables(out, rows: list[dict], cell) -> dict:
+    """batch.csv (one row per photo), batch.json (rows and totals) and report.html; returns the totals."""
+    import csv
+    import io
+
+    from planning.report import write_report
+
+    classes = list(cell.parts) + ["unknown"]
+    reasons = sorted({r for row in rows for r in row["rejected"]})
+    header = (["photo", "status", "error", "registration", "drift", "parts"] + [f"found_{c}" for c in classes]
+              + ["planned", "rejected"] + [f"rejected_{r}" for r in reasons]
+              + ["cycle_s", "truth_recall", "truth_precision", "pick_error_rms_mm", "pick_error_max_mm"])
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(header)
+    for row in rows:
+        t = row["truth"] or {}
+        w.writerow([row["photo"], row["status"], row["error"], row["registration"], row["drift"], row["parts"]]
+                   + [row["found"].get(c, 0) for c in classes]
+                   + [row["planned"], sum(row["rejected"].values())] + [row["rejected"].get(r, 0) for r in reasons]
+                   + [row["cycle_s"], t.get("recall", ""), t.get("precision", ""), t.get("pick_error_rms_mm", ""),
+                      t.get("pick_error_max_mm", "")])
+    totals = _totals(rows)
+    write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
+    clean = [{k: v for k, v in r.items() if k != "thumbnail"} for r in rows]
+    write_text_atomic(Path(out) / "batch.json", json.dumps({"cell": cell.cell, "totals": totals, "photos": clean},
+                                                           indent=1) + "\n")
+    write_report(Path(out) / "report.html", rows, totals, cell)
+    return totals
+
+
+def _totals(rows: list[dict]) -> dict:
+    totals = {"photos": len(rows), "ok": sum(r["status"] == "ok" for r in rows),
+              "refused": sum(r["status"] == "refused" for r in rows), "errors": sum(r["status"] == "error" for r in rows),
+              "parts": sum(r["parts"] for r in rows), "planned": sum(r["planned"] for r in rows),
+              "rejected": {}, "found": {}, "cycle_s": round(sum(r["cycle_s"] for r in rows), 3)}
+    for r in rows:
+        for k, v in r["rejected"].items():
+            totals["rejected"][k] = totals["rejected"].get(k, 0) + v
+        for k, v in r["found"].items():
+            totals["found"][k] = totals["found"].get(k, 0) + v
+    truths = [r["truth"] for r in rows if r["truth"]]
+    if truths:
+        expected = sum(t["expected"] for t in truths)
+        found = sum(t["found"] for t in truths)
+        reported = sum(t["reported_ok"] for t in truths)
+        sq = sum(t["pick_error_rms_mm"] ** 2 * t["found"] for t in truths)
+        totals["truth"] = {"photos": len(truths), "expected": expected, "found": found,
+                           "recall": round(found / expected, 4) if expected else 1.0,
+                           "precision": round(found / reported, 4) if reported else 1.0,
+                           "pick_error_rms_mm": round((sq / found) ** 0.5, 3) if found else 0.0,
+                           "pick_error_max_mm": max(t["pick_error_max_mm"] for t in truths)}
+    return totals

@@ -1,0 +1,106 @@
+"""A photo's outputs: plan.json, joints.csv, joints.png, path.png and overlay.png (the plan drawn on
+the photo: parts and reasons, pick points, bins, the reachable region at grip height, the tool path)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from planning.export import utc_now, write_plan_outputs
+from planning.fileio import output_dir, write_bytes_atomic, write_text_atomic
+
+__all__ = ["write_photo_outputs", "plan_overlay"]
+
+_PATH_BGR = (255, 160, 30)
+_CARRY_BGR = (0, 140, 255)
+_REACH_BGR = (120, 220, 120)
+
+
+def _reach_outline_mm(cell, arm, z_mm: float, step_mm: float = 4.0) -> list[np.ndarray]:
+    import cv2
+
+    from planning.reach import reachable_xy
+
+    wa = np.asarray(cell.work_area, float)
+    x = np.arange(wa[:, 0].min() - 60, wa[:, 0].max() + 60, step_mm)
+    y = np.arange(wa[:, 1].min() - 60, wa[:, 1].max() + 60, step_mm)
+    mask = reachable_xy(arm, x, y, z_mm).astype(np.uint8)           # (ny, nx)
+    contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_SIMPLE)
+    return [np.column_stack([x[0] + c[:, 0, 0] * step_mm, y[0] + c[:, 0, 1] * step_mm]) for c in contours if len(c) > 2]
+
+
+def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
+    import cv2
+
+    from planning.reach import lowest_grip_z_mm
+    from vision.overlay import detection_overlay, draw_panel, draw_path_3d, draw_polyline_mm, table_point_px
+
+    reg = analysis.registration
+    out = detection_overlay(analysis.image, analysis.detection, reg.mapping, reg.camera_centre_mm, cell)
+    for outline in _reach_outline_mm(cell, arm, lowest_grip_z_mm(cell)):
+        draw_polyline_mm(out, reg.mapping, outline, _REACH_BGR, thickness=1, samples_per_edge=2)
+    for name, b in cell.bins.items():
+        uv = table_point_px(reg.mapping, reg.camera_centre_mm, [[b.x, b.y, b.z]])[0]
+        cv2.circle(out, tuple(np.round(uv).astype(int)), 18, (60, 60, 60), 2, cv2.LINE_AA)
+        cv2.putText(out, f"bin {name}", (int(uv[0]) - 25, int(uv[1]) + 32), cv2.FONT_HERSHEY_SIMPLEX, 0.45,
+                    (255, 255, 255), 1, cv2.LINE_AA)
+    if plan is None:
+        return out
+    if len(plan.samples.t_s) > 1:
+        # the tool path straight down onto the table (its plan view), so it runs over parts and bins
+        xyz = plan.samples.xyz_mm * [1.0, 1.0, 0.0]
+        closed = plan.samples.gripper_closed.astype(int)
+        draw_path_3d(out, reg.mapping, reg.camera_centre_mm, xyz, _PATH_BGR, 1)
+        edges = np.diff(np.concatenate([[0], closed, [0]]))
+        for a, b in zip(np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)):
+            draw_path_3d(out, reg.mapping, reg.camera_centre_mm, xyz[max(a - 1, 0):b], _CARRY_BGR, 2)
+    by_reason: dict[str, int] = {}
+    for o in plan.parts:
+        if o.rejection is None:
+            continue
+        by_reason[o.rejection.check] = by_reason.get(o.rejection.check, 0) + 1
+        if o.part.vision_status not in ("ok", "unknown_colour"):
+            continue                            # the detection overlay already says why
+        uv = table_point_px(reg.mapping, reg.camera_centre_mm, [[*o.part.xy_mm, o.part.height_mm]])[0]
+        c = tuple(np.round(uv).astype(int))
+        cv2.drawMarker(out, c, (40, 40, 220), cv2.MARKER_TILTED_CROSS, 22, 3, cv2.LINE_AA)
+        text = f"{o.part.id}: {o.rejection.check}"
+        cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
+        cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (80, 80, 255), 1, cv2.LINE_AA)
+    rejected = ", ".join(f"{n} {r}" for r, n in sorted(by_reason.items())) or "none"
+    draw_panel(out, [f"plan: {len(plan.picks)} picks, cycle {plan.cycle_s:.1f} s; rejected: {rejected}",
+                     "blue: tool path seen from above; orange: carrying; green: reach at grip height"],
+               corner="bottom-right")
+    return out
+
+
+def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = True) -> dict:
+    """Write everything for one photo under ``out_dir``; returns the plan.json object.
+
+    A refused photo (camera moved with ``on_move: stop``, or no markers) gets a plan.json that says why
+    and no joint sequence.
+    """
+    import cv2
+
+    from planning.cell import photo_record
+
+    out = output_dir(out_dir)
+    photo, calibration = photo_record(photo_plan.analysis, stored)
+    if photo_plan.plan is None:
+        data = {"gripsight": "plan", "created": utc_now(), "cell": cell.cell, "cell_sha256": cell.sha256,
+                "photo": photo, "calibration": calibration, "status": "refused", "reason": photo_plan.message,
+                "parts": [], "picks": [], "totals": {"parts": 0, "planned": 0, "rejected": 0, "cycle_s": 0.0},
+                "warnings": [photo_plan.message]}
+        write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+        for stale in ("joints.csv", "joints.png", "path.png"):
+            (out / stale).unlink(missing_ok=True)
+        return data
+    data = write_plan_outputs(out, photo_plan.plan, cell, arm, photo=photo, calibration=calibration)
+    data["status"] = "planned"
+    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    if overlay:
+        image = plan_overlay(photo_plan.analysis, photo_plan.plan, cell, arm)
+        write_bytes_atomic(out / "overlay.png", cv2.imencode(".png", image)[1].tobytes())
+    return data

@@ -1,0 +1,173 @@
+"""The sorting cell's run: photos in name order, the arm carried from one plan to the next.
+
+Per photo, a folder ``OUT/<photo name>/`` with plan.json, joints.csv, overlay.png and the plots; after
+each photo the run's state (photos done, where the arm stopped, the clock, tray counts) is saved
+atomically in ``OUT/run_state.json``, so an interrupted run resumes where it stopped (``--resume``).
+``OUT/run.csv`` is the whole run's joint sequence on one clock, ending with the move home; it is
+rebuilt from the finished photos whenever the run stops.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from planning.errors import GripsightError
+from planning.export import CSV_COLUMNS, joints_csv_text, utc_now
+from planning.fileio import output_dir, write_text_atomic
+
+__all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
+
+PHOTO_SUFFIXES = (".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp")
+_STATE = "run_state.json"
+
+
+def photos_in(folder) -> list[Path]:
+    """Photo files of a folder in name order (case-insensitive suffixes); .truth.yaml etc. ignored."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        raise GripsightError(f"{folder}: not a folder of photos")
+    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in PHOTO_SUFFIXES)
+
+
+@dataclass
+class RunResult:
+    photos: list[dict] = field(default_factory=list)      # one summary per finished photo
+    picked: dict = field(default_factory=dict)            # class -> count
+    rejected: dict = field(default_factory=dict)          # reason -> count
+    cycle_s: float = 0.0
+    stopped: str = ""                                     # why the run stopped early, if it did
+    interrupted: bool = False
+
+
+def _state_path(out: Path) -> Path:
+    return out / _STATE
+
+
+def _load_state(out: Path, folder: Path, cell) -> dict:
+    path = _state_path(out)
+    if not path.is_file():
+        raise GripsightError(f"{path}: nothing to resume (no run state); run without --resume")
+    state = json.loads(path.read_text())
+    if state.get("folder") != str(folder.resolve()) or state.get("cell_sha256") != cell.sha256:
+        raise GripsightError(f"{path}: that run was of another folder or cell file; run without --resume")
+    return state
+
+
+def _csv_rows(text: str) -> list[list[str]]:
+    lines = [line for line in text.splitlines() if line and not line.startswith("#")]
+    return list(csv.reader(lines))[1:]
+
+
+def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
+    """run.csv from the finished photos' joints.csv (each photo's first row repeats the last one's end)."""
+    buf = io.StringIO()
+    header_done = False
+    for name in state["done"]:
+        path = out / name / "joints.csv"
+        if not path.is_file():
+            continue
+        text = path.read_text()
+        comments = [line for line in text.splitlines() if line.startswith("#")]
+        rows = _csv_rows(text)
+        if not header_done:
+            buf.write("\n".join(c for c in comments if not c.startswith("# created")) + "\n")
+            buf.write(f"# run: {len(state['done'])} photos, created {utc_now()}\n")
+            csv.writer(buf, lineterminator="\n").writerow(CSV_COLUMNS)
+            header_done = True
+        else:
+            rows = rows[1:]
+        csv.writer(buf, lineterminator="\n").writerows(rows)
+    if home_csv and header_done:
+        csv.writer(buf, lineterminator="\n").writerows(_csv_rows(home_csv)[1:])
+    if header_done:
+        write_text_atomic(out / "run.csv", buf.getvalue())
+
+
+def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
+               progress=None) -> RunResult:
+    """Plan every photo of ``folder`` in order, carrying the arm and the tray counts (see the module)."""
+    from planning.arm import Arm
+    from planning.cell import plan_photo
+    from planning.photo_outputs import write_photo_outputs
+    from planning.picks import Planner
+
+    folder = Path(folder)
+    out = output_dir(out)
+    photos = photos_in(folder)
+    if not photos:
+        raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
+    arm = Arm.from_config(cell.arm)
+    planner = Planner(cell, arm)
+    if resume:
+        state = _load_state(out, folder, cell)
+        for name in emptied:
+            if name not in cell.bins:
+                raise GripsightError(f"--emptied: no bin '{name}' in the cell")
+            state["bins"][name] = 0
+    else:
+        _state_path(out).unlink(missing_ok=True)
+        state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
+                 "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
+                 "bins": {name: 0 for name in cell.bins}}
+    result = RunResult()
+    try:
+        for photo in photos:
+            if photo.name in state["done"]:
+                continue
+            room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
+            pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
+                            t0_s=state["t_s"], end_at_home=False, order=order, bin_room=room if room else None)
+            data = write_photo_outputs(out / photo.name, pp, cell, arm, stored)
+            summary = _summary(photo.name, pp, data)
+            if pp.plan is not None:
+                for pick in pp.plan.picks:
+                    state["bins"][pick.bin_name] = state["bins"].get(pick.bin_name, 0) + 1
+                state["joints_deg"] = np.degrees(pp.plan.end_joints_rad).tolist()
+                state["t_s"] = pp.plan.cycle_s
+            state["done"].append(photo.name)
+            state["summaries"].append(summary)
+            write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+            if progress is not None:
+                progress(photo, summary)
+            full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check == "bin_full"]
+            if full:
+                name = full[0].bin_name
+                result.stopped = (f"bin '{name}' is full (capacity {cell.bins[name].capacity}); empty it, then resume "
+                                  f"with: gripsight run {folder} --out {out} --resume --emptied {name}")
+                break
+    except KeyboardInterrupt:
+        result.interrupted = True
+    home_csv = None
+    if not result.interrupted and not result.stopped:
+        home = planner.plan([], start_joints_rad=np.radians(state["joints_deg"]), end_at_home=True, t0_s=state["t_s"])
+        home_csv = joints_csv_text(home, cell, arm)
+        state["t_s"] = home.cycle_s if len(home.samples.t_s) > 1 else state["t_s"]
+    _write_run_csv(out, state, home_csv, cell)
+    for s in state["summaries"]:
+        for cls, n in s["picked"].items():
+            result.picked[cls] = result.picked.get(cls, 0) + n
+        for reason, n in s["rejected"].items():
+            result.rejected[reason] = result.rejected.get(reason, 0) + n
+    result.photos = state["summaries"]
+    result.cycle_s = state["t_s"]
+    return result
+
+
+def _summary(name: str, pp, data: dict) -> dict:
+    picked: dict[str, int] = {}
+    rejected: dict[str, int] = {}
+    if pp.plan is not None:
+        for pick in pp.plan.picks:
+            picked[pick.class_name] = picked.get(pick.class_name, 0) + 1
+        for o in pp.plan.parts:
+            if o.rejection is not None:
+                rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
+    return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action,
+            "message": pp.message, "picked": picked, "rejected": rejected,
+            "cycle_s": 0.0 if pp.plan is None else round(sum(p.duration_s for p in pp.plan.picks), 3)}
