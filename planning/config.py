@@ -72,6 +72,7 @@ class MarkersConfig(_Model):
     dictionary: DictionaryName = "aruco_4x4_50"
     size_mm: PositiveMm
     margin_mm: NonNegativeMm = 10.0
+    paper_srgb: Annotated[float, Field(ge=100, le=255, allow_inf_nan=False)] = 232.0   # paper's grey level in a well-lit photo
     layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1)
 
 

@@ -7,9 +7,10 @@ markers; ``a + b u + c v`` with four or five; a constant with fewer), from each 
 Dividing by that field and multiplying by the reference white makes the paper the same white
 everywhere: a colour cast, a dim or bright lamp, a gradient and vignetting are taken out together.
 
-Reference white: linear 0.80 in each channel (sRGB 232), the paper's value in a well-lit photo. Class
-colours in the cell file are CIELAB values measured in photos normalised this way
-(``gripsight detect --sample`` reports them).
+Reference white: the cell's ``markers.paper_srgb`` (default 232, linear 0.80), the paper's grey level
+in a well-lit photo. Class colours in the cell file are CIELAB values measured in photos normalised
+this way (``gripsight detect --sample`` reports them); a cell whose class colours were measured with
+the paper at another level says so there.
 """
 
 from __future__ import annotations
@@ -35,6 +36,7 @@ class Illumination:
     width_px: int
     height_px: int
     n_markers: int
+    white: float = REFERENCE_WHITE   # linear value the paper is normalised to
 
     def _features(self, u, v):
         un = (np.asarray(u, np.float32) - self.width_px / 2) / (self.width_px / 2)
@@ -49,7 +51,7 @@ class Illumination:
 
     @property
     def gains_at_centre(self) -> np.ndarray:
-        return REFERENCE_WHITE / self.field(self.width_px / 2, self.height_px / 2)
+        return self.white / self.field(self.width_px / 2, self.height_px / 2)
 
     def as_dict(self) -> dict:
         return {"markers": self.n_markers, "terms": int(self.coeffs.shape[1]),
@@ -101,12 +103,13 @@ def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | 
     centres, medians = np.array(centres), np.array(medians)
     n = len(medians)
     terms = 4 if n >= 6 else (3 if n >= 4 else 1)
-    probe = Illumination(np.zeros((3, terms)), w_img, h_img, n)
+    white = float(_LIN_LUT[int(round(getattr(cell.markers, "paper_srgb", 232.0)))])
+    probe = Illumination(np.zeros((3, terms)), w_img, h_img, n, white)
     A = np.column_stack(probe._features(centres[:, 0], centres[:, 1]))
     coeffs = np.linalg.lstsq(A, medians, rcond=None)[0].T          # (3, terms)
-    ill = Illumination(coeffs, w_img, h_img, n)
+    ill = Illumination(coeffs, w_img, h_img, n, white)
     if np.any(ill.field(centres[:, 0], centres[:, 1]) <= 0.01):
-        ill = Illumination(medians.mean(axis=0)[:, None], w_img, h_img, n)
+        ill = Illumination(medians.mean(axis=0)[:, None], w_img, h_img, n, white)
     return ill
 
 
@@ -114,7 +117,7 @@ def lab_of_pixels(bgr: np.ndarray, u: np.ndarray, v: np.ndarray, illumination: I
     """CIELAB (N, 3) float32 of pixels (N, 3) uint8 BGR at photo coordinates u, v, white-balanced."""
     lin = _LIN_LUT[bgr]
     if illumination is not None:
-        lin = lin * (REFERENCE_WHITE / np.maximum(illumination.field(u, v), 1e-3)).astype(np.float32)
+        lin = lin * (illumination.white / np.maximum(illumination.field(u, v), 1e-3)).astype(np.float32)
     return lab_from_xyz(xyz_from_linear(lin[..., ::-1])).astype(np.float32)
 
 

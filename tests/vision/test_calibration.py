@@ -316,3 +316,25 @@ def test_marker_sheet_is_true_scale(tmp_path):
         if len(edges):
             runs.append((edges[1::2] - edges[0::2]).max())
     assert abs(max(runs) - 100 / 25.4 * 200) <= 2
+
+
+@pytest.mark.parametrize("dictionary, size", [("aruco_4x4_50", 40), ("apriltag_36h11", 50), ("aruco_6x6_250", 45)])
+def test_other_dictionaries_sizes_and_yawed_markers(dictionary, size):
+    """Markers turned on the table (yaw 0, 30, -45, 90, 180 ...) and other dictionaries and sizes: the
+    corner order convention (top edge toward +x at yaw 0) must hold in detection, layout and render."""
+    data = sample_cell_data()
+    data["markers"].update(dictionary=dictionary, size_mm=size)
+    yaws = [0, 30, -45, 90, 180, -120, 15, 60, 0]
+    for yaw, m in zip(yaws, data["markers"]["layout"].values()):
+        m["yaw_deg"] = yaw
+    layout = data["markers"]["layout"]
+    if size > 40:                              # keep the papers apart on the table
+        for m in layout.values():
+            m["x"] = max(min(m["x"], 380), 25)
+    cell = parse_cell(data)
+    image, cam = _shot(cell, np.random.default_rng(21))
+    dets = detect_markers(image, dictionary)
+    assert len(dets) >= 7
+    cal = calibrate(dets, cell, (1280, 960))
+    assert cal.verdict == "good" and cal.rms_mm < 0.2
+    assert _mapping_error_mm(cal.mapping, cam, cell).max() < 0.3
