@@ -12,7 +12,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from planning.fileio import output_dir, write_text_atomic
+from planning.fileio import child_folder, output_dir, write_text_atomic
 
 __all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
 
@@ -58,7 +58,7 @@ def process_photo(job: BatchJob) -> dict:
 
         cell, arm, planner, stored = _context(job.cell_path, job.calibration_path)
         pp = plan_photo(job.photo, cell, stored, planner)
-        out = Path(job.out_dir) / name
+        out = child_folder(job.out_dir, name)
         write_photo_outputs(out, pp, cell, arm, stored)
         reg = pp.analysis.registration
         row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict)
@@ -80,7 +80,31 @@ def process_photo(job: BatchJob) -> dict:
         row["error"] = str(exc)
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
         row["error"] = f"internal error ({type(exc).__name__}: {exc})"
+    row["photo_sha256"] = _sha256(job.photo)
+    try:
+        write_text_atomic(child_folder(job.out_dir, name) / "row.json", json.dumps(row))   # what --resume reads
+    except (OSError, ValueError):
+        pass
     return row
+
+
+def _sha256(path) -> str:
+    import hashlib
+
+    try:
+        return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+    except OSError:
+        return ""
+
+
+def _finished_row(job: BatchJob) -> dict | None:
+    """The row a previous (interrupted) batch wrote for this photo, if the photo is unchanged."""
+    path = child_folder(job.out_dir, Path(job.photo).name) / "row.json"
+    try:
+        row = json.loads(path.read_text())
+    except (OSError, ValueError):
+        return None
+    return row if row.get("photo_sha256") == _sha256(job.photo) else None
 
 
 def _truth_stats(photo: str, pp, cell) -> dict | None:
@@ -112,8 +136,9 @@ def _thumbnail(overlay: Path, pp, job: BatchJob) -> str:
 
 
 def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, scheduler: str | None = None,
-              progress=None) -> list[dict]:
-    """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order."""
+              progress=None, resume: bool = False) -> list[dict]:
+    """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order.
+    With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone."""
     from planning.run import photos_in
 
     out = output_dir(out)
@@ -122,8 +147,18 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
             for p in photos]
     rows: dict[str, dict] = {}
-    if scheduler:
-        rows = _run_dask(jobs, scheduler, progress)
+    if resume:
+        for job in list(jobs):
+            row = _finished_row(job)
+            if row is not None:
+                rows[row["photo"]] = row
+                jobs.remove(job)
+                if progress:
+                    progress(row)
+    if not jobs:
+        pass
+    elif scheduler:
+        rows.update(_run_dask(jobs, scheduler, progress))
     elif workers <= 1:
         for job in jobs:
             row = process_photo(job)
@@ -193,7 +228,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
                       t.get("pick_error_max_mm", "")])
     totals = _totals(rows)
     write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
-    clean = [{k: v for k, v in r.items() if k != "thumbnail"} for r in rows]
+    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256")} for r in rows]
     write_text_atomic(Path(out) / "batch.json", json.dumps({"cell": cell.cell, "totals": totals, "photos": clean},
                                                            indent=1) + "\n")
     write_report(Path(out) / "report.html", rows, totals, cell)

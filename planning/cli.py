@@ -28,8 +28,16 @@ _state = {"verbose": False}
 
 
 @app.callback()
-def _global(verbose: bool = typer.Option(False, "--verbose", "-v", help="Print the full trace on errors.")):
+def _global(
+    verbose: bool = typer.Option(False, "--verbose", "-v", help="Print the full trace on errors."),
+    max_pixels: Optional[int] = typer.Option(None, "--max-pixels", min=1,
+                                             help="Refuse photos with more pixels than this (default 50 million)."),
+):
     _state["verbose"] = verbose
+    if max_pixels is not None:
+        import os
+
+        os.environ["GRIPSIGHT_MAX_PIXELS"] = str(max_pixels)      # worker processes inherit it
 
 
 def _echo_err(text: str) -> None:
@@ -524,14 +532,19 @@ def run(
         rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
         line = f"[{len(result_rows) + 1}/{total}] {photo.name}: "
         line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
-                 else f"refused: {summary['message']}")
+                 else f"{summary['status']}: {summary['message']}")
         if summary["registration"] == "refit":
             line += f" (camera moved: {summary['message']})"
         result_rows.append(summary)
         console.print(line)
 
     result_rows: list = []
-    result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order, progress=report)
+    from planning.fileio import output_dir
+    from planning.lock import output_lock
+
+    with output_lock(output_dir(out), "run"):
+        result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order,
+                            progress=report)
     table = Table(title=f"run of {folder}", title_justify="left")
     for col in ("photos", "picked", "by class", "rejected", "by reason", "cycle s"):
         table.add_column(col)
@@ -558,20 +571,24 @@ def batch(
     out: Path = typer.Option(Path("out/batch"), "--out", "-o", help="Folder for batch.csv, batch.json, report.html."),
     workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Parallel worker processes."),
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Dask scheduler address (tcp://host:port) instead of local workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep the photos an interrupted batch in --out finished."),
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
     from planning.batch import run_batch, write_batch_tables
     from planning.config import load_cell
     from planning.run import photos_in
 
+    from planning.fileio import output_dir
+    from planning.lock import output_lock
+
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
     n = len(photos_in(folder))
-    with _progress() as bar:
+    with output_lock(output_dir(out), "batch"), _progress() as bar:
         task = bar.add_task("batch", total=n)
         rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task))
-    totals = write_batch_tables(out, rows, cfg)
+                         progress=lambda row: bar.advance(task), resume=resume)
+        totals = write_batch_tables(out, rows, cfg)
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)

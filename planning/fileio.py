@@ -10,7 +10,20 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir"]
+__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder"]
+
+
+def child_folder(out, name: str) -> Path:
+    """``out/<name>`` for a per-photo folder, never outside ``out``: only the last part of ``name`` is
+    used, and a name that is empty, ``.`` or ``..`` gets a leading underscore."""
+    base = Path(str(name).replace("\\", "/")).name.replace("\x00", "")
+    if base in ("", ".", ".."):
+        base = "_" + base.replace(".", "_")
+    out = Path(out)
+    path = out / base
+    if path.resolve().parent != out.resolve():
+        raise ValueError(f"{name!r} would leave the output folder {out}")
+    return path
 
 
 def output_dir(path) -> Path:

@@ -19,7 +19,7 @@ import numpy as np
 
 from planning.errors import GripsightError
 from planning.export import CSV_COLUMNS, joints_csv_text, utc_now
-from planning.fileio import output_dir, write_text_atomic
+from planning.fileio import child_folder, output_dir, write_text_atomic
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
 
@@ -69,7 +69,7 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
     buf = io.StringIO()
     header_done = False
     for name in state["done"]:
-        path = out / name / "joints.csv"
+        path = child_folder(out, name) / "joints.csv"
         if not path.is_file():
             continue
         text = path.read_text()
@@ -121,9 +121,19 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             if photo.name in state["done"]:
                 continue
             room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
-            pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
-                            t0_s=state["t_s"], end_at_home=False, order=order, bin_room=room if room else None)
-            data = write_photo_outputs(out / photo.name, pp, cell, arm, stored)
+            try:
+                pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
+                                t0_s=state["t_s"], end_at_home=False, order=order, bin_room=room if room else None)
+            except GripsightError as exc:       # an unusable photo: said, skipped, the run goes on
+                summary = {"photo": photo.name, "status": "error", "registration": "", "message": str(exc),
+                           "picked": {}, "rejected": {}, "cycle_s": 0.0}
+                state["done"].append(photo.name)
+                state["summaries"].append(summary)
+                write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+                if progress is not None:
+                    progress(photo, summary)
+                continue
+            data = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
             summary = _summary(photo.name, pp, data)
             if pp.plan is not None:
                 for pick in pp.plan.picks:

@@ -15,7 +15,14 @@ from planning.errors import GripsightError
 
 __all__ = ["PhotoError", "read_photo", "DEFAULT_MAX_PIXELS"]
 
-DEFAULT_MAX_PIXELS = 50_000_000
+DEFAULT_MAX_PIXELS = 50_000_000        # overridden by GRIPSIGHT_MAX_PIXELS (the CLI's --max-pixels sets it)
+
+
+def _max_pixels_default() -> int:
+    import os
+
+    value = os.environ.get("GRIPSIGHT_MAX_PIXELS", "")
+    return int(value) if value.isdigit() and int(value) > 0 else DEFAULT_MAX_PIXELS
 
 
 class PhotoError(GripsightError):
@@ -42,7 +49,7 @@ def _header_size(data: bytes):
     return None
 
 
-def read_photo(path, max_pixels: int = DEFAULT_MAX_PIXELS) -> np.ndarray:
+def read_photo(path, max_pixels: int | None = None) -> np.ndarray:
     """The photo as 8-bit BGR, shape (H, W, 3).
 
     Raises
@@ -50,6 +57,7 @@ def read_photo(path, max_pixels: int = DEFAULT_MAX_PIXELS) -> np.ndarray:
     PhotoError
         Missing, unreadable, empty, not an image, too many pixels, or too small to hold markers.
     """
+    max_pixels = max_pixels or _max_pixels_default()
     p = Path(path)
     if not p.exists():
         raise PhotoError(f"{p}: no such photo")
@@ -65,6 +73,8 @@ def read_photo(path, max_pixels: int = DEFAULT_MAX_PIXELS) -> np.ndarray:
     if size is not None and size[0] * size[1] > max_pixels:
         raise PhotoError(f"{p}: {size[0]}x{size[1]} px is more than the limit of {max_pixels:,} pixels; "
                          "resize the photo or raise the limit")
+    if data[:2] == b"\xff\xd8" and b"\xff\xd9" not in data[-64:]:
+        raise PhotoError(f"{p}: the JPEG is truncated (no end marker); copy or take the photo again")
     image = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
     if image is None:
         raise PhotoError(f"{p}: not a readable image (truncated, or not a photo at all)")
