@@ -351,11 +351,17 @@ _PYDANTIC_MESSAGES = {
 
 
 def _format_loc(loc: tuple) -> str:
-    return ".".join(str(part) for part in loc)
+    """Dotted key path; keys with control characters are quoted and long ones shortened (one line)."""
+    def one(part) -> str:
+        text = str(part)
+        if not text.isprintable():
+            text = repr(text)
+        return text if len(text) <= 40 else text[:37] + "..."
+    return ".".join(one(part) for part in loc)
 
 
 def _describe(value) -> str:
-    text = repr(value)
+    text = repr(value).replace("\n", "\\n")
     return text if len(text) <= 40 else text[:37] + "..."
 
 

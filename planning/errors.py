@@ -31,7 +31,8 @@ class Problem:
     message: str
 
     def __str__(self) -> str:
-        return f"{self.where}: {self.message}" if self.where else self.message
+        text = f"{self.where}: {self.message}" if self.where else self.message
+        return text.replace("\r", "\\r").replace("\n", "\\n")      # always one line
 
 
 class CellFileError(GripsightError):
