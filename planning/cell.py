@@ -67,7 +67,8 @@ def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     from vision.photo import read_photo
 
     image = read_photo(photo) if image is None else image
-    markers = detect_markers(image, cell.markers.dictionary)
+    expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
+    markers = detect_markers(image, cell.markers.dictionary, expected=expected)
     reg = register(stored, markers, cell, (image.shape[1], image.shape[0]), str(photo))
     detection = None
     if reg.action != "refused":

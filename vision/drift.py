@@ -19,6 +19,8 @@ import numpy as np
 from vision.calibration import Calibration, CalibrationError, calibrate
 from vision.markers import MarkerDetection
 
+_STILL_PX = 0.3            # markers closer than this to their calibrated corners have not moved
+
 __all__ = ["DriftReport", "MarkerShift", "check_drift", "register", "Registration", "work_area_grid_mm"]
 
 
@@ -87,6 +89,11 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
         shift_mm = float(np.linalg.norm(old(new_px) - old(old_px), axis=1).mean())
         shifts.append(MarkerShift(marker_id, shift_px, shift_mm))
     notes = []
+    if not missing and shifts and max(sh.shift_px for sh in shifts) < _STILL_PX:
+        # every calibrated marker is where it was: the mapping has not moved (no refit needed)
+        bound = max(sh.shift_mm for sh in shifts)
+        return DriftReport("ok", tol, bound, float(np.mean([sh.shift_mm for sh in shifts])), shifts, missing, None,
+                           ["no marker moved (all within 0.3 px): mapping unchanged"])
     try:
         refit = calibrate(detections, cell, image_size, photo, lens=_fixed_lens(old.lens))
     except CalibrationError as exc:

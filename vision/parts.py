@@ -247,7 +247,7 @@ def _outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
     return normal if ccw else -normal
 
 
-def _robust_gauss_newton(residual, x0, iterations: int = 25, scale: float = 0.15):
+def _robust_gauss_newton(residual, x0, iterations: int = 15, scale: float = 0.15):
     """Minimise sum rho(r_i), rho soft L1 with scale ``scale`` (mm), by Levenberg-Marquardt on
     iteratively reweighted least squares. ``residual`` takes parameter sets (P, n) and returns (P, N), so
     the forward-difference Jacobian is one call. Returns (x, residuals)."""
@@ -283,7 +283,7 @@ def _robust_gauss_newton(residual, x0, iterations: int = 25, scale: float = 0.15
         step = steps[j]
         x, r, c = trials[j], r_trials[j], float(costs[j])
         damping = max(dampings[j] / 10.0, 1e-7)
-        if np.abs(step).max() < 1e-6:
+        if np.abs(step).max() < 1e-5:
             break
     return x, r
 
@@ -308,8 +308,8 @@ def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k,
         pts = outline_mm if e_r is None else outline_mm[((outline_mm - centre) @ e_r >= 0.0) & facing_out]
         if len(pts) < 12:
             return None
-        if len(pts) > 160:
-            pts = pts[:: int(np.ceil(len(pts) / 160))]
+        if len(pts) > 90:
+            pts = pts[:: int(np.ceil(len(pts) / 90))]
         px, py = pts[:, 0][None, :], pts[:, 1][None, :]
         if round_part:
             def circle(p, px=px, py=py):
@@ -331,6 +331,8 @@ def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k,
                 cost = np.sum(np.sqrt(1.0 + (trial[1] / 0.15) ** 2) - 1.0)
                 if best is None or cost < best[0]:
                     best = (cost, *trial)
+                if np.median(np.abs(trial[1])) < 0.1:     # a clean fit: the other start is not needed
+                    break
             _, params, res = best
             scale = params[3]
         centre = params[:2]
