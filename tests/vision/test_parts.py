@@ -234,3 +234,26 @@ def test_other_image_sizes_heights_and_tilts(width, height, camera_z, tilt):
         total = total.add(score(detection.parts, r.truth, cell.work_area))
     assert total.recall >= 0.98 and total.false_parts == 0
     assert total.rms_mm <= 0.6
+
+
+def test_rectangular_class_position_and_yaw():
+    """A domino-shaped class (40 x 20 mm, 12 mm tall, DESIGN's footprint example): centre and the
+    length axis's yaw against the truth."""
+    data = sample_cell_data()
+    data["parts"]["teal"] = {"lab": [60, -35, -20], "tolerance": 18, "height_mm": 12, "shape": "box",
+                             "footprint_mm": [40, 20]}
+    data["bins"]["teal"] = {"x": 150, "y": 245}
+    cell = parse_cell(data)
+    rng = np.random.default_rng(5)
+    total, yaw_errors = Score(), []
+    for _ in range(4):
+        cam = CameraSpec(k1=-0.05, k2=0.01, tilt_deg=1.0, tilt_azimuth_deg=float(rng.uniform(0, 360)))
+        r = render_scene(cell, random_scene(cell, rng, camera=cam, sensor=SensorSpec(noise=2.0)))
+        detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+        for d in (p for p in detection.parts if p.class_name == "teal" and p.status == "ok"):
+            t = min(r.truth["parts"], key=lambda t: np.hypot(*(np.asarray(t["centre_mm"]) - d.xy_mm)))
+            yaw_errors.append(abs((d.yaw_deg - t["yaw_deg"] + 90) % 180 - 90))
+            assert d.length_mm == pytest.approx(40, abs=2.5) and d.width_mm == pytest.approx(20, abs=2.5)
+    assert yaw_errors and max(yaw_errors) < 1.0
+    assert total.recall >= 0.98 and total.false_parts == 0 and total.rms_mm <= 0.5
