@@ -16,7 +16,7 @@ from planning.angles import wrap_angle
 from planning.arm import JOINT_NAMES, Arm, Reason
 from planning.motion import SampledSegment
 
-__all__ = ["CheckContext", "Rejection", "first_failure", "grip_fit_rejection", "jaw_width_mm"]
+__all__ = ["CheckContext", "Rejection", "first_failure", "first_failure_in", "grip_fit_rejection", "jaw_width_mm"]
 
 _LINK_POINTS = 6  # points tested along each moving link for keep-out zones
 
@@ -113,7 +113,27 @@ def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Re
                      value=value, limit=limit, unit="deg")
 
 
-def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0) -> Rejection | None:
+def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: float = 0.0) -> Rejection | None:
+    """:func:`first_failure` over consecutive segments at once (one pass over all their samples)."""
+    if not segments:
+        return None
+    starts = np.cumsum([0.0] + [s.duration_s for s in segments[:-1]]) + t0_s
+    kinds = np.concatenate([np.full(len(s.t_s), k) for k, s in enumerate(segments)])
+    joined = SampledSegment(segments[0].segment, sum(s.duration_s for s in segments),
+                            np.concatenate([t0 + s.t_s for t0, s in zip(starts, segments)]) - t0_s,
+                            np.concatenate([s.xyz_mm for s in segments]),
+                            np.concatenate([s.joints_rad for s in segments]),
+                            np.concatenate([s.reason for s in segments]))
+    rej = first_failure(ctx, joined, t0_s, dt_steps=np.concatenate(
+        [np.diff(s.t_s, prepend=s.t_s[0]) for s in segments])[1:])
+    if rej is None:
+        return None
+    index = int(np.searchsorted(joined.t_s + t0_s, rej.time_s - 1e-9))
+    seg = segments[int(kinds[min(index, len(kinds) - 1)])].segment
+    return Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
+
+
+def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_steps=None) -> Rejection | None:
     """The earliest failing sample of a sampled segment, as a :class:`Rejection`; None if all pass.
 
     Parameters
@@ -152,7 +172,8 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0) -> Re
                 found.append((int(i), 2, lambda zone=zone, n=names[k], p=p: Rejection(
                     f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
     if m > 1:
-        dq = np.abs(np.diff(s.joints_rad, axis=0)) / ctx.dt_s                   # (M-1, 3) rad/s
+        step = ctx.dt_s if dt_steps is None else np.where(np.asarray(dt_steps) > 0, dt_steps, np.inf)[:, None]
+        dq = np.abs(np.diff(s.joints_rad, axis=0)) / step                       # (M-1, 3) rad/s
         over = (dq > arm.max_speed_rad_s[None, :] * (1 + 1e-9)) & valid[1:, None] & valid[:-1, None]
         if over.any():
             i, j = np.argwhere(over)[0]

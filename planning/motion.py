@@ -17,7 +17,7 @@ import numpy as np
 from planning.arm import Arm
 from planning.paths import ArcPath, StraightPath, TimeScaling, peak_rate, time_scaling
 
-__all__ = ["SegmentKind", "Segment", "SampledSegment", "sample_segment", "segment_duration_s"]
+__all__ = ["SegmentKind", "Segment", "SampledSegment", "durations_s", "sample_segments"]
 
 _DENSE = 257            # samples along s used to size the duration from joint speeds
 _SPEED_MARGIN = 1.01    # stretch a little beyond the joint-speed bound: samples are checked exactly
@@ -67,37 +67,58 @@ def _round_up(duration_s: float, dt_s: float) -> float:
     return max(1, math.ceil(duration_s / dt_s - 1e-9)) * dt_s
 
 
-def segment_duration_s(segment: Segment, arm: Arm, scaling: TimeScaling, speed_mm_s: float,
-                       dwell_s: float, dt_s: float) -> float:
-    """Duration of a segment on the sequence clock (a whole number of sample periods, at least one)."""
-    if segment.path is None:
-        return _round_up(dwell_s, dt_s)
-    path = segment.path
-    t_speed = path.length_mm * peak_rate(scaling) / speed_mm_s
+def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
+                dt_s: float) -> list[float]:
+    """Durations of segments on the sequence clock (whole numbers of sample periods, at least one), with
+    one IK call for all: the larger of length x peak s' / speed and the time that keeps every joint under
+    its speed limit (from dq/ds on a dense grid, x 1.01); a dwell lasts ``dwell_s``."""
+    out = [0.0] * len(segments)
+    moving = [i for i, seg in enumerate(segments) if seg.path is not None]
+    for i, seg in enumerate(segments):
+        if seg.path is None:
+            out[i] = _round_up(dwell_s, dt_s)
+    if not moving:
+        return out
     s_dense = np.linspace(0.0, 1.0, _DENSE)
-    q = arm.inverse(path.points(s_dense)).joints_rad
-    dq_ds = np.gradient(q, s_dense, axis=0)                        # (DENSE, 3) rad per unit s
+    pts = np.concatenate([segments[i].path.points(s_dense) for i in moving])
+    q = arm.inverse(pts).joints_rad.reshape(len(moving), _DENSE, 3)
+    dq_ds = np.abs(np.gradient(q, s_dense, axis=1))                        # (n, DENSE, 3)
     tau = np.linspace(0.0, 1.0, 2 * _DENSE)
     s_tau, ds_dtau, _ = time_scaling(scaling, tau)
-    rate = np.stack([np.interp(s_tau, s_dense, np.abs(dq_ds[:, j])) for j in range(3)], axis=1)
-    rate *= ds_dtau[:, None]                                       # |dq/dtau|, rad per unit tau
+    f = s_tau * (_DENSE - 1)
+    i0 = np.minimum(np.floor(f).astype(int), _DENSE - 2)
+    w = (f - i0)[None, :, None]
+    rate = (dq_ds[:, i0] * (1 - w) + dq_ds[:, i0 + 1] * w) * ds_dtau[None, :, None]
     with np.errstate(invalid="ignore"):
-        need = np.nanmax(rate / arm.max_speed_rad_s[None, :]) if np.isfinite(rate).any() else 0.0
-    t_joint = float(need) * _SPEED_MARGIN
-    return _round_up(max(t_speed, t_joint, dt_s), dt_s)
+        ratio = rate / arm.max_speed_rad_s[None, None, :]
+        need = np.where(np.isfinite(ratio).any(axis=(1, 2)), np.nanmax(np.where(np.isfinite(ratio), ratio, -np.inf),
+                                                                       axis=(1, 2)), 0.0)
+    for k, i in enumerate(moving):
+        t_speed = segments[i].path.length_mm * peak_rate(scaling) / speed_mm_s
+        out[i] = _round_up(max(t_speed, float(need[k]) * _SPEED_MARGIN, dt_s), dt_s)
+    return out
 
 
-def sample_segment(segment: Segment, arm: Arm, duration_s: float, scaling: TimeScaling,
-                   dt_s: float) -> SampledSegment:
-    """Sample a segment at the sequence clock, including both ends (M = duration / dt + 1 samples)."""
-    n = int(round(duration_s / dt_s))
-    t = np.arange(n + 1) * dt_s
-    if segment.path is None:
-        xyz = np.repeat(segment.hold_mm[None, :], n + 1, axis=0)
-    else:
-        s, _, _ = time_scaling(scaling, t / duration_s)
-        s[-1] = 1.0
-        xyz = segment.path.points(s)
-    sol = arm.inverse(xyz)
-    return SampledSegment(segment, duration_s, t, xyz, sol.joints_rad, sol.reason)
-
+def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, scaling: TimeScaling,
+                    dt_s: float) -> list[SampledSegment]:
+    """Sample segments on the sequence clock, both ends included (M = duration / dt + 1 samples each),
+    with one IK call for all."""
+    pts, times = [], []
+    for seg, duration in zip(segments, durations):
+        n = int(round(duration / dt_s))
+        t = np.arange(n + 1) * dt_s
+        if seg.path is None:
+            xyz = np.repeat(seg.hold_mm[None, :], n + 1, axis=0)
+        else:
+            sv, _, _ = time_scaling(scaling, t / duration)
+            sv[-1] = 1.0
+            xyz = seg.path.points(sv)
+        pts.append(xyz)
+        times.append(t)
+    sol = arm.inverse(np.concatenate(pts))
+    out, start = [], 0
+    for seg, duration, xyz, t in zip(segments, durations, pts, times):
+        end = start + len(t)
+        out.append(SampledSegment(seg, duration, t, xyz, sol.joints_rad[start:end], sol.reason[start:end]))
+        start = end
+    return out

@@ -18,9 +18,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from planning.arm import Arm
-from planning.checks import CheckContext, Rejection, first_failure, grip_fit_rejection
+from planning.checks import CheckContext, Rejection, first_failure, first_failure_in, grip_fit_rejection
 from planning.errors import CellFileError, Problem
-from planning.motion import SampledSegment, Segment, SegmentKind, sample_segment, segment_duration_s
+from planning.motion import SampledSegment, Segment, SegmentKind, durations_s, sample_segments
 from planning.ordering import order_nearest_two_opt
 from planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
 from planning.targets import PartTarget
@@ -125,11 +125,6 @@ class Planner:
             raise CellFileError(self.cell.source_path or "<cell>", problems)
 
     # ------------------------------------------------------------ segment builders
-    def _sample(self, seg: Segment) -> SampledSegment:
-        m = self.cell.motion
-        duration = segment_duration_s(seg, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s)
-        return sample_segment(seg, self.arm, duration, self.scaling, self.dt_s)
-
     def _straight(self, kind, p0, p1, part_id, closed) -> list[Segment]:
         if np.linalg.norm(np.asarray(p1) - np.asarray(p0)) < _SAME_POINT_MM:
             return []
@@ -181,15 +176,12 @@ class Planner:
         return segs
 
     def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], Rejection | None]:
-        sampled, t = [], t0_s
-        for seg in segments:
-            s = self._sample(seg)
-            rej = first_failure(self.ctx, s, t)
-            if rej is not None:
-                return sampled, rej
-            sampled.append(s)
-            t += s.duration_s
-        return sampled, None
+        """Time, sample and check a pick's segments together (one IK call for each stage)."""
+        m = self.cell.motion
+        durations = durations_s(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s)
+        sampled = sample_segments(segments, durations, self.arm, self.scaling, self.dt_s)
+        rej = first_failure_in(self.ctx, sampled, t0_s)
+        return sampled, rej
 
     # ------------------------------------------------------------ the plan
     def bin_for(self, part: PartTarget) -> str | None:
