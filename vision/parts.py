@@ -36,7 +36,11 @@ __all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
 
 STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour")
 _UNKNOWN_CHROMA = 30.0
+_UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
+_FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at least this much
+_UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
 _MIN_RATIO, _MAX_RATIO = 0.45, 1.6
+_NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
 _MIN_UNKNOWN_MM2 = 60.0
 _COARSE = 4               # the coarse colour pass runs at 1/4 resolution
 
@@ -131,35 +135,52 @@ def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
     return cv2.bitwise_and(mask, border)
 
 
-def _classify_pixels(lab: np.ndarray, classes: dict) -> tuple[np.ndarray, np.ndarray]:
+def _foreground(lab: np.ndarray, background) -> np.ndarray:
+    """Pixels that differ from the table: CIE76 from its median colour beyond max(12, 4 x the table's own
+    spread). ``background`` is (median Lab, spread) or None (everything counts)."""
+    if background is None:
+        return np.ones(len(lab), bool)
+    median, spread = background
+    return ((lab - median) ** 2).sum(axis=1) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
+
+
+def _unknown_mask(lab: np.ndarray, background) -> np.ndarray:
+    """Saturated pixels that differ from the table's own colour (a colourful table is not a part)."""
+    saturated = np.hypot(lab[:, 1], lab[:, 2]) > _UNKNOWN_CHROMA
+    if background is None:
+        return saturated
+    return saturated & (((lab - background[0]) ** 2).sum(axis=1) > _UNKNOWN_FROM_TABLE ** 2)
+
+
+def _classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np.ndarray, np.ndarray]:
     """Class index + 1 (0 none, K + 1 unknown saturated) and the CIEDE2000 to it, for pixels (N, 3)."""
     names = list(classes)
     best = np.full(len(lab), np.inf, np.float32)
     label = np.zeros(len(lab), np.uint8)
+    fg = _foreground(lab, background)
     for k, name in enumerate(names):
         ref = np.asarray(classes[name].lab, np.float32)
         tol = classes[name].tolerance
         d76 = np.sqrt(((lab - ref) ** 2).sum(axis=1))
-        cand = np.flatnonzero(d76 < 2.5 * tol)
+        cand = np.flatnonzero((d76 < 2.5 * tol) & fg)
         if cand.size == 0:
             continue
         d00 = delta_e_2000(lab[cand], ref).astype(np.float32)
         better = (d00 < tol) & (d00 < best[cand])
         best[cand[better]] = d00[better]
         label[cand[better]] = k + 1
-    chroma = np.hypot(lab[:, 1], lab[:, 2])
-    label[(label == 0) & (chroma > _UNKNOWN_CHROMA)] = len(names) + 1
+    label[(label == 0) & _unknown_mask(lab, background)] = len(names) + 1
     return label, best
 
 
-def _candidates(lab: np.ndarray, classes: dict) -> np.ndarray:
+def _candidates(lab: np.ndarray, classes: dict, background=None) -> np.ndarray:
     """Pixels worth a full-resolution look: within 2.5x a class's tolerance in CIE76 (CIEDE2000 is
-    never more than about that), or saturated (a possible unknown colour)."""
-    near = np.hypot(lab[:, 1], lab[:, 2]) > _UNKNOWN_CHROMA
+    never more than about that), or saturated and unlike the table (a possible unknown colour)."""
+    near = _unknown_mask(lab, background)
     for cls in classes.values():
         ref = np.asarray(cls.lab, np.float32)
         near |= ((lab - ref) ** 2).sum(axis=1) < (2.5 * cls.tolerance) ** 2
-    return near
+    return near & _foreground(lab, background)
 
 
 def _classify(roi: np.ndarray, valid: np.ndarray, origin, illumination, classes) -> tuple[np.ndarray, np.ndarray]:
@@ -173,8 +194,13 @@ def _classify(roi: np.ndarray, valid: np.ndarray, origin, illumination, classes)
     valid_small = cv2.resize(valid.astype(np.uint8), (w // f, h // f), interpolation=cv2.INTER_NEAREST) > 0
     ys, xs = np.nonzero(valid_small)
     lab = lab_of_pixels(small[ys, xs], f * xs + (f - 1) / 2 + u0, f * ys + (f - 1) / 2 + v0, illumination)
+    background = None
+    if len(lab):                                    # the table: parts cover a few % of the work area
+        median = np.median(lab, axis=0)
+        dist = np.sqrt(((lab - median) ** 2).sum(axis=1))
+        background = (median, 1.4826 * float(np.median(dist)))
     coarse = np.zeros(valid_small.shape, np.uint8)
-    coarse[ys, xs] = _candidates(lab, classes)
+    coarse[ys, xs] = _candidates(lab, classes, background)
     coarse = cv2.dilate(coarse, np.ones((3, 3), np.uint8))
     near = np.zeros((h, w), np.uint8)
     up = cv2.resize(coarse, ((w // f) * f, (h // f) * f), interpolation=cv2.INTER_NEAREST)
@@ -186,7 +212,7 @@ def _classify(roi: np.ndarray, valid: np.ndarray, origin, illumination, classes)
     best = np.full((h, w), np.inf, np.float32)
     if len(ys):
         lab = lab_of_pixels(roi[ys, xs], xs + u0, ys + v0, illumination)
-        label[ys, xs], best[ys, xs] = _classify_pixels(lab, classes)
+        label[ys, xs], best[ys, xs] = _classify_pixels(lab, classes, background)
     return label, best
 
 
@@ -418,6 +444,8 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
             area = area_mapped / (k * k)
             if unknown and area < _MIN_UNKNOWN_MM2:
                 continue
+            if not unknown and area < _NOISE_RATIO * _expected_area_mm2(cls):
+                continue                    # specks of the class's colour, not a part seen in part
             py, px = np.nonzero(sub)
             pixel_uv = (float(px.mean() + x + u0), float(py.mean() + y + v0))
             de = float(np.nanmean(np.where(np.isfinite(best[y:y + h, x:x + w][sub > 0]),
@@ -427,7 +455,13 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
             pieces = [(m, outline_mm, outline, area, pixel_uv)]
             status, reason = "ok", ""
             if unknown:
-                status, reason = "unknown_colour", "colour matches no class"
+                typical = float(np.median([_expected_area_mm2(c) for c in cell.parts.values()]))
+                if cut:
+                    status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
+                elif area > _UNKNOWN_MAX_RATIO * typical:
+                    status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
+                else:
+                    status, reason = "unknown_colour", "colour matches no class"
             elif cut:
                 status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
             else:

@@ -105,7 +105,7 @@ def _unit_noise(rng, shape, cells, sigma=None):
     return (field - field.mean()) / (field.std() + 1e-9)
 
 
-def _table_texture(rng: np.random.Generator, shape) -> np.ndarray:
+def _table_texture(rng: np.random.Generator, shape, base_lab=_TABLE_LAB) -> np.ndarray:
     """Linear-RGB texture of a light plywood bench: slow mottling, grain streaks along x, fine speckle.
 
     Rows of the texture run along table x, so the grain runs along x (up the photo)."""
@@ -113,9 +113,9 @@ def _table_texture(rng: np.random.Generator, shape) -> np.ndarray:
     mid = _unit_noise(rng, shape, 20)
     grain = _unit_noise(rng, shape, 0, sigma=(12.0, 0.8))
     speck = rng.normal(size=shape).astype(np.float32)
-    L = _TABLE_LAB[0] + 2.5 * low + 1.0 * mid + 2.2 * grain + 0.8 * speck
-    a = _TABLE_LAB[1] + 0.6 * low + 0.3 * grain
-    b = _TABLE_LAB[2] + 1.5 * low + 1.0 * grain
+    L = base_lab[0] + 2.5 * low + 1.0 * mid + 2.2 * grain + 0.8 * speck
+    a = base_lab[1] + 0.6 * low + 0.3 * grain
+    b = base_lab[2] + 1.5 * low + 1.0 * grain
     return _lab_to_linear(np.stack([L, a, b], axis=-1)).astype(np.float32)
 
 
@@ -274,7 +274,7 @@ def render_scene(cell, scene: Scene) -> Rendered:
     rng = np.random.default_rng(scene.table_seed)
     parts = resolve_parts(scene, cell)
     K_canvas, (wc, hc), map_x, map_y = _lens_map(cam)
-    canvas = _table(cam, K_canvas, (hc, wc), rng)
+    canvas = _table(cam, K_canvas, (hc, wc), rng, scene.table_lab or _TABLE_LAB)
     for marker_id, m in cell.markers.layout.items():
         if m.z == 0:
             _draw_marker(canvas, cam, K_canvas, cell, marker_id, m)
@@ -299,7 +299,7 @@ def render_scene(cell, scene: Scene) -> Rendered:
     return Rendered(image, cam, _truth(cell, scene, cam, parts))
 
 
-def _table(cam, K_canvas, shape, rng) -> np.ndarray:
+def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB) -> np.ndarray:
     hc, wc = shape
     H0 = _plane_homography(cam, K_canvas, 0.0)
     corners = np.array([[0, 0], [wc, 0], [wc, hc], [0, hc]], float)
@@ -308,7 +308,7 @@ def _table(cam, K_canvas, shape, rng) -> np.ndarray:
     x1, y1 = xy.max(axis=0) + 10
     res = _TEXTURE_PX_PER_MM
     th, tw = int((x1 - x0) * res) + 1, int((y1 - y0) * res) + 1
-    texture = _table_texture(rng, (th, tw))
+    texture = _table_texture(rng, (th, tw), base_lab)
     A = np.array([[0, 1 / res, x0], [1 / res, 0, y0], [0, 0, 1.0]])    # texture (col, row) -> table (x, y)
     return cv2.warpPerspective(texture, H0 @ A, (wc, hc), flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_REFLECT)
 

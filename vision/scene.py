@@ -83,6 +83,7 @@ class Scene(_Model):
     lighting: LightingSpec = LightingSpec()
     sensor: SensorSpec = SensorSpec()
     table_seed: int = 0
+    table_lab: Annotated[list[Number], Field(min_length=3, max_length=3)] | None = None   # bench colour
     parts: list[ScenePart] = []
     base_disc: bool = True            # draw the arm's base as a dark cylinder at the table origin
 

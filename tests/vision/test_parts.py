@@ -257,3 +257,21 @@ def test_rectangular_class_position_and_yaw():
             assert d.length_mm == pytest.approx(40, abs=2.5) and d.width_mm == pytest.approx(20, abs=2.5)
     assert yaw_errors and max(yaw_errors) < 1.0
     assert total.recall >= 0.98 and total.false_parts == 0 and total.rms_mm <= 0.5
+
+
+@pytest.mark.parametrize("table_lab", [[50, -25, -25], [45, 20, -30], [60, 5, 35]],
+                         ids=["teal-mat", "violet-mat", "ochre-board"])
+def test_colourful_benches_are_not_parts(table_lab):
+    """A coloured cutting mat or board under the parts: only pixels unlike the bench count, so the
+    bench gives no false parts, no specks and no unknown-colour 'parts'."""
+    cell = parse_cell(sample_cell_data())
+    rng = np.random.default_rng(1)
+    total, statuses = Score(), set()
+    for _ in range(3):
+        scene = random_scene(cell, rng, sensor=SensorSpec(noise=2.0)).model_copy(update={"table_lab": table_lab})
+        r = render_scene(cell, scene)
+        detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+        statuses |= {p.status for p in detection.parts}
+    assert total.recall >= 0.98 and total.false_parts == 0 and total.rms_mm <= 0.5
+    assert statuses == {"ok"}
