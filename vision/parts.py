@@ -314,14 +314,16 @@ def _robust_gauss_newton(residual, x0, iterations: int = 15, scale: float = 0.15
     return x, r
 
 
-def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k, cls, yaw_guess_deg: float):
+def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k, cls, yaw_guess_deg: float,
+                  with_axis: bool = False):
     """Fit the class's top face (circle, or rectangle of the class's proportions; centre, yaw, size
     free) to the outer half of a blob's outline: the half away from the nadir, which is always the top
     face's own edge whichever side faces the segmentation kept (outline points facing away from the
     nadir, beyond the centre: the sides' own edges face the nadir). Two passes: the second keeps only the
     outline beyond the first fit's centre. A robust loss (soft L1, 0.15 mm) discounts the stretches of
     outline that run from the top face down the visible sides. Returns the top face's centre in
-    table-mapped mm, or None if the outline does not look like the class's shape."""
+    table-mapped mm, or None if the outline does not look like the class's shape. With
+    ``with_axis``, returns (centre, unit vector of the footprint's first axis, fitted scale)."""
     fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
     centre = np.asarray(centre, float)
     radial = centre - nadir
@@ -365,7 +367,43 @@ def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k,
     size_ratio = scale / k
     if not (0.85 < size_ratio < 1.15) or float(np.median(np.abs(res))) > 0.4:
         return None
+    if with_axis:
+        yaw = params[2] if not round_part else 0.0
+        return np.array(params[:2]), np.array([np.cos(yaw), np.sin(yaw)]), float(scale)
     return np.array(params[:2])
+
+
+class _Footprint:
+    """A stand-in class with another footprint (for fitting a row of touching boxes as one box)."""
+
+    def __init__(self, length_mm: float, width_mm: float):
+        self.footprint_mm = [length_mm, width_mm]
+        self.shape = "box"
+
+
+def _fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces):
+    """Touching boxes face to face make one box n parts long: fit that (along either side of the class's
+    footprint) to the blob's outline and cut it into n top faces. Returns each piece's top-face centre
+    (table-mapped mm), in the pieces' order, or None if the row does not fit."""
+    n = len(pieces)
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    _, _, yaw_guess = _min_rect(outline_mm, k)
+    best = None
+    for along, across in ((fp[0], fp[1]), (fp[1], fp[0])):
+        fit = _fit_top_face(outline_mm, normals, m, nadir, k, _Footprint(n * along, across), yaw_guess, with_axis=True)
+        if fit is None:
+            continue
+        centre, axis, scale = fit
+        tops = centre + np.outer((np.arange(n) - (n - 1) / 2) * along * scale, axis)
+        piece_centres = np.array([p[0] for p in pieces])
+        cost = np.linalg.norm(tops[:, None, :] - piece_centres[None], axis=2)
+        order = np.argmin(cost, axis=0)                          # the top nearest each k-means piece
+        if len(set(order.tolist())) != n or cost[order, np.arange(n)].max() > 0.5 * along * scale:
+            continue
+        spread = cost[order, np.arange(n)].max()
+        if best is None or spread < best[0]:
+            best = (spread, tops[order])
+    return None if best is None else list(best[1])
 
 
 def _min_rect(points_mm: np.ndarray, scale: float):
@@ -473,9 +511,12 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
                     pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name)
             expected = _expected_area_mm2(cls) if cls is not None else area
             normals = _outward_normals(outline_mm)
-            for piece_m, piece_mm, piece_px, piece_area, piece_uv in pieces:
+            row_tops = None
+            if parallax and mode == "auto" and cls is not None and len(pieces) > 1 and cls.shape == "box":
+                row_tops = _fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces)
+            for j, (piece_m, piece_mm, piece_px, piece_area, piece_uv) in enumerate(pieces):
                 length, width, yaw = _min_rect(piece_mm, k)
-                top = None
+                top = None if row_tops is None else row_tops[j]
                 if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
                     top = _fit_top_face(outline_mm, normals, piece_m, nadir, k, cls, yaw)
                 if top is not None:
