@@ -275,3 +275,26 @@ def test_colourful_benches_are_not_parts(table_lab):
         statuses |= {p.status for p in detection.parts}
     assert total.recall >= 0.98 and total.false_parts == 0 and total.rms_mm <= 0.5
     assert statuses == {"ok"}
+
+
+@pytest.mark.parametrize("condition", ["noise 8, JPEG 70", "blur 1.5 px", "glare 1.5x", "dim 0.4x", "k1 -0.25"])
+def test_hard_photos(condition):
+    """Photos a real cell produces on a bad day: recall holds and the worst error stays near 1 mm."""
+    cell = parse_cell(sample_cell_data())
+    rng = np.random.default_rng(7)
+    kwargs = {"noise 8, JPEG 70": dict(sensor=SensorSpec(noise=8, jpeg_quality=70)),
+              "blur 1.5 px": dict(sensor=SensorSpec(noise=2)),
+              "glare 1.5x": dict(lighting=LightingSpec(brightness=1.5), sensor=SensorSpec(noise=2)),
+              "dim 0.4x": dict(lighting=LightingSpec(brightness=0.4), sensor=SensorSpec(noise=3)),
+              "k1 -0.25": dict(camera=CameraSpec(k1=-0.25, k2=0.06), sensor=SensorSpec(noise=2))}[condition]
+    total = Score()
+    for i in range(2):
+        scene = random_scene(cell, rng, touching=i == 1, **kwargs)
+        r = render_scene(cell, scene)
+        image = cv2.imdecode(np.frombuffer(encode_photo(r.image_bgr, ".jpg", scene.sensor.jpeg_quality), np.uint8), 1)
+        if condition.startswith("blur"):
+            image = cv2.GaussianBlur(image, (0, 0), 1.5)
+        detection, _ = detect_with_own_calibration(image, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+    assert total.recall >= 0.98 and total.false_parts == 0
+    assert total.rms_mm <= 0.7 and total.max_mm <= 1.5
