@@ -273,7 +273,7 @@ def _outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
     return normal if ccw else -normal
 
 
-def _robust_gauss_newton(residual, x0, iterations: int = 15, scale: float = 0.15):
+def _robust_gauss_newton(residual, x0, iterations: int = 12, scale: float = 0.15):
     """Minimise sum rho(r_i), rho soft L1 with scale ``scale`` (mm), by Levenberg-Marquardt on
     iteratively reweighted least squares. ``residual`` takes parameter sets (P, n) and returns (P, N), so
     the forward-difference Jacobian is one call. Returns (x, residuals)."""
@@ -309,7 +309,7 @@ def _robust_gauss_newton(residual, x0, iterations: int = 15, scale: float = 0.15
         step = steps[j]
         x, r, c = trials[j], r_trials[j], float(costs[j])
         damping = max(dampings[j] / 10.0, 1e-7)
-        if np.abs(step).max() < 1e-5:
+        if np.abs(step).max() < 1e-3:           # mm and rad: far below what matters here
             break
     return x, r
 
@@ -336,8 +336,8 @@ def _fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k,
         pts = outline_mm if e_r is None else outline_mm[((outline_mm - centre) @ e_r >= 0.0) & facing_out]
         if len(pts) < 12:
             return None
-        if len(pts) > 90:
-            pts = pts[:: int(np.ceil(len(pts) / 90))]
+        if len(pts) > 60:
+            pts = pts[:: int(np.ceil(len(pts) / 60))]
         px, py = pts[:, 0][None, :], pts[:, 1][None, :]
         if round_part:
             def circle(p, px=px, py=py):
