@@ -107,7 +107,6 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
 def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None,
                        calibration: dict | None = None, plots: bool = True) -> dict:
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
-    from pathlib import Path
 
     out = output_dir(out_dir)
     created = utc_now()

@@ -4,7 +4,6 @@ the photo: parts and reasons, pick points, bins, the reachable region at grip he
 from __future__ import annotations
 
 import json
-from pathlib import Path
 
 import numpy as np
 

@@ -22,7 +22,7 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from planning.arm import Arm, Reason
+from planning.arm import Reason
 from planning.cli import main
 from planning.config import load_cell, parse_cell
 from planning.errors import CellFileError

@@ -1,0 +1,232 @@
+"""Commands about the camera: render (synthetic photos), calibrate, check."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+
+
+@command()
+def render(
+    cell: Path = typer.Argument(..., help="The cell file (markers, work area and part classes are used)."),
+    out: Path = typer.Option(Path("renders"), "--out", "-o", help="Folder for the photos and their .truth.yaml files."),
+    scene: Optional[Path] = typer.Option(None, "--scene", help="Render one given scene (YAML), or again from a .truth.yaml."),
+    scenes: int = typer.Option(1, "--scenes", min=1, max=10000, help="How many random scenes."),
+    seed: int = typer.Option(0, "--seed", help="Seed: the same seed gives the same photos."),
+    sample_set: bool = typer.Option(False, "--sample-set", help="Render the whole demo set (calibration, bumped, demo, batch)."),
+    camera_shift_mm: float = typer.Option(0.0, "--camera-shift-mm", help="Move the camera sideways by this much (random direction)."),
+    camera_tilt_deg: float = typer.Option(0.0, "--camera-tilt-deg", min=0, max=30, help="Tilt the camera (random direction)."),
+    distortion: Optional[str] = typer.Option(None, "--distortion", help="Lens distortion K1[,K2] (OpenCV model), e.g. -0.15,0.03."),
+    noise: float = typer.Option(1.5, "--noise", min=0, max=30, help="Sensor noise, sigma in 8-bit levels."),
+    brightness: float = typer.Option(1.0, "--brightness", min=0.05, max=3, help="Light level (1 = normal)."),
+    white_balance: Optional[str] = typer.Option(None, "--white-balance", help="R,G,B gains, e.g. 1.15,1,0.75 for warm light."),
+    jpeg_quality: int = typer.Option(92, "--jpeg-quality", min=30, max=100),
+    vary: bool = typer.Option(False, "--vary", help="Random light, white balance, noise and lens per scene."),
+    touching: bool = typer.Option(False, "--touching", help="Put two touching tokens in every scene."),
+    unknown: bool = typer.Option(False, "--unknown", help="Put one token of an unknown colour in every scene."),
+    fmt: str = typer.Option("jpg", "--format", help="jpg or png."),
+):
+    """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
+    import numpy as np
+
+    from planning.config import load_cell, read_yaml
+    from planning.errors import GripsightError
+    from vision.photoset import UNKNOWN_LAB, _varied_conditions, write_photo, write_sample_set
+    from vision.render import render_scene
+    from vision.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
+
+    if fmt not in ("jpg", "png"):
+        raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
+    cfg = load_cell(cell)
+    if sample_set:
+        total = 53
+        with _progress() as bar:
+            task = bar.add_task("rendering the sample set", total=total)
+            paths = write_sample_set(cfg, out, seed=seed, progress=lambda p: bar.advance(task))
+        typer.echo(f"wrote {len(paths)} photos with truth files under {out}")
+        return
+    if scene is not None:
+        from pydantic import ValidationError
+
+        from planning.config import _pydantic_problems
+        from planning.errors import CellFileError
+
+        data, _ = read_yaml(scene, "scene file")
+        if isinstance(data, dict) and data.get("gripsight") == "render-truth":
+            data = data.get("scene")          # a truth file: render its photo again
+        try:
+            sc = Scene.model_validate(data or {})
+        except ValidationError as exc:
+            raise CellFileError(str(scene), _pydantic_problems(exc)) from None
+        try:
+            rendered = render_scene(cfg, sc)
+        except ValueError as exc:
+            raise GripsightError(f"{scene}: {exc}") from None
+        path = write_photo(out / f"{scene.stem}.{fmt}", rendered, sc.sensor.jpeg_quality)
+        typer.echo(f"wrote {path} and {path.stem}.truth.yaml")
+        return
+    k = _floats(distortion, "--distortion", (1, 2)) or [0.0]
+    wb = _floats(white_balance, "--white-balance", (3, 3)) or [1.0, 1.0, 1.0]
+    rng = np.random.default_rng(seed)
+    base = make_camera(CameraSpec(), cfg)
+    with _progress() as bar:
+        task = bar.add_task("rendering", total=scenes)
+        for i in range(scenes):
+            az = float(rng.uniform(0, 360))
+            centre = base.centre_mm + camera_shift_mm * np.array([np.cos(np.radians(az)), np.sin(np.radians(az)), 0.0])
+            cam = dict(centre_mm=centre.tolist(), focal_px=float(base.K[0, 0]), tilt_deg=camera_tilt_deg,
+                       tilt_azimuth_deg=float(rng.uniform(0, 360)), k1=k[0], k2=k[1] if len(k) > 1 else 0.0)
+            lighting = LightingSpec(brightness=brightness, white_balance=wb)
+            sensor = SensorSpec(noise=noise, jpeg_quality=jpeg_quality)
+            if vary:
+                lighting, sensor, lens = _varied_conditions(rng)
+                cam.update(lens)
+            sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
+                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor)
+            write_photo(out / f"render_{seed}_{i:03d}.{fmt}", render_scene(cfg, sc), sc.sensor.jpeg_quality)
+            bar.advance(task)
+    typer.echo(f"wrote {scenes} photos with truth files under {out}")
+
+
+def _lens_for(cfg):
+    if cfg.camera.lens != "file":
+        return None
+    from vision.lens import load_opencv_lens
+
+    path = Path(cfg.camera.lens_file)
+    if not path.is_absolute() and cfg.source_path:
+        path = Path(cfg.source_path).parent / path
+    return load_opencv_lens(path)
+
+
+def _default_calibration(cell_path: Path) -> Path:
+    return cell_path.parent / "calibration.yaml"
+
+
+@command()
+def calibrate(
+    photo: Path = typer.Argument(..., help="A photo of the table with the markers in view."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Calibration file (default: calibration.yaml beside the cell file)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Overlay PNG (default: <calibration>_overlay.png)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the calibration record as JSON and nothing else."),
+):
+    """Fit the camera-to-table mapping (and lens, camera centre) from the markers in one photo."""
+    import json
+
+    import cv2
+
+    from planning.config import load_cell
+    from planning.fileio import write_bytes_atomic
+    from vision.calfile import calibration_record, write_calibration
+    from vision.calibration import calibrate as fit
+    from vision.markers import detect_markers
+    from vision.overlay import calibration_overlay
+    from vision.photo import read_photo
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    image = read_photo(photo)
+    detections = detect_markers(image, cfg.markers.dictionary)
+    cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
+    out = out or _default_calibration(cell_path)
+    moved = write_calibration(out, cal, cfg, photo)
+    overlay = overlay or out.with_name(out.stem + "_overlay.png")
+    ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
+    write_bytes_atomic(overlay, buf.tobytes())
+    if as_json:
+        typer.echo(json.dumps(calibration_record(cal, cfg, photo), indent=2))
+        return
+    _print_calibration(cal, out, overlay, moved)
+
+
+def _print_calibration(cal, out, overlay, moved) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    table = Table(title="markers", title_justify="left")
+    for col in ("id", "residual mm", "residual px", "status"):
+        table.add_column(col, justify="right" if col != "status" else "left")
+    for m in sorted(cal.markers, key=lambda m: m.id):
+        status = "used" if m.used else m.reason
+        mm = "" if m.residual_mm is None else f"{m.residual_mm:.3f}"
+        px = "" if m.residual_px is None else f"{m.residual_px:.2f}"
+        table.add_row(str(m.id), mm, px, status)
+    console.print(table)
+    for note in cal.notes:
+        console.print(f"note: {note}")
+    c = cal.camera_centre_mm
+    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.replace('_', ' ')}")
+    console.print(f"verdict: {cal.verdict}: RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm "
+                  f"over {len(cal.used)} markers")
+    moved_markers = [m for m in cal.markers if m.reason.startswith("moved")]
+    for m in moved_markers:
+        console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
+                      "where the cell file says, or update its position")
+    if moved is not None:
+        console.print(f"the previous calibration was moved to {moved}")
+    console.print(f"wrote {out} and {overlay}")
+
+
+@command()
+def check(
+    photo: Path = typer.Argument(..., help="A new photo from the calibrated camera."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write an overlay PNG of old and new work area."),
+    as_json: bool = typer.Option(False, "--json", help="Print the drift report as JSON and nothing else."),
+):
+    """Has the camera moved since calibration? Exit 0 if ok, 3 if moved."""
+    import json
+
+    from planning.config import load_cell
+    from vision.calfile import read_calibration
+    from vision.drift import check_drift
+    from vision.markers import detect_markers
+    from vision.photo import read_photo
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    stored = read_calibration(calibration or _default_calibration(cell_path))
+    image = read_photo(photo)
+    report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,
+                         (image.shape[1], image.shape[0]), str(photo))
+    if overlay is not None:
+        import cv2
+
+        from planning.fileio import write_bytes_atomic
+        from vision.overlay import drift_overlay
+
+        write_bytes_atomic(overlay, cv2.imencode(".png", drift_overlay(image, report, stored, cfg))[1].tobytes())
+    if as_json:
+        typer.echo(json.dumps(dict(report.as_dict(), photo=str(photo), calibration=stored.path), indent=2))
+    else:
+        _print_drift(report, photo, cell_path)
+    if report.verdict == "moved":
+        raise typer.Exit(3)
+
+
+def _print_drift(report, photo, cell_path) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    table = Table(title="marker shifts", title_justify="left")
+    for col in ("id", "shift px", "shift mm"):
+        table.add_column(col, justify="right")
+    for m in report.markers:
+        table.add_row(str(m.id), f"{m.shift_px:.2f}", f"{m.shift_mm:.2f}")
+    console.print(table)
+    for note in report.notes:
+        console.print(f"note: {note}")
+    if report.grid_max_mm is not None:
+        console.print(f"work-area mapping moved by max {report.grid_max_mm:.2f} mm, mean {report.grid_mean_mm:.2f} mm "
+                      f"(tolerance {report.tolerance_mm:g} mm)")
+    console.print(f"verdict: {report.verdict}")
+    if report.verdict == "moved":
+        console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")

@@ -1,0 +1,96 @@
+"""Commands that set a cell up: init, validate, reach, markers."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+
+from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+
+
+# ------------------------------------------------------------------ init / validate
+@command()
+def init(
+    path: Path = typer.Argument(Path("cell.yaml"), help="Where to write the starter cell file."),
+    force: bool = typer.Option(False, "--force", help="Overwrite an existing file."),
+):
+    """Write a commented starter cell file to fill in with your cell's measurements."""
+    from planning.config import starter_cell_text
+    from planning.errors import GripsightError
+    from planning.fileio import write_text_atomic
+
+    if path.is_dir():
+        raise GripsightError(f"{path}: is a directory; give a file name such as {path / 'cell.yaml'}")
+    if path.exists() and not force:
+        raise GripsightError(f"{path}: already exists; pass --force to overwrite it or choose another name")
+    write_text_atomic(path, starter_cell_text())
+    typer.echo(f"wrote {path}: fill in the keys marked MEASURE, then run: gripsight validate {path}")
+
+
+@command()
+def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
+    """Check a cell file; print a summary, or every problem with its key path (exit 2)."""
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.reach import lowest_grip_z_mm, radial_reach
+
+    cfg = load_cell(cell)
+    arm = Arm.from_config(cfg.arm)
+    raised = sum(1 for m in cfg.markers.layout.values() if m.z > 0)
+    grip = radial_reach(arm, lowest_grip_z_mm(cfg))
+    link = cfg.arm.linkage.type + (f" ({arm.grashof()})" if cfg.arm.linkage.type == "four_bar" else "")
+    typer.echo(
+        f"ok: {cfg.cell}: {link} arm {cfg.arm.upper_arm_mm:g}+{cfg.arm.forearm_mm:g} mm, "
+        f"{len(cfg.markers.layout)} markers ({raised} raised), {len(cfg.parts)} part classes, "
+        f"{len(cfg.bins)} bins; reach at grip height {grip.describe()}")
+
+
+# ------------------------------------------------------------------ reach
+@command()
+def reach(
+    cell: Path = typer.Argument(..., help="The cell file."),
+    out: Path = typer.Option(Path("reach.png"), "--out", "-o", help="Where to write the picture (PNG)."),
+    resolution_mm: float = typer.Option(2.0, "--resolution-mm", min=0.5, max=20.0, help="Grid step of the drawing."),
+):
+    """Draw the reachable region (top and side view) and flag bins or corners the arm cannot reach."""
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.fileio import atomic_output
+    from planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
+    from planning.reach_plot import draw_reach
+
+    cfg = load_cell(cell)
+    arm = Arm.from_config(cfg.arm)
+    with atomic_output(out) as tmp:
+        draw_reach(cfg, arm, tmp, resolution_mm=resolution_mm)
+    safe = radial_reach(arm, cfg.motion.safe_z_mm)
+    grip = radial_reach(arm, lowest_grip_z_mm(cfg))
+    table = radial_reach(arm, 0.0)
+    typer.echo(f"reach: table {table.describe()}; grip {grip.describe()}; safe {safe.describe()}")
+    bad = unreachable_places(cfg, arm)
+    for u in bad:
+        typer.echo(f"cannot reach: {u.describe()}")
+    typer.echo(f"wrote {out}")
+
+
+@command()
+def markers(
+    cell: Path = typer.Argument(..., help="The cell file."),
+    out: Path = typer.Option(Path("markers.pdf"), "--out", "-o", help="sheet.pdf (all pages) or sheet.png (one file per page)."),
+    paper: str = typer.Option("a4", "--paper", help="a4 or letter."),
+    dpi: int = typer.Option(300, "--dpi", min=72, max=1200, help="Resolution of PNG pages."),
+):
+    """Write a printable sheet of the layout's markers at true size, with a 100 mm scale bar."""
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+    from vision.sheet import PAPER_MM, write_marker_sheet
+
+    if paper not in PAPER_MM:
+        raise GripsightError(f"--paper: expected a4 or letter, got '{paper}'")
+    if out.suffix.lower() not in (".pdf", ".png"):
+        raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
+    cfg = load_cell(cell)
+    paths = write_marker_sheet(cfg, out, paper, dpi)
+    typer.echo(f"wrote {', '.join(map(str, paths))}: {len(cfg.markers.layout)} markers, "
+               f"{cfg.markers.size_mm:g} mm; print at 100 % and check the 100 mm scale bar")

@@ -1,0 +1,289 @@
+"""Commands that do the job: detect, plan, run, batch."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+
+
+@command()
+def detect(
+    photo: Path = typer.Argument(..., help="A photo from the calibrated camera."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write a PNG with outlines, classes, pick points and reasons."),
+    as_json: bool = typer.Option(False, "--json", help="Print the parts as JSON and nothing else."),
+    sample: Optional[str] = typer.Option(None, "--sample", help="U,V: print the white-balanced CIELAB colour around that pixel."),
+):
+    """Find the parts in a photo: class, table position (mm, parallax corrected), size, status."""
+    import json
+
+    from planning.cell import analyse_photo, load_or_make_calibration
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+
+    cfg = load_cell(_find_cell(cell, photo))
+    if sample is not None:
+        _sample_colour(photo, cfg, sample)
+        return
+    stored = load_or_make_calibration(cfg, calibration)
+    result = analyse_photo(photo, cfg, stored)
+    if result.refused:
+        raise GripsightError(result.registration.message)
+    det = result.detection
+    if overlay is not None:
+        import cv2
+
+        from planning.fileio import write_bytes_atomic
+        from vision.overlay import detection_overlay
+
+        image = detection_overlay(result.image, det, result.registration.mapping,
+                                  result.registration.camera_centre_mm, cfg)
+        write_bytes_atomic(overlay, cv2.imencode(".png", image)[1].tobytes())
+    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action,
+            "registration_note": result.registration.message,
+            "drift": None if result.registration.drift is None else result.registration.drift.as_dict(),
+            "white_balance": None if det.illumination is None else det.illumination.as_dict(),
+            "parts": [p.as_dict() for p in det.parts], "notes": det.notes}
+    if as_json:
+        typer.echo(json.dumps(data, indent=2))
+        return
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    if result.registration.message:
+        console.print(f"note: {result.registration.message}")
+    table = Table(title=f"{photo}: parts", title_justify="left")
+    for col in ("id", "class", "x mm", "y mm", "yaw", "size mm", "ΔE", "status"):
+        table.add_column(col, justify="right" if col not in ("id", "class", "status") else "left")
+    for p in det.parts:
+        status = p.status if p.status == "ok" else f"{p.status}: {p.reason}"
+        table.add_row(p.id, p.class_name, f"{p.xy_mm[0]:.1f}", f"{p.xy_mm[1]:.1f}", f"{p.yaw_deg:.0f}",
+                      f"{p.length_mm:.0f}x{p.width_mm:.0f}", "" if p.delta_e != p.delta_e else f"{p.delta_e:.1f}", status)
+    console.print(table)
+    for note in det.notes:
+        console.print(f"note: {note}")
+    if overlay is not None:
+        console.print(f"wrote {overlay}")
+
+
+def _sample_colour(photo: Path, cfg, text: str) -> None:
+    """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
+    import numpy as np
+
+    from vision.colour import delta_e_2000
+    from vision.markers import detect_markers
+    from vision.photo import read_photo
+    from vision.whitebalance import fit_illumination, lab_image
+
+    uv = _floats(text, "--sample", (2, 2))
+    image = read_photo(photo)
+    u, v = int(round(uv[0])), int(round(uv[1]))
+    h, w = image.shape[:2]
+    if not (3 <= u < w - 3 and 3 <= v < h - 3):
+        from planning.errors import GripsightError
+
+        raise GripsightError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
+    ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary), cfg)
+    patch = lab_image(image[v - 3:v + 4, u - 3:u + 4], ill, (u - 3, v - 3)).reshape(-1, 3)
+    lab = np.median(patch, axis=0)
+    typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
+               + ("" if ill is not None else " (no marker paper seen: not white-balanced)"))
+    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(delta_e_2000(lab, kv[1].lab))):
+        d = float(delta_e_2000(lab, cls.lab))
+        typer.echo(f"  {name}: dE2000 {d:.1f} (tolerance {cls.tolerance:g}){'  <- match' if d < cls.tolerance else ''}")
+
+
+@command()
+def plan(
+    photo: Optional[Path] = typer.Argument(None, help="A photo from the calibrated camera (or give --parts)."),
+    parts: Optional[Path] = typer.Option(None, "--parts", help="Parts in table coordinates instead of a photo (YAML list of {class, x_mm, y_mm, ...})."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the input or in its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the pictures."),
+    order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
+    as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
+    plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png."),
+):
+    """Plan checked pick-and-place moves for the parts in a photo (or a parts file); write the joint sequence."""
+    import json
+
+    from planning.arm import Arm
+    from planning.config import load_cell
+    from planning.errors import GripsightError
+    from planning.picks import Planner
+
+    if order not in ("nearest", "detected"):
+        raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
+    if (photo is None) == (parts is None):
+        raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
+    cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
+    arm = Arm.from_config(cfg.arm)
+    planner = Planner(cfg, arm)
+    if parts is not None:
+        from planning.export import write_plan_outputs
+        from planning.targets import load_parts_file
+
+        result = planner.plan(load_parts_file(parts, cfg), order=order)
+        data = write_plan_outputs(out, result, cfg, arm, plots=plots)
+    else:
+        from planning.cell import load_or_make_calibration, plan_photo
+        from planning.photo_outputs import write_photo_outputs
+
+        stored = load_or_make_calibration(cfg, calibration)
+        photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
+        data = write_photo_outputs(out, photo_plan, cfg, arm, stored)
+        if photo_plan.plan is None:
+            raise GripsightError(photo_plan.message)
+    if as_json:
+        typer.echo(json.dumps(data, indent=2))
+        return
+    _print_plan_summary(data, out)
+
+
+def _print_plan_summary(data: dict, out: Path) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
+    for col in ("#", "part", "class", "bin", "duration s"):
+        table.add_column(col, justify="right" if col in ("#", "duration s") else "left")
+    for i, pick in enumerate(data["picks"], 1):
+        table.add_row(str(i), pick["part"], pick["class"], pick["bin"], f"{pick['duration_s']:.2f}")
+    console.print(table)
+    rejected = [p for p in data["parts"] if p["status"] != "planned"]
+    if rejected:
+        rt = Table(title="rejected", title_justify="left")
+        for col in ("part", "class", "reason", "detail"):
+            rt.add_column(col)
+        for p in rejected:
+            rej = p["rejection"]
+            where = f" ({rej['segment']})" if rej.get("segment") else ""
+            rt.add_row(p["id"], p["class"], rej["check"], rej["detail"] + where)
+        console.print(rt)
+    tot = data["totals"]
+    console.print(f"{tot['planned']} planned, {tot['rejected']} rejected; cycle time {tot['cycle_s']:.2f} s "
+                  f"({tot['samples']} samples at {tot['sample_hz']:g} Hz)")
+    for w in data["warnings"]:
+        console.print(f"warning: {w}")
+    pictures = [name for name in ("joints.png", "path.png", "overlay.png") if (out / name).exists()]
+    console.print(f"wrote {out / 'plan.json'}, {out / 'joints.csv'}" + "".join(f", {out / n}" for n in pictures))
+
+
+@command()
+def run(
+    folder: Path = typer.Argument(..., help="Folder of photos, taken in name order by the cell."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out/run"), "--out", "-o", help="Folder for run.csv and one folder per photo."),
+    resume: bool = typer.Option(False, "--resume", help="Continue an interrupted or stopped run in --out."),
+    emptied: list[str] = typer.Option([], "--emptied", help="With --resume: this bin was emptied (repeatable)."),
+    order: str = typer.Option("nearest", "--order", help="nearest or detected."),
+):
+    """The sorting cell: plan photo after photo, the arm carried from one to the next; one run.csv."""
+    from rich.console import Console
+    from rich.table import Table
+
+    from planning.cell import load_or_make_calibration
+    from planning.config import load_cell
+    from planning.run import photos_in, run_folder
+
+    cfg = load_cell(_find_cell(cell, folder))
+    stored = load_or_make_calibration(cfg, calibration)
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    total = len(photos_in(folder))
+
+    def report(photo, summary):
+        picked = sum(summary["picked"].values())
+        rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
+        line = f"[{len(result_rows) + 1}/{total}] {photo.name}: "
+        line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
+                 else f"{summary['status']}: {summary['message']}")
+        if summary["registration"] == "refit":
+            line += f" (camera moved: {summary['message']})"
+        result_rows.append(summary)
+        console.print(line)
+
+    result_rows: list = []
+    from planning.fileio import output_dir
+    from planning.lock import output_lock
+
+    with output_lock(output_dir(out), "run"):
+        result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order,
+                            progress=report)
+    table = Table(title=f"run of {folder}", title_justify="left")
+    for col in ("photos", "picked", "by class", "rejected", "by reason", "cycle s"):
+        table.add_column(col)
+    table.add_row(str(len(result.photos)), str(sum(result.picked.values())),
+                  ", ".join(f"{k} {v}" for k, v in sorted(result.picked.items())) or "-",
+                  str(sum(result.rejected.values())),
+                  ", ".join(f"{k} {v}" for k, v in sorted(result.rejected.items())) or "-", f"{result.cycle_s:.1f}")
+    console.print(table)
+    if result.interrupted:
+        console.print(f"interrupted after {len(result.photos)} of {total} photos; every finished photo's outputs "
+                      f"are complete; resume with: gripsight run {folder} --out {out} --resume")
+        raise typer.Exit(130)
+    if result.stopped:
+        console.print(f"stopped: {result.stopped}")
+        raise typer.Exit(4)
+    console.print(f"wrote {out / 'run.csv'} and one folder per photo under {out}")
+
+
+@command()
+def batch(
+    folder: Path = typer.Argument(..., help="Folder of photos to test, each on its own."),
+    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    out: Path = typer.Option(Path("out/batch"), "--out", "-o", help="Folder for batch.csv, batch.json, report.html."),
+    workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Parallel worker processes."),
+    scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Dask scheduler address (tcp://host:port) instead of local workers."),
+    resume: bool = typer.Option(False, "--resume", help="Keep the photos an interrupted batch in --out finished."),
+):
+    """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
+    from planning.batch import run_batch, write_batch_tables
+    from planning.config import load_cell
+    from planning.run import photos_in
+
+    from planning.fileio import output_dir
+    from planning.lock import output_lock
+
+    cell_path = _find_cell(cell, folder)
+    cfg = load_cell(cell_path)
+    n = len(photos_in(folder))
+    with output_lock(output_dir(out), "batch"), _progress() as bar:
+        task = bar.add_task("batch", total=n)
+        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                         progress=lambda row: bar.advance(task), resume=resume)
+        totals = write_batch_tables(out, rows, cfg)
+    _print_batch(rows, totals, out)
+    if totals["errors"]:
+        raise typer.Exit(5)
+
+
+def _print_batch(rows, totals, out) -> None:
+    from rich.console import Console
+    from rich.table import Table
+
+    console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
+    table = Table(title="batch", title_justify="left")
+    for col in ("photo", "status", "found", "planned", "rejected", "cycle s"):
+        table.add_column(col, justify="right" if col in ("found", "planned", "cycle s") else "left")
+    for r in rows:
+        status = r["status"] if not r["error"] else f"{r['status']}: {r['error']}"
+        table.add_row(r["photo"], status, str(r["parts"]), str(r["planned"]),
+                      ", ".join(f"{k} {v}" for k, v in sorted(r["rejected"].items())), f"{r['cycle_s']:.1f}")
+    console.print(table)
+    line = (f"{totals['photos']} photos: {totals['ok']} planned, {totals['refused']} refused, {totals['errors']} failed; "
+            f"{totals['planned']} picks, rejected {sum(totals['rejected'].values())}")
+    if "truth" in totals:
+        t = totals["truth"]
+        line += (f"; against truth: recall {t['recall']:.1%}, precision {t['precision']:.1%}, "
+                 f"pick error {t['pick_error_rms_mm']:.2f} mm RMS ({t['pick_error_max_mm']:.2f} max)")
+    console.print(line)
+    console.print(f"wrote {out / 'batch.csv'}, {out / 'batch.json'}, {out / 'report.html'}")
