@@ -124,8 +124,9 @@ def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: fl
                             np.concatenate([s.xyz_mm for s in segments]),
                             np.concatenate([s.joints_rad for s in segments]),
                             np.concatenate([s.reason for s in segments]))
+    swing = np.concatenate([np.full(len(s.t_s), s.segment.kind.value == "swing") for s in segments])
     rej = first_failure(ctx, joined, t0_s, dt_steps=np.concatenate(
-        [np.diff(s.t_s, prepend=s.t_s[0]) for s in segments])[1:])
+        [np.diff(s.t_s, prepend=s.t_s[0]) for s in segments])[1:], flip_allowed=swing[1:] | swing[:-1])
     if rej is None:
         return None
     index = int(np.searchsorted(joined.t_s + t0_s, rej.time_s - 1e-9))
@@ -133,7 +134,8 @@ def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: fl
     return Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
 
 
-def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_steps=None) -> Rejection | None:
+def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_steps=None,
+                  flip_allowed=None) -> Rejection | None:
     """The earliest failing sample of a sampled segment, as a :class:`Rejection`; None if all pass.
 
     Parameters
@@ -143,6 +145,10 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
         Its first sample is the previous segment's last (so joint speed is checked across the joint).
     t0_s : float
         Sequence time of the segment's first sample, for the report.
+    dt_steps : ndarray, shape (M - 1,), optional
+        Time between consecutive samples (default the clock period; 0 where a sample repeats).
+    flip_allowed : ndarray of bool, shape (M - 1,), optional
+        Steps where the elbow may change branch (joint-space swings).
     """
     arm = ctx.arm
     m = len(s.t_s)
@@ -185,6 +191,8 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
         bend = np.sign(wrap_angle(psi - s.joints_rad[:, 1]))
         jump = np.abs(wrap_angle(np.diff(s.joints_rad, axis=0))).max(axis=1) > np.pi / 2
         flip = ((bend[1:] != bend[:-1]) & (bend[1:] != 0) & (bend[:-1] != 0) | jump) & valid[1:] & valid[:-1]
+        if flip_allowed is not None:          # a swing changes branch on purpose
+            flip &= ~np.asarray(flip_allowed, bool)
         if flip.any():
             i = int(np.flatnonzero(flip)[0]) + 1
             found.append((i, 4, lambda: Rejection("branch_flip", "the elbow would change branch inside one move")))

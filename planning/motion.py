@@ -30,6 +30,7 @@ class SegmentKind(str, Enum):
     LOWER = "lower"         # straight down to safe height (from a higher start such as home)
     CLOSE = "close"         # dwell while the gripper closes
     OPEN = "open"           # dwell while the gripper opens
+    SWING = "swing"         # joint-space move (from or to a pose the Cartesian moves cannot start from)
 
 
 @dataclass(frozen=True)
@@ -41,6 +42,7 @@ class Segment:
     hold_mm: np.ndarray | None = None
     part_id: str | None = None
     gripper_closed: bool = False
+    joints_rad: tuple | None = None      # (start, end), shape (3,) each, for a SWING
 
     @property
     def start_mm(self) -> np.ndarray:
@@ -75,7 +77,11 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     out = [0.0] * len(segments)
     moving = [i for i, seg in enumerate(segments) if seg.path is not None]
     for i, seg in enumerate(segments):
-        if seg.path is None:
+        if seg.joints_rad is not None:        # joint space: the slowest joint at the scaling's peak rate
+            q0, q1 = seg.joints_rad
+            need = float(np.max(np.abs(np.asarray(q1) - q0) / arm.max_speed_rad_s)) * peak_rate(scaling)
+            out[i] = _round_up(max(need * _SPEED_MARGIN, dt_s), dt_s)
+        elif seg.path is None:
             out[i] = _round_up(dwell_s, dt_s)
     if not moving:
         return out
@@ -103,11 +109,18 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
                     dt_s: float) -> list[SampledSegment]:
     """Sample segments on the sequence clock, both ends included (M = duration / dt + 1 samples each),
     with one IK call for all."""
-    pts, times = [], []
-    for seg, duration in zip(segments, durations):
+    pts, times, swings = [], [], {}
+    for k, (seg, duration) in enumerate(zip(segments, durations)):
         n = int(round(duration / dt_s))
         t = np.arange(n + 1) * dt_s
-        if seg.path is None:
+        if seg.joints_rad is not None:
+            sv, _, _ = time_scaling(scaling, t / duration)
+            sv[-1] = 1.0
+            q0, q1 = (np.asarray(q, float) for q in seg.joints_rad)
+            q = q0 + sv[:, None] * (q1 - q0)
+            swings[k] = q
+            xyz = arm.forward(q)
+        elif seg.path is None:
             xyz = np.repeat(seg.hold_mm[None, :], n + 1, axis=0)
         else:
             sv, _, _ = time_scaling(scaling, t / duration)
@@ -117,8 +130,12 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
         times.append(t)
     sol = arm.inverse(np.concatenate(pts))
     out, start = [], 0
-    for seg, duration, xyz, t in zip(segments, durations, pts, times):
+    for k, (seg, duration, xyz, t) in enumerate(zip(segments, durations, pts, times)):
         end = start + len(t)
-        out.append(SampledSegment(seg, duration, t, xyz, sol.joints_rad[start:end], sol.reason[start:end]))
+        if k in swings:                       # the joints are given; check them as they are
+            q = swings[k]
+            out.append(SampledSegment(seg, duration, t, xyz, q, arm.check_joints(q)))
+        else:
+            out.append(SampledSegment(seg, duration, t, xyz, sol.joints_rad[start:end], sol.reason[start:end]))
         start = end
     return out

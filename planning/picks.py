@@ -116,11 +116,9 @@ class Planner:
                 if not sol.ok[0]:
                     problems.append(Problem(f"bins.{name}", f"cannot be reached at {label} height (z={z:g} mm): "
                                                            f"{sol.reason_labels()[0]}"))
-        home_mm = self.arm.forward(self.home_rad[None])[0]
-        sol = self.arm.inverse(home_mm[None])
-        if not sol.ok[0] or np.abs(sol.joints_rad[0] - self.home_rad).max() > 1e-6:
-            problems.append(Problem("motion.home_deg", f"the home pose is not reachable on the elbow-{self.arm.branch.value} "
-                                                       "branch the plan uses; choose a home pose on that branch"))
+        if self.arm.check_joints(self.home_rad[None])[0] != 0:
+            problems.append(Problem("motion.home_deg", "the home pose breaks the arm's own limits "
+                                                       "(joint limits, elbow stop or linkage); choose another"))
         if problems:
             raise CellFileError(self.cell.source_path or "<cell>", problems)
 
@@ -175,6 +173,22 @@ class Planner:
         segs += self._straight(SegmentKind.RISE, [b.x, b.y, drop_z], above_bin, pid, False)
         return segs
 
+    def _ik_pose(self, q) -> bool:
+        """True if IK gives back these joints for their own tool point (Cartesian moves can start here)."""
+        q = np.asarray(q, float)
+        sol = self.arm.inverse(self.arm.forward(q[None]))
+        return bool(sol.ok[0]) and float(np.abs(sol.joints_rad[0] - q).max()) < 1e-6
+
+    def _swing_to_safe(self, q0, part_id) -> tuple[list[Segment], np.ndarray] | None:
+        """A joint-space swing from ``q0`` to the IK pose above its tool point at safe height."""
+        p = self.arm.forward(np.asarray(q0, float)[None])[0]
+        target = np.array([p[0], p[1], self.safe_z])
+        sol = self.arm.inverse(target[None])
+        if not sol.ok[0]:
+            return None
+        seg = Segment(SegmentKind.SWING, None, part_id=part_id, joints_rad=(np.asarray(q0, float), sol.joints_rad[0]))
+        return [seg], target
+
     def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], Rejection | None]:
         """Time, sample and check a pick's segments together (one IK call for each stage)."""
         m = self.cell.motion
@@ -225,9 +239,20 @@ class Planner:
         picks: list[PlannedPick] = []
         accepted: list[SampledSegment] = []
         t, here = t0_s, start_mm
+        lead: list[Segment] = []
+        warnings = []
+        if not self._ik_pose(q0):
+            # the arm stands where Cartesian moves cannot start (another elbow branch, a straight arm):
+            # swing in joint space to the pose above that point first
+            swing = self._swing_to_safe(q0, None)
+            if swing is None:
+                warnings.append("the arm's start pose has no reachable point above it at safe height; nothing planned")
+                candidates = []
+            else:
+                lead, here = swing
         for part in candidates:
             bin_name = self.bin_for(part)
-            segs = self.pick_segments(part, bin_name, here)
+            segs = lead + self.pick_segments(part, bin_name, here)
             sampled, rej = self._check_all(segs, t)
             if rej is not None:
                 outcomes[part.id] = PartOutcome(part, "rejected", bin_name, rej)
@@ -237,13 +262,18 @@ class Planner:
             accepted += sampled
             t += sum(s.duration_s for s in sampled)
             here = sampled[-1].xyz_mm[-1]
-        warnings = []
+            lead = []
         home_mm = self.arm.forward(self.home_rad[None])[0]
-        if end_at_home and np.linalg.norm(here - home_mm) > _SAME_POINT_MM:
+        q_here = accepted[-1].joints_rad[-1] if accepted else q0
+        if end_at_home and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
             segs, p = self._to_safe(here, None, False)
-            segs += self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
-            segs += self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
-                                   [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
+            if self._ik_pose(self.home_rad):
+                segs = lead + segs + self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
+                segs += self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
+                                       [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
+            else:                            # home is a pose Cartesian moves cannot end in: swing to it
+                q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]
+                segs = lead + segs + [Segment(SegmentKind.SWING, None, joints_rad=(q_safe, self.home_rad))]
             sampled, rej = self._check_all(segs, t)
             if rej is None:
                 accepted += sampled

@@ -273,3 +273,36 @@ def test_empty_parts_list_is_a_valid_empty_plan(tmp_path, capsys):
     assert data["picks"] == [] and data["totals"]["cycle_s"] == 0
     _, rows = read_joints_csv(tmp_path / "o" / "joints.csv")
     assert len(rows) == 1 and rows[0]["segment"] == "start"   # the arm stays at home
+
+
+def test_a_home_pose_on_the_other_branch_swings_in_joint_space():
+    """Home with the elbow below the shoulder-wrist line (elbow-down) while the plan runs elbow-up: the
+    sequence swings in joint space from home, plans as usual, and swings back; every sample is checked."""
+    data = yaml.safe_load(SAMPLE_CELL.read_text())
+    data["motion"]["home_deg"] = {"base": 0, "shoulder": 20, "elbow": 50}        # psi - shoulder = 30: elbow down
+    data["arm"]["elbow_interior_deg"] = [20, 180]     # changing branch passes the straight arm: no stop there
+    cell = parse_cell(data)
+    planner = Planner(cell)
+    plan = planner.plan(parse_parts([{"id": "a", "class": "red", "x_mm": 220, "y_mm": 40}], cell))
+    kinds = plan.samples.segment_kind
+    assert kinds[1] == "swing" and kinds[-1] == "swing"
+    q = plan.samples.joints_rad
+    np.testing.assert_allclose(np.degrees(q[0]), [0, 20, 50], atol=1e-9)
+    np.testing.assert_allclose(np.degrees(q[-1]), [0, 20, 50], atol=1e-9)
+    assert np.all(planner.arm.check_joints(q) == Reason.OK)
+    assert np.all(np.abs(np.diff(q, axis=0)) / planner.dt_s <= planner.arm.max_speed_rad_s * (1 + 1e-9))
+    np.testing.assert_allclose(planner.arm.forward(q), plan.samples.xyz_mm, atol=1e-6)
+    assert [p.part_id for p in plan.picks] == ["a"]
+    # with the demo's 165 degree elbow stop the arm cannot change branch at all: said, not attempted blindly
+    data["arm"]["elbow_interior_deg"] = [20, 165]
+    stopped = Planner(parse_cell(data)).plan(parse_parts([{"id": "a", "class": "red", "x_mm": 220, "y_mm": 40}], cell))
+    assert stopped.parts[0].rejection.check == "elbow_interior" and stopped.parts[0].rejection.segment == "swing"
+
+
+def test_a_home_pose_outside_the_elbow_stop_is_a_cell_error():
+    from tests.conftest import cell_data_with_linkage
+
+    data = cell_data_with_linkage("serial")
+    data["motion"]["home_deg"] = {"base": 0, "shoulder": 90, "elbow": 0}          # a straight arm: 180 deg
+    with pytest.raises(CellFileError, match="motion.home_deg: the home pose breaks the arm's own limits"):
+        Planner(parse_cell(data, "cell.yaml"))
