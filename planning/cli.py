@@ -63,6 +63,11 @@ def _guarded(fn):
         except KeyboardInterrupt:
             _echo_err("interrupted")
             raise typer.Exit(130) from None
+        except BrokenPipeError:                     # output piped into `head` and the like: stop quietly
+            import os
+
+            sys.stdout = open(os.devnull, "w")      # noqa: SIM115 - for the interpreter's final flush
+            raise typer.Exit(0) from None
         except (typer.Exit, typer.Abort):
             raise
         except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, never a bare trace
