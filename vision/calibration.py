@@ -34,6 +34,8 @@ __all__ = ["Calibration", "CalibrationError", "MarkerFit", "calibrate", "camera_
 _MOVED_MIN_MM = 1.0
 _LENS_GAIN = 0.8            # keep the division model if it brings the RMS below 80 % of the plain fit
 _LENS_MIN_REACH = 0.55      # ... and used corners reach this fraction of the half-diagonal from the centre
+_CENTRE_MIN_MARKERS = 6     # markers needed to fit the distortion centre as well
+_CENTRE_GAIN = 0.85         # ... kept if it brings the RMS below 85 % of the centred model's
 _DEFAULT_HEIGHT_MM = 750.0
 VERDICTS = ("good", "fair", "poor")
 
@@ -117,33 +119,44 @@ def _check_geometry(fits: list[MarkerFit], photo: str) -> None:
                                "the table would be unreliable; make sure markers on both sides of the work area are seen")
 
 
-def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None):
-    """Least-squares fit of H (and lambda for 'division') from photo pixels to table mm; returns
-    (mapping, residual vectors (N, 2) mm)."""
+def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None, start=None):
+    """Least-squares fit from photo pixels to table mm; returns (mapping, residual vectors (N, 2) mm).
+
+    ``lens_kind``: ``fixed`` (H only, through ``fixed_lens`` or none), ``division`` (H and lambda, centre
+    at the image centre) or ``division_centre`` (H, lambda and the distortion centre; started from
+    ``start``, a division fit).
+    """
     w, h = image_size
     base = fixed_lens if fixed_lens is not None else DivisionLens.for_image(0.0, w, h)
-    ideal0 = base.ideal(uv) if fixed_lens is not None else uv
+    if start is not None:
+        base = start.lens
+    ideal0 = base.ideal(uv) if (fixed_lens is not None or start is not None) else uv
     T_px, T_mm = normalising_transform(ideal0), normalising_transform(xy)
     Hn0 = T_mm @ fit_homography_dlt(ideal0, xy) @ np.linalg.inv(T_px)
     Hn0 = Hn0 / Hn0[2, 2]
-    free_lens = lens_kind == "division"
+    free_lens = lens_kind in ("division", "division_centre")
+    free_centre = lens_kind == "division_centre"
+    centre0 = np.asarray(base.centre_px, float) if free_lens else None
 
-    def unpack(params):
-        Hn = np.append(params[:8], 1.0).reshape(3, 3)
-        lam = params[8] if free_lens else 0.0
-        return Hn, lam
+    def lens_of(params):
+        if not free_lens:
+            return None
+        centre = centre0 + (params[9:11] * base.scale_px if free_centre else 0.0)
+        return DivisionLens(params[8], tuple(centre), base.scale_px)
 
     def residual(params):
-        Hn, lam = unpack(params)
-        ideal = DivisionLens(lam, base.centre_px, base.scale_px).ideal(uv) if free_lens else ideal0
+        Hn = np.append(params[:8], 1.0).reshape(3, 3)
+        ideal = lens_of(params).ideal(uv) if free_lens else ideal0
         pred = apply_homography(np.linalg.inv(T_mm) @ Hn @ T_px, ideal)
         return (pred - xy).ravel()
 
-    x0 = np.append(Hn0.ravel()[:8], [0.0] if free_lens else [])
-    sol = least_squares(residual, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=2000)
-    Hn, lam = unpack(sol.x)
+    x0 = Hn0.ravel()[:8]
+    if free_lens:
+        x0 = np.append(x0, [base.lam if start is not None else 0.0] + ([0.0, 0.0] if free_centre else []))
+    sol = least_squares(residual, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=3000)
+    Hn = np.append(sol.x[:8], 1.0).reshape(3, 3)
     H = np.linalg.inv(T_mm) @ Hn @ T_px
-    lens = DivisionLens(float(lam), base.centre_px, base.scale_px) if free_lens else (fixed_lens or NoLens())
+    lens = lens_of(sol.x) if free_lens else (fixed_lens or NoLens())
     return TableMapping(H / H[2, 2], lens), sol.fun.reshape(-1, 2)
 
 
@@ -267,6 +280,21 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
         else:
             notes.append(f"lens: division model lambda={mapping.lens.lam:.5f} took the RMS from "
                          f"{rms_plain:.3f} to {rms_div:.3f} mm")
+            used = [f for f in fits if f.used]
+            if len(used) >= _CENTRE_MIN_MARKERS:     # enough markers to place the distortion centre too
+                uv_u = np.concatenate([f.corners_px for f in used])
+                xy_u = np.concatenate([f.corners_mm[:, :2] for f in used])
+                try:
+                    moved, res_c = _fit(uv_u, xy_u, "division_centre", image_size, start=mapping)
+                except (FitFailure, ValueError):
+                    moved = None
+                if moved is not None:
+                    rms_c = float(np.sqrt((res_c ** 2).sum(axis=1).mean()))
+                    shift = np.subtract(moved.lens.centre_px, mapping.lens.centre_px)
+                    if rms_c < _CENTRE_GAIN * rms_div and np.hypot(*shift) < 0.1 * mapping.lens.scale_px:
+                        notes.append(f"lens: distortion centre moved by ({shift[0]:.0f}, {shift[1]:.0f}) px from the "
+                                     f"image centre, RMS {rms_div:.3f} -> {rms_c:.3f} mm")
+                        mapping, res = moved, res_c
     # residuals per marker, in mm (table) and px (photo)
     for f in fits:
         if f.corners_mm is None or f.raised:

@@ -54,9 +54,12 @@ class Camera:
     @classmethod
     def create(cls, centre_mm, focal_px: float, width_px: int = 1280, height_px: int = 960,
                tilt_deg: float = 0.0, tilt_azimuth_deg: float = 0.0, roll_deg: float = 0.0,
-               k1: float = 0.0, k2: float = 0.0) -> "Camera":
-        """A camera with the principal point at the image centre and square pixels."""
-        K = np.array([[focal_px, 0.0, (width_px - 1) / 2.0], [0.0, focal_px, (height_px - 1) / 2.0], [0, 0, 1.0]])
+               k1: float = 0.0, k2: float = 0.0, principal_offset_px=(0.0, 0.0)) -> "Camera":
+        """A camera with square pixels and the principal point at the image centre (plus an offset, as
+        real lenses are seldom centred on the sensor)."""
+        du, dv = principal_offset_px
+        K = np.array([[focal_px, 0.0, (width_px - 1) / 2.0 + du], [0.0, focal_px, (height_px - 1) / 2.0 + dv],
+                      [0, 0, 1.0]])
         return cls(K, np.array([k1, k2, 0.0, 0.0, 0.0]), tilt_rotation(tilt_deg, tilt_azimuth_deg, roll_deg),
                    np.asarray(centre_mm, float), int(width_px), int(height_px))
 

@@ -44,6 +44,7 @@ class CameraSpec(_Model):
     roll_deg: Number = 0.0
     k1: Annotated[float, Field(ge=-0.5, le=0.5)] = 0.0
     k2: Annotated[float, Field(ge=-0.5, le=0.5)] = 0.0
+    principal_offset_px: Annotated[list[Annotated[float, Field(ge=-200, le=200)]], Field(min_length=2, max_length=2)] = [0.0, 0.0]
 
 
 class LightingSpec(_Model):
@@ -167,7 +168,7 @@ def make_camera(spec: CameraSpec, cell) -> Camera:
         ay = np.abs(pc[:, 1] / pc[:, 2]).max()
         focal = 0.97 * min((spec.width_px / 2) / ax, (spec.height_px / 2) / ay)
     return Camera.create(centre, focal, spec.width_px, spec.height_px, spec.tilt_deg, spec.tilt_azimuth_deg,
-                         spec.roll_deg, spec.k1, spec.k2)
+                         spec.roll_deg, spec.k1, spec.k2, principal_offset_px=tuple(spec.principal_offset_px))
 
 
 def _inside_polygon(pt, poly) -> bool:

@@ -338,3 +338,16 @@ def test_other_dictionaries_sizes_and_yawed_markers(dictionary, size):
     cal = calibrate(dets, cell, (1280, 960))
     assert cal.verdict == "good" and cal.rms_mm < 0.2
     assert _mapping_error_mm(cal.mapping, cam, cell).max() < 0.3
+
+
+def test_lens_whose_centre_is_off_the_image_centre():
+    """Real lenses are seldom centred on the sensor: with the principal point 30 px right and 20 px up and
+    k1 = -0.15, the distortion centre is fitted too (kept only when it lowers the residual)."""
+    cell = _cell(lens="estimate")
+    spec = CameraSpec(k1=-0.15, k2=0.02, principal_offset_px=[30.0, -20.0])
+    r = render_scene(cell, Scene(camera=spec, sensor=SensorSpec(noise=1.0)))
+    cal = calibrate(detect_markers(r.image_bgr, cell.markers.dictionary), cell, (1280, 960))
+    assert any("distortion centre moved" in n for n in cal.notes)
+    assert _mapping_error_mm(cal.mapping, r.camera, cell).max() < 0.2          # 0.39 mm with a fixed centre
+    cx, cy = cal.mapping.lens.centre_px
+    assert abs(cx - (639.5 + 30)) < 15 and abs(cy - (479.5 - 20)) < 15
