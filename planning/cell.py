@@ -37,9 +37,9 @@ def default_calibration_path(cell) -> Path:
     return Path(cell.source_path).parent / "calibration.yaml" if cell.source_path else Path("calibration.yaml")
 
 
-def load_or_make_calibration(cell, calibration_path: Path | None):
+def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
     """Read the calibration; if there is none at the default place but ``calibration.jpg`` lies beside
-    the cell file, calibrate from it first (the demo cell's first run)."""
+    the cell file, calibrate from it first (the demo cell's first run) and tell ``say`` (a callable)."""
     from vision.calfile import read_calibration, write_calibration
     from vision.calibration import calibrate
     from vision.markers import detect_markers
@@ -53,6 +53,9 @@ def load_or_make_calibration(cell, calibration_path: Path | None):
             cal = calibrate(detect_markers(image, cell.markers.dictionary), cell, (image.shape[1], image.shape[0]),
                             str(photo))
             write_calibration(path, cal, cell, photo)
+            if say is not None:
+                say(f"no calibration yet: calibrated from {photo} ({cal.verdict}, {cal.rms_mm:.3f} mm RMS over "
+                    f"{len(cal.used)} markers), saved as {path}")
         else:
             raise GripsightError(f"{path}: no calibration; make one with: gripsight calibrate PHOTO --cell "
                                  f"{cell.source_path}")

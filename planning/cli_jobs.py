@@ -10,6 +10,11 @@ import typer
 from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
 
 
+def _note(text: str) -> None:
+    """A note on stderr (stdout may be JSON)."""
+    typer.echo(f"note: {text}", err=True)
+
+
 @command()
 def detect(
     photo: Path = typer.Argument(..., help="A photo from the calibrated camera."),
@@ -30,7 +35,7 @@ def detect(
     if sample is not None:
         _sample_colour(photo, cfg, sample)
         return
-    stored = load_or_make_calibration(cfg, calibration)
+    stored = load_or_make_calibration(cfg, calibration, say=_note)
     result = analyse_photo(photo, cfg, stored)
     if result.refused:
         raise GripsightError(result.registration.message)
@@ -135,7 +140,7 @@ def plan(
         from planning.cell import load_or_make_calibration, plan_photo
         from planning.photo_outputs import write_photo_outputs
 
-        stored = load_or_make_calibration(cfg, calibration)
+        stored = load_or_make_calibration(cfg, calibration, say=_note)
         photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
         data = write_photo_outputs(out, photo_plan, cfg, arm, stored)
         if photo_plan.plan is None:
@@ -195,7 +200,7 @@ def run(
     from planning.run import photos_in, run_folder
 
     cfg = load_cell(_find_cell(cell, folder))
-    stored = load_or_make_calibration(cfg, calibration)
+    stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
 
