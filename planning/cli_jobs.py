@@ -114,6 +114,8 @@ def plan(
     order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
     as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
     plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png."),
+    speed_scale: float = typer.Option(1.0, "--speed-scale", min=0.05, max=1.0,
+                                      help="Move at this fraction of the cell's speeds (e.g. 0.25 for a first, careful run)."),
 ):
     """Plan checked pick-and-place moves for the parts in a photo (or a parts file); write the joint sequence."""
     import json
@@ -129,7 +131,7 @@ def plan(
         raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
     cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
     arm = Arm.from_config(cfg.arm)
-    planner = Planner(cfg, arm)
+    planner = Planner(cfg, arm, speed_scale=speed_scale)
     if parts is not None:
         from planning.export import write_plan_outputs
         from planning.targets import load_parts_file

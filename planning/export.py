@@ -75,7 +75,7 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
         "totals": {"parts": len(plan.parts), "planned": len(plan.picks),
                    "rejected": len(plan.parts) - len(plan.picks), "rejected_by_reason": rejected,
                    "cycle_s": round(plan.cycle_s, 4), "samples": int(len(plan.samples.t_s)),
-                   "sample_hz": cell.motion.sample_hz},
+                   "sample_hz": cell.motion.sample_hz, "speed_scale": plan.speed_scale},
         "warnings": list(plan.warnings),
     }
 
@@ -93,6 +93,8 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
         out.write(f"# SAFETY: {line}\n")
     out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
+    if plan.speed_scale != 1.0:
+        out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for i in range(len(s.t_s)):

@@ -70,16 +70,17 @@ def _round_up(duration_s: float, dt_s: float) -> float:
 
 
 def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
-                dt_s: float) -> list[float]:
+                dt_s: float, speed_scale: float = 1.0) -> list[float]:
     """Durations of segments on the sequence clock (whole numbers of sample periods, at least one), with
     one IK call for all: the larger of length x peak s' / speed and the time that keeps every joint under
-    its speed limit (from dq/ds on a dense grid, x 1.01); a dwell lasts ``dwell_s``."""
+    its speed limit (from dq/ds on a dense grid, x 1.01); a dwell lasts ``dwell_s``. ``speed_scale`` < 1
+    slows every move (tool speed and joint speeds) by that factor, for a first careful run."""
     out = [0.0] * len(segments)
     moving = [i for i, seg in enumerate(segments) if seg.path is not None]
     for i, seg in enumerate(segments):
         if seg.joints_rad is not None:        # joint space: the slowest joint at the scaling's peak rate
             q0, q1 = seg.joints_rad
-            need = float(np.max(np.abs(np.asarray(q1) - q0) / arm.max_speed_rad_s)) * peak_rate(scaling)
+            need = float(np.max(np.abs(np.asarray(q1) - q0) / (arm.max_speed_rad_s * speed_scale))) * peak_rate(scaling)
             out[i] = _round_up(max(need * _SPEED_MARGIN, dt_s), dt_s)
         elif seg.path is None:
             out[i] = _round_up(dwell_s, dt_s)
@@ -100,8 +101,8 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
         need = np.where(np.isfinite(ratio).any(axis=(1, 2)), np.nanmax(np.where(np.isfinite(ratio), ratio, -np.inf),
                                                                        axis=(1, 2)), 0.0)
     for k, i in enumerate(moving):
-        t_speed = segments[i].path.length_mm * peak_rate(scaling) / speed_mm_s
-        out[i] = _round_up(max(t_speed, float(need[k]) * _SPEED_MARGIN, dt_s), dt_s)
+        t_speed = segments[i].path.length_mm * peak_rate(scaling) / (speed_mm_s * speed_scale)
+        out[i] = _round_up(max(t_speed, float(need[k]) / speed_scale * _SPEED_MARGIN, dt_s), dt_s)
     return out
 
 

@@ -76,6 +76,7 @@ class Plan:
     segments: list[tuple[SampledSegment, float]]      # (segment, start time on the clock)
     samples: JointSamples
     warnings: list[str] = field(default_factory=list)
+    speed_scale: float = 1.0
 
     @property
     def cycle_s(self) -> float:
@@ -96,9 +97,12 @@ class Planner:
         the pose IK gives for its own tool point (the sequence would jump at the start).
     """
 
-    def __init__(self, cell, arm: Arm | None = None):
+    def __init__(self, cell, arm: Arm | None = None, speed_scale: float = 1.0):
+        if not 0.01 <= speed_scale <= 1.0:
+            raise ValueError(f"speed_scale: expected 0.01-1, got {speed_scale}")
         self.cell = cell
         self.arm = arm or Arm.from_config(cell.arm)
+        self.speed_scale = float(speed_scale)
         m = cell.motion
         self.safe_z = m.safe_z_mm
         self.dt_s = 1.0 / m.sample_hz
@@ -192,7 +196,7 @@ class Planner:
     def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], Rejection | None]:
         """Time, sample and check a pick's segments together (one IK call for each stage)."""
         m = self.cell.motion
-        durations = durations_s(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s)
+        durations = durations_s(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
         sampled = sample_segments(segments, durations, self.arm, self.scaling, self.dt_s)
         rej = first_failure_in(self.ctx, sampled, t0_s)
         return sampled, rej
@@ -280,7 +284,8 @@ class Planner:
             else:
                 warnings.append(f"the move back to the home pose failed a check and was left out: {rej.describe()}")
         ordered = [outcomes[p.id] for p in parts]
-        return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings)
+        return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings,
+                    speed_scale=self.speed_scale)
 
     def _precheck(self, part: PartTarget) -> Rejection | None:
         """Reasons known before any motion: the photo's verdict, no bin, grip fit, grip or above-part

@@ -306,3 +306,20 @@ def test_a_home_pose_outside_the_elbow_stop_is_a_cell_error():
     data["motion"]["home_deg"] = {"base": 0, "shoulder": 90, "elbow": 0}          # a straight arm: 180 deg
     with pytest.raises(CellFileError, match="motion.home_deg: the home pose breaks the arm's own limits"):
         Planner(parse_cell(data, "cell.yaml"))
+
+
+def test_speed_scale_slows_every_move(tmp_path):
+    parts = tmp_path / "parts.yaml"
+    parts.write_text(yaml.safe_dump({"parts": SIX_REACHABLE_TWO_NOT[:3]}))
+    for scale, out in ((1.0, "full"), (0.25, "quarter")):
+        assert main(["plan", "--parts", str(parts), "--cell", str(SAMPLE_CELL), "--out", str(tmp_path / out),
+                     "--speed-scale", str(scale), "--no-plots"]) == 0
+    full = json.loads((tmp_path / "full" / "plan.json").read_text())
+    quarter = json.loads((tmp_path / "quarter" / "plan.json").read_text())
+    for a, b in zip(full["picks"], quarter["picks"]):
+        for sa, sb in zip(a["segments"], b["segments"]):
+            if sa["kind"] not in ("close", "open"):
+                # each duration is rounded up to the 20 ms clock: the full-speed one by up to 0.02 s
+                assert sb["duration_s"] >= 4 * (sa["duration_s"] - 0.02) - 1e-9
+    assert quarter["totals"]["speed_scale"] == 0.25
+    assert "# speed_scale: 0.25" in (tmp_path / "quarter" / "joints.csv").read_text()
