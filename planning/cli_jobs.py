@@ -192,6 +192,8 @@ def run(
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted or stopped run in --out."),
     emptied: list[str] = typer.Option([], "--emptied", help="With --resume: this bin was emptied (repeatable)."),
     order: str = typer.Option("nearest", "--order", help="nearest or detected."),
+    speed_scale: float = typer.Option(1.0, "--speed-scale", min=0.05, max=1.0,
+                                      help="Move at this fraction of the cell's speeds (a first, careful run)."),
 ):
     """The sorting cell: plan photo after photo, the arm carried from one to the next; one run.csv."""
     from rich.console import Console
@@ -223,7 +225,7 @@ def run(
 
     with output_lock(output_dir(out), "run"):
         result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order,
-                            progress=report)
+                            progress=report, speed_scale=speed_scale)
     table = Table(title=f"run of {folder}", title_justify="left")
     for col in ("photos", "picked", "by class", "rejected", "by reason", "cycle s"):
         table.add_column(col)

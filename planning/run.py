@@ -90,7 +90,7 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
 
 
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
-               progress=None) -> RunResult:
+               progress=None, speed_scale: float = 1.0) -> RunResult:
     """Plan every photo of ``folder`` in order, carrying the arm and the tray counts (see the module)."""
     from planning.arm import Arm
     from planning.cell import plan_photo
@@ -103,7 +103,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     if not photos:
         raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
     arm = Arm.from_config(cell.arm)
-    planner = Planner(cell, arm)
+    planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
         state = _load_state(out, folder, cell)
         for name in emptied:
