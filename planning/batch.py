@@ -59,7 +59,7 @@ def process_photo(job: BatchJob) -> dict:
         cell, arm, planner, stored = _context(job.cell_path, job.calibration_path)
         pp = plan_photo(job.photo, cell, stored, planner)
         out = child_folder(job.out_dir, name)
-        write_photo_outputs(out, pp, cell, arm, stored)
+        _, overlay = write_photo_outputs(out, pp, cell, arm, stored)
         reg = pp.analysis.registration
         row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict)
         if pp.plan is None:
@@ -75,7 +75,7 @@ def process_photo(job: BatchJob) -> dict:
                     row["rejected"][o.rejection.check] = row["rejected"].get(o.rejection.check, 0) + 1
             row["cycle_s"] = round(pp.plan.cycle_s, 3)
             row["truth"] = _truth_stats(job.photo, pp, cell)
-        row["thumbnail"] = _thumbnail(out / ("overlay.png" if (out / "overlay.png").exists() else ""), pp, job)
+        row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
     except GripsightError as exc:
         row["error"] = str(exc)
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
@@ -122,13 +122,12 @@ def _truth_stats(photo: str, pp, cell) -> dict | None:
         return None
 
 
-def _thumbnail(overlay: Path, pp, job: BatchJob) -> str:
+def _thumbnail(image, job: BatchJob) -> str:
     """A small JPEG of the overlay (or the photo), base64, for the self-contained report."""
     import base64
 
     import cv2
 
-    image = cv2.imread(str(overlay)) if overlay.is_file() else pp.analysis.image
     h, w = image.shape[:2]
     scale = job.thumbnail_px / max(w, 1)
     small = cv2.resize(image, (job.thumbnail_px, max(1, int(h * scale))), interpolation=cv2.INTER_AREA)

@@ -144,7 +144,7 @@ def plan(
 
         stored = load_or_make_calibration(cfg, calibration, say=_note)
         photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
-        data = write_photo_outputs(out, photo_plan, cfg, arm, stored)
+        data, _ = write_photo_outputs(out, photo_plan, cfg, arm, stored)
         if photo_plan.plan is None:
             raise GripsightError(photo_plan.message)
     if as_json:

@@ -64,6 +64,7 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
             rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
     return {
         "gripsight": "plan",
+        "status": "planned",
         "created": created or utc_now(),
         "cell": cell.cell,
         "cell_sha256": cell.sha256,

@@ -44,14 +44,6 @@ class Segment:
     gripper_closed: bool = False
     joints_rad: tuple | None = None      # (start, end), shape (3,) each, for a SWING
 
-    @property
-    def start_mm(self) -> np.ndarray:
-        return self.hold_mm if self.path is None else self.path.p0
-
-    @property
-    def end_mm(self) -> np.ndarray:
-        return self.hold_mm if self.path is None else self.path.p1
-
 
 @dataclass(frozen=True)
 class SampledSegment:

@@ -75,11 +75,12 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
     return out
 
 
-def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = True) -> dict:
-    """Write everything for one photo under ``out_dir``; returns the plan.json object.
+def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = True):
+    """Write everything for one photo under ``out_dir``; returns (the plan.json object, the overlay image
+    or None).
 
     A refused photo (camera moved with ``on_move: stop``, or no markers) gets a plan.json that says why
-    and no joint sequence.
+    and no joint sequence or overlay.
     """
     import cv2
 
@@ -93,13 +94,12 @@ def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = 
                 "parts": [], "picks": [], "totals": {"parts": 0, "planned": 0, "rejected": 0, "cycle_s": 0.0},
                 "warnings": [photo_plan.message]}
         write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
-        for stale in ("joints.csv", "joints.png", "path.png"):
+        for stale in ("joints.csv", "joints.png", "path.png", "overlay.png"):
             (out / stale).unlink(missing_ok=True)
-        return data
+        return data, None
     data = write_plan_outputs(out, photo_plan.plan, cell, arm, photo=photo, calibration=calibration)
-    data["status"] = "planned"
-    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    image = None
     if overlay:
         image = plan_overlay(photo_plan.analysis, photo_plan.plan, cell, arm)
         write_bytes_atomic(out / "overlay.png", cv2.imencode(".png", image)[1].tobytes())
-    return data
+    return data, image

@@ -133,7 +133,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 if progress is not None:
                     progress(photo, summary)
                 continue
-            data = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
+            data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
             summary = _summary(photo.name, pp, data)
             if pp.plan is not None:
                 for pick in pp.plan.picks:

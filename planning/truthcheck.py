@@ -12,6 +12,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from vision.polygon import points_in_polygon
+
 __all__ = ["TruthComparison", "compare_with_truth", "MATCH_MM"]
 
 MATCH_MM = 10.0
@@ -56,22 +58,12 @@ class TruthComparison:
                 "unknown_expected": self.unknown_expected, "unknown_found": self.unknown_found}
 
 
-def _inside_polygon(points: np.ndarray, polygon) -> np.ndarray:
-    poly = np.asarray(polygon, float)
-    x0, y0 = poly[:, 0], poly[:, 1]
-    x1, y1 = np.roll(x0, -1), np.roll(y0, -1)
-    px, py = points[:, :1], points[:, 1:2]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        cross = ((y0 > py) != (y1 > py)) & (px < x0 + (py - y0) * (x1 - x0) / (y1 - y0))
-    return cross.sum(axis=1) % 2 == 1
-
-
 def _footprint_inside(part, work_area) -> bool:
     r = 0.5 * float(np.hypot(*part["size_mm"]))
     c = np.asarray(part["centre_mm"], float)
     t = np.linspace(0, 2 * np.pi, 16, endpoint=False)
     ring = c + r * np.column_stack([np.cos(t), np.sin(t)])
-    return bool(_inside_polygon(ring, work_area).all())
+    return bool(points_in_polygon(ring, work_area).all())
 
 
 def compare_with_truth(parts, truth: dict, work_area=None) -> TruthComparison:

@@ -77,7 +77,6 @@ class Calibration:
     max_px: float
     verdict: str
     notes: list[str] = field(default_factory=list)
-    lens_rms_without_mm: float | None = None
 
     @property
     def used(self) -> list[MarkerFit]:
@@ -263,7 +262,6 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     else:
         kind, fixed = "division", None
     mapping, res = _fit_with_outliers(fits, kind, image_size, fixed, photo)
-    rms_without = None
     if kind == "division":
         plain_fits = [replace(f) for f in fits]          # the plain fit may set other markers aside
         plain, res_plain = _fit_with_outliers(plain_fits, "fixed", image_size, None, photo)
@@ -271,7 +269,6 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
         rms_div = float(np.sqrt((res ** 2).sum(axis=1).mean()))
         uv_used = np.concatenate([f.corners_px for f in fits if f.used])
         reach = np.linalg.norm(uv_used - mapping.lens.centre_px, axis=1).max() / mapping.lens.scale_px
-        rms_without = rms_plain
         if not (rms_div < _LENS_GAIN * rms_plain and reach >= _LENS_MIN_REACH):
             why = ("it did not lower the residual by 20 %" if rms_div >= _LENS_GAIN * rms_plain
                    else "the markers do not reach far enough toward the image corners")
@@ -323,5 +320,5 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
         notes.append(f"camera centre assumed: nadir under the image centre, height {height:g} mm "
                      f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}")
     return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
-                       rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes, rms_without)
+                       rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes)
 

@@ -18,6 +18,7 @@ import numpy as np
 
 from vision.calibration import Calibration, CalibrationError, calibrate
 from vision.markers import MarkerDetection
+from vision.polygon import points_in_polygon
 
 _STILL_PX = 0.3            # markers closer than this to their calibrated corners have not moved
 
@@ -53,15 +54,12 @@ class DriftReport:
 
 def work_area_grid_mm(cell, step_mm: float = 10.0) -> np.ndarray:
     """Points (N, 2) of a grid with ``step_mm`` spacing inside the work-area polygon."""
-    from matplotlib.path import Path as PolyPath
-
     wa = np.asarray(cell.work_area, float)
     x = np.arange(wa[:, 0].min(), wa[:, 0].max() + 1e-9, step_mm)
     y = np.arange(wa[:, 1].min(), wa[:, 1].max() + 1e-9, step_mm)
     xx, yy = np.meshgrid(x, y)
     pts = np.column_stack([xx.ravel(), yy.ravel()])
-    inside = PolyPath(wa).contains_points(pts, radius=1e-6) | PolyPath(wa[::-1]).contains_points(pts, radius=1e-6)
-    return pts[inside]
+    return pts[points_in_polygon(pts, wa)]
 
 
 def check_drift(stored, detections: list[MarkerDetection], cell, image_size, photo: str = "photo") -> DriftReport:

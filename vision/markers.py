@@ -17,6 +17,7 @@ Corners follow OpenCV's order: top-left, top-right, bottom-right, bottom-left of
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import cv2
@@ -60,6 +61,7 @@ def linearised_gray(image) -> np.ndarray:
     return _LIN_LUT[gray]
 
 
+@functools.lru_cache(maxsize=8)
 def _detector(dictionary_name: str):
     params = cv2.aruco.DetectorParameters()
     params.cornerRefinementMethod = cv2.aruco.CORNER_REFINE_SUBPIX

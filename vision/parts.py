@@ -30,8 +30,9 @@ import numpy as np
 
 from vision.colour import delta_e_2000
 from vision.scene import marker_paper_corners_mm
-from vision.topface import (expected_area_mm2, fit_row_of_tops, fit_top_face, footprint_centre, inside_polygon,
-                            min_rect, outward_normals, polygon_area_centroid)
+from vision.polygon import points_in_polygon
+from vision.topface import (expected_area_mm2, fit_row_of_tops, fit_top_face, footprint_centre, min_rect,
+                            outward_normals, polygon_area_centroid)
 from vision.whitebalance import Illumination, fit_illumination, lab_of_pixels
 
 __all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
@@ -277,22 +278,17 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
             if npx < 12:
                 continue
             sub = (comp[y - by0:y - by0 + h, x - bx0:x - bx0 + w] == i).astype(np.uint8)
-            contours, _ = cv2.findContours(sub, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
-            outline = max(contours, key=len).reshape(-1, 2).astype(float) + [x + u0, y + v0]
-            outline_mm = mapping(outline)
-            area_mapped, m = polygon_area_centroid(outline_mm)
-            area = area_mapped / (k * k)
+            whole = _whole(sub, x + u0, y + v0, mapping, k)
+            m, outline_mm, outline, area, pixel_uv = whole[0]
             if unknown and area < _MIN_UNKNOWN_MM2:
                 continue
             if not unknown and area < _NOISE_RATIO * expected_area_mm2(cls):
                 continue                    # specks of the class's colour, not a part seen in part
-            py, px = np.nonzero(sub)
-            pixel_uv = (float(px.mean() + x + u0), float(py.mean() + y + v0))
             de = float(np.nanmean(np.where(np.isfinite(best[y:y + h, x:x + w][sub > 0]),
                                            best[y:y + h, x:x + w][sub > 0], np.nan))) if not unknown else float("nan")
             cut = bool(edge_band[y:y + h, x:x + w][sub > 0].any())
             mode = seen_as or (cls.seen_as if cls is not None else "auto")
-            pieces = [(m, outline_mm, outline, area, pixel_uv)]
+            pieces = whole
             status, reason = "ok", ""
             if unknown:
                 typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
@@ -310,7 +306,7 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
                 if ratio < _MIN_RATIO:
                     status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
                 elif ratio > _MAX_RATIO:
-                    pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name)
+                    pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
             expected = expected_area_mm2(cls) if cls is not None else area
             normals = outward_normals(outline_mm)
             row_tops = None
@@ -330,7 +326,7 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
                     centre, used = (piece_m, "none") if not parallax else footprint_centre(
                         piece_m, piece_area * k * k, nadir, k, expected, mode)
                 piece_status, piece_reason = status, reason
-                if status == "ok" and not inside_polygon(centre, cell.work_area):
+                if status == "ok" and not points_in_polygon(np.asarray(centre)[None], cell.work_area)[0]:
                     piece_status, piece_reason = "cut_by_edge", "lies across the edge of the work area"
                 found.append(DetectedPart("", name, piece_status, piece_reason, piece_uv, (float(centre[0]), float(centre[1])),
                                           float(height), float(piece_area), yaw, length, width, used, de, piece_px))
@@ -340,11 +336,12 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     return Detection(parts, illumination, notes)
 
 
-def _split(sub, ox, oy, mapping, k, expected, ratio, name):
-    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size."""
+def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
+    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size.
+    ``whole`` is the blob as one piece, returned when it cannot be split."""
     n = int(round(ratio))
     if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
-        return _whole(sub, ox, oy, mapping, k), "too_large", \
+        return whole, "too_large", \
             f"{ratio:.1f}x a {name} part's area and not a whole number of parts"
     py, px = np.nonzero(sub)
     uv = np.column_stack([px + ox, py + oy]).astype(float)
@@ -359,7 +356,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name):
         sel = labels == j
         area = sel.sum() * per_px / (k * k)
         if not _MIN_RATIO < area / expected < 1.4:
-            return _whole(sub, ox, oy, mapping, k), "touching", \
+            return whole, "touching", \
                 f"{n} touching {name} parts that could not be split into parts of the right size"
         pts_mm = xy[sel].astype(float)
         hull = cv2.convexHull(pts_mm.astype(np.float32)).reshape(-1, 2).astype(float)
@@ -369,6 +366,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name):
 
 
 def _whole(sub, ox, oy, mapping, k):
+    """The blob as one piece: (mapped centroid, outline mm, outline px, area / k^2, pixel centroid)."""
     contours, _ = cv2.findContours(sub, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
     outline = max(contours, key=len).reshape(-1, 2).astype(float) + [ox, oy]
     outline_mm = mapping(outline)

@@ -22,6 +22,7 @@ import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
 from vision.camera import Camera
+from vision.polygon import points_in_polygon
 
 __all__ = ["Scene", "ScenePart", "ResolvedPart", "resolve_parts", "make_camera", "random_scene",
            "marker_paper_corners_mm"]
@@ -171,17 +172,6 @@ def make_camera(spec: CameraSpec, cell) -> Camera:
                          spec.roll_deg, spec.k1, spec.k2, principal_offset_px=tuple(spec.principal_offset_px))
 
 
-def _inside_polygon(pt, poly) -> bool:
-    x, y = pt
-    inside = False
-    n = len(poly)
-    for i in range(n):
-        (x0, y0), (x1, y1) = poly[i], poly[(i + 1) % n]
-        if (y0 > y) != (y1 > y) and x < x0 + (y - y0) * (x1 - x0) / (y1 - y0):
-            inside = not inside
-    return inside
-
-
 def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 8), touching: bool = False,
                  unknown_lab: list[float] | None = None, camera: CameraSpec | None = None,
                  lighting: LightingSpec | None = None, sensor: SensorSpec | None = None) -> Scene:
@@ -199,7 +189,7 @@ def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 
         return 0.5 * float(np.hypot(fp[0], fp[-1]))
 
     def free(x, y, r, gap=6.0):
-        margin_ok = all(_inside_polygon((x + dx, y + dy), poly) for dx, dy in ((r, 0), (-r, 0), (0, r), (0, -r)))
+        margin_ok = bool(points_in_polygon(np.array([[x + r, y], [x - r, y], [x, y + r], [x, y - r]]), poly).all())
         return margin_ok and all(np.hypot(x - px, y - py) > r + pr + gap for px, py, pr in placed)
 
     if touching:

@@ -14,18 +14,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
-__all__ = ["inside_polygon", "polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
+__all__ = ["polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
            "fit_top_face", "fit_row_of_tops", "min_rect"]
-
-
-def inside_polygon(point, polygon) -> bool:
-    """Point in polygon (even-odd rule), table mm."""
-    x, y = point
-    poly = np.asarray(polygon, float)
-    x0, y0 = poly[:, 0], poly[:, 1]
-    x1, y1 = np.roll(x0, -1), np.roll(y0, -1)
-    crosses = ((y0 > y) != (y1 > y)) & (x < x0 + (y - y0) * (x1 - x0) / np.where(y1 == y0, 1e-12, y1 - y0))
-    return bool(crosses.sum() % 2)
 
 
 def polygon_area_centroid(xy: np.ndarray):

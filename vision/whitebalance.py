@@ -49,10 +49,6 @@ class Illumination:
         f = self._features(u, v)
         return np.stack([sum(c * x for c, x in zip(self.coeffs[ch], f)) for ch in range(3)], axis=-1)
 
-    @property
-    def gains_at_centre(self) -> np.ndarray:
-        return self.white / self.field(self.width_px / 2, self.height_px / 2)
-
     def as_dict(self) -> dict:
         return {"markers": self.n_markers, "terms": int(self.coeffs.shape[1]),
                 "paper_at_centre_bgr": [round(float(x), 4) for x in self.field(self.width_px / 2, self.height_px / 2)]}
