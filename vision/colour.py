@@ -79,8 +79,9 @@ def delta_e_2000(lab1, lab2, kL: float = 1.0, kC: float = 1.0, kH: float = 1.0):
     implementation notes, supplementary test data, and mathematical observations" (2005), including
     their notes on hue angles when a chroma is zero and on the mean hue across 0/360 degrees.
     """
-    lab1 = np.asarray(lab1, dtype=float)
-    lab2 = np.asarray(lab2, dtype=float)
+    dtype = np.result_type(np.asarray(lab1).dtype, np.asarray(lab2).dtype, np.float32)   # float32 stays
+    lab1 = np.asarray(lab1, dtype=dtype)
+    lab2 = np.asarray(lab2, dtype=dtype)
     L1, a1, b1 = lab1[..., 0], lab1[..., 1], lab1[..., 2]
     L2, a2, b2 = lab2[..., 0], lab2[..., 1], lab2[..., 2]
     c_mean = 0.5 * (np.hypot(a1, b1) + np.hypot(a2, b2))

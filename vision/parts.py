@@ -6,8 +6,8 @@ Per photo (see DESIGN.md sec. 6):
    its edge, seen from the camera); marker papers are masked out. Only that region is
    converted to CIELAB, after white balance from the markers' paper (:mod:`vision.whitebalance`).
 2. Each pixel takes the class whose reference colour is nearest in CIEDE2000, if within that class's
-   tolerance (a fast CIE76 pre-filter at 2.5x the tolerance limits the CIEDE2000 work to candidates).
-   Saturated pixels (chroma > 30) near no class are candidates for an unknown colour.
+   tolerance, coarse to fine (:mod:`vision.pixelclass`); saturated pixels near no class are candidates
+   for an unknown colour.
 3. Per class: morphological opening and closing, connected components.
 4. Each blob's outline goes to table millimetres through the calibration (lens included); its area and
    centroid are taken there. A part of height h seen from the camera centre C appears scaled by
@@ -28,24 +28,28 @@ from dataclasses import dataclass, field
 import cv2
 import numpy as np
 
-from vision.colour import delta_e_2000
-from vision.scene import marker_paper_corners_mm
+from vision.pixelclass import classify_region, coarse_mask
 from vision.polygon import points_in_polygon
-from vision.topface import (expected_area_mm2, fit_row_of_tops, fit_top_face, footprint_centre, min_rect,
-                            outward_normals, polygon_area_centroid)
-from vision.whitebalance import Illumination, fit_illumination, lab_of_pixels
+from vision.scene import marker_paper_corners_mm
+from vision.topface import (
+    TopFaceProblem,
+    expected_area_mm2,
+    fit_row_of_tops,
+    fit_top_faces,
+    footprint_centre,
+    min_rect,
+    outward_normals,
+    polygon_area_centroid,
+)
+from vision.whitebalance import Illumination, fit_illumination
 
 __all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
 
 STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour")
-_UNKNOWN_CHROMA = 30.0
-_UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
-_FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at least this much
 _UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
 _MIN_RATIO, _MAX_RATIO = 0.45, 1.6
 _NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
 _MIN_UNKNOWN_MM2 = 60.0
-_COARSE = 4               # the coarse colour pass runs at 1/4 resolution
 
 
 @dataclass(frozen=True)
@@ -99,20 +103,36 @@ def _search_margin_mm(cell) -> float:
     return 0.75 * max(sizes) + 8.0
 
 
-_MASK_CACHE: dict = {}
+@dataclass(frozen=True)
+class _SearchRegion:
+    """Where parts are looked for: the bounding rectangle (u0, v0, w, h) of the searched area, the area
+    itself (bool, rectangle-sized) and at the coarse resolution, and its one-pixel edge band."""
+
+    rect: tuple[int, int, int, int]
+    valid: np.ndarray
+    valid_small: np.ndarray
+    edge_band: np.ndarray
 
 
-def _valid_mask(shape, mapping, cell, detections) -> np.ndarray:
-    """The searched region (uint8 0/255), cached: in a run every photo of one calibration shares it."""
+_REGION_CACHE: dict = {}
+
+
+def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
+    """The searched region, cached: in a run every photo of one calibration shares it."""
     key = (shape, id(mapping), id(cell), tuple(sorted(d.id for d in detections)))
-    cached = _MASK_CACHE.get(key)
-    if cached is not None and cached[0] is mapping:
-        return cached[1]
+    cached = _REGION_CACHE.get(key)
+    if cached is not None and cached[0] is mapping and cached[1] is cell:
+        return cached[2]
     mask = _build_valid_mask(shape, mapping, cell, detections)
-    if len(_MASK_CACHE) > 8:
-        _MASK_CACHE.clear()
-    _MASK_CACHE[key] = (mapping, mask)
-    return mask
+    u0, v0, w, h = cv2.boundingRect(mask)
+    valid = mask[v0:v0 + h, u0:u0 + w] > 0
+    valid_small = coarse_mask(valid)
+    edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0)
+    region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band)
+    if len(_REGION_CACHE) > 8:
+        _REGION_CACHE.clear()
+    _REGION_CACHE[key] = (mapping, cell, region)
+    return region
 
 
 def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
@@ -138,87 +158,6 @@ def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
     return cv2.bitwise_and(mask, border)
 
 
-def _foreground(lab: np.ndarray, background) -> np.ndarray:
-    """Pixels that differ from the table: CIE76 from its median colour beyond max(12, 4 x the table's own
-    spread). ``background`` is (median Lab, spread) or None (everything counts)."""
-    if background is None:
-        return np.ones(len(lab), bool)
-    median, spread = background
-    return ((lab - median) ** 2).sum(axis=1) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
-
-
-def _unknown_mask(lab: np.ndarray, background) -> np.ndarray:
-    """Saturated pixels that differ from the table's own colour (a colourful table is not a part)."""
-    saturated = np.hypot(lab[:, 1], lab[:, 2]) > _UNKNOWN_CHROMA
-    if background is None:
-        return saturated
-    return saturated & (((lab - background[0]) ** 2).sum(axis=1) > _UNKNOWN_FROM_TABLE ** 2)
-
-
-def _classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np.ndarray, np.ndarray]:
-    """Class index + 1 (0 none, K + 1 unknown saturated) and the CIEDE2000 to it, for pixels (N, 3)."""
-    names = list(classes)
-    best = np.full(len(lab), np.inf, np.float32)
-    label = np.zeros(len(lab), np.uint8)
-    fg = _foreground(lab, background)
-    for k, name in enumerate(names):
-        ref = np.asarray(classes[name].lab, np.float32)
-        tol = classes[name].tolerance
-        d76 = np.sqrt(((lab - ref) ** 2).sum(axis=1))
-        cand = np.flatnonzero((d76 < 2.5 * tol) & fg)
-        if cand.size == 0:
-            continue
-        d00 = delta_e_2000(lab[cand], ref).astype(np.float32)
-        better = (d00 < tol) & (d00 < best[cand])
-        best[cand[better]] = d00[better]
-        label[cand[better]] = k + 1
-    label[(label == 0) & _unknown_mask(lab, background)] = len(names) + 1
-    return label, best
-
-
-def _candidates(lab: np.ndarray, classes: dict, background=None) -> np.ndarray:
-    """Pixels worth a full-resolution look: within 2.5x a class's tolerance in CIE76 (CIEDE2000 is
-    never more than about that), or saturated and unlike the table (a possible unknown colour)."""
-    near = _unknown_mask(lab, background)
-    for cls in classes.values():
-        ref = np.asarray(cls.lab, np.float32)
-        near |= ((lab - ref) ** 2).sum(axis=1) < (2.5 * cls.tolerance) ** 2
-    return near & _foreground(lab, background)
-
-
-def _classify(roi: np.ndarray, valid: np.ndarray, origin, illumination, classes) -> tuple[np.ndarray, np.ndarray]:
-    """Label and CIEDE2000 images of a region. Coarse to fine: classify at a quarter of the resolution,
-    then only the pixels near what the coarse pass found, at full resolution (parts cover a few % of
-    the work area)."""
-    h, w = valid.shape
-    u0, v0 = origin
-    f = _COARSE
-    small = cv2.resize(roi, (w // f, h // f), interpolation=cv2.INTER_AREA)
-    valid_small = cv2.resize(valid.astype(np.uint8), (w // f, h // f), interpolation=cv2.INTER_NEAREST) > 0
-    ys, xs = np.nonzero(valid_small)
-    lab = lab_of_pixels(small[ys, xs], f * xs + (f - 1) / 2 + u0, f * ys + (f - 1) / 2 + v0, illumination)
-    background = None
-    if len(lab):                                    # the table: parts cover a few % of the work area
-        median = np.median(lab, axis=0)
-        dist = np.sqrt(((lab - median) ** 2).sum(axis=1))
-        background = (median, 1.4826 * float(np.median(dist)))
-    coarse = np.zeros(valid_small.shape, np.uint8)
-    coarse[ys, xs] = _candidates(lab, classes, background)
-    coarse = cv2.dilate(coarse, np.ones((3, 3), np.uint8))
-    near = np.zeros((h, w), np.uint8)
-    up = cv2.resize(coarse, ((w // f) * f, (h // f) * f), interpolation=cv2.INTER_NEAREST)
-    near[:up.shape[0], :up.shape[1]] = up
-    near = near > 0
-    near = cv2.dilate(near.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0
-    ys, xs = np.nonzero(near & valid)
-    label = np.zeros((h, w), np.uint8)
-    best = np.full((h, w), np.inf, np.float32)
-    if len(ys):
-        lab = lab_of_pixels(roi[ys, xs], xs + u0, ys + v0, illumination)
-        label[ys, xs], best[ys, xs] = _classify_pixels(lab, classes, background)
-    return label, best
-
-
 # ------------------------------------------------------------------ the detector
 def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detections,
                  parallax: bool = True, seen_as: str | None = None) -> Detection:
@@ -236,38 +175,70 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     seen_as : {'auto', 'top', 'silhouette'}, optional
         Force the model for every class (default: each class's ``seen_as``).
     """
-    h_img, w_img = image_bgr.shape[:2]
     notes: list[str] = []
     illumination = fit_illumination(image_bgr, detections, cell)
     if illumination is None:
         notes.append("no marker paper to white-balance from: colours taken as they are")
-    valid = _valid_mask((h_img, w_img), mapping, cell, detections)
-    u0, v0, bw, bh = cv2.boundingRect(valid)
-    if bw == 0 or bh == 0 or not cell.parts:
-        notes.append("the work area is not in the photo" if bw == 0 else "the cell has no part classes")
+    region = _search_region(image_bgr.shape[:2], mapping, cell, detections)
+    if min(region.valid_small.shape) == 0 or not cell.parts:
+        notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
-    u1, v1 = u0 + bw, v0 + bh
-    roi = np.ascontiguousarray(image_bgr[v0:v1, u0:u1])
-    valid_roi = valid[v0:v1, u0:u1] > 0
-    label, best = _classify(roi, valid_roi, (u0, v0), illumination, cell.parts)
+    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts)
+    blobs = [blob for window in classified.windows
+             for blob in _blobs_in_window(classified, window, region.edge_band, mapping, camera_centre_mm, cell,
+                                          parallax, seen_as)]
+    nadir = np.asarray(camera_centre_mm[:2], float)
+    fits = iter(fit_top_faces([b.problem for b in blobs if b.problem is not None]))
+    found: list[DetectedPart] = []
+    for b in blobs:
+        top_fit = next(fits) if b.problem is not None else None
+        found += _parts_of_blob(b, top_fit, nadir, parallax, cell)
+    found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
+    parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
+             for i, p in enumerate(found)]
+    return Detection(parts, illumination, notes)
+
+
+@dataclass
+class _Blob:
+    """One connected region of one class's colour (or an unknown colour), its verdict and its pieces
+    (several when split from touching parts); ``problem`` is its top-face fit, when one is wanted."""
+
+    name: str
+    cls: object
+    height_mm: float
+    k: float
+    mode: str
+    status: str
+    reason: str
+    pieces: list
+    outline_mm: np.ndarray
+    normals: np.ndarray
+    m: np.ndarray
+    delta_e: float
+    problem: TopFaceProblem | None = None
+
+
+def _blobs_in_window(classified, window, edge_band, mapping, camera_centre_mm, cell, parallax, seen_as):
+    """The blobs of every class in one window of classified pixels."""
+    (wx, wy, ww, wh), member = window
+    rh, rw = classified.label.shape
+    x0, y0 = max(wx - 2, 0), max(wy - 2, 0)               # a margin for the morphology
+    x1, y1 = min(wx + ww + 2, rw), min(wy + wh + 2, rh)
+    own = np.zeros((y1 - y0, x1 - x0), bool)
+    own[wy - y0:wy - y0 + wh, wx - x0:wx - x0 + ww] = member[: min(wh, y1 - wy), : min(ww, x1 - wx)]
+    labels = np.where(own, classified.label[y0:y1, x0:x1], 0)
+    u0, v0 = classified.origin
     names = list(cell.parts)
-    edge_band = valid_roi & ~(cv2.erode(valid_roi.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0)
     nadir = np.asarray(camera_centre_mm[:2], float)
     cz = float(camera_centre_mm[2])
     kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
     tallest = max(c.height_mm for c in cell.parts.values())
-    found: list[DetectedPart] = []
-    for k_label in range(1, len(names) + 2):
-        full = (label == k_label).astype(np.uint8)
-        bx, by, bw2, bh2 = cv2.boundingRect(full)
-        if bw2 == 0:
-            continue
-        bx0, by0 = max(bx - 2, 0), max(by - 2, 0)
-        mask = full[by0:by + bh2 + 2, bx0:bx + bw2 + 2]
-        mask = cv2.morphologyEx(mask, cv2.MORPH_OPEN, kernel)
+    typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+    for k_label in np.flatnonzero(np.bincount(labels.ravel(), minlength=len(names) + 2)[1:]) + 1:
+        mask = cv2.morphologyEx((labels == k_label).astype(np.uint8), cv2.MORPH_OPEN, kernel)
         mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, kernel)
         n, comp, stats, _ = cv2.connectedComponentsWithStats(mask, connectivity=8)
-        stats = stats + np.array([bx0, by0, 0, 0, 0])
         unknown = k_label == len(names) + 1
         name = "unknown" if unknown else names[k_label - 1]
         cls = None if unknown else cell.parts[name]
@@ -277,21 +248,20 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
             x, y, w, h, npx = stats[i]
             if npx < 12:
                 continue
-            sub = (comp[y - by0:y - by0 + h, x - bx0:x - bx0 + w] == i).astype(np.uint8)
+            sub = (comp[y:y + h, x:x + w] == i).astype(np.uint8)
+            x, y = x + x0, y + y0                             # rectangle px
             whole = _whole(sub, x + u0, y + v0, mapping, k)
-            m, outline_mm, outline, area, pixel_uv = whole[0]
+            m, outline_mm, _, area, _ = whole[0]
             if unknown and area < _MIN_UNKNOWN_MM2:
                 continue
             if not unknown and area < _NOISE_RATIO * expected_area_mm2(cls):
                 continue                    # specks of the class's colour, not a part seen in part
-            de = float(np.nanmean(np.where(np.isfinite(best[y:y + h, x:x + w][sub > 0]),
-                                           best[y:y + h, x:x + w][sub > 0], np.nan))) if not unknown else float("nan")
-            cut = bool(edge_band[y:y + h, x:x + w][sub > 0].any())
+            inside = sub > 0
+            de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
+            cut = bool(edge_band[y:y + h, x:x + w][inside].any())
             mode = seen_as or (cls.seen_as if cls is not None else "auto")
-            pieces = whole
-            status, reason = "ok", ""
+            pieces, status, reason = whole, "ok", ""
             if unknown:
-                typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
                 if cut:
                     status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
                 elif area > _UNKNOWN_MAX_RATIO * typical:
@@ -307,33 +277,37 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
                     status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
                 elif ratio > _MAX_RATIO:
                     pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
-            expected = expected_area_mm2(cls) if cls is not None else area
-            normals = outward_normals(outline_mm)
-            row_tops = None
-            if parallax and mode == "auto" and cls is not None and len(pieces) > 1 and cls.shape == "box":
-                row_tops = fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces)
-            for j, (piece_m, piece_mm, piece_px, piece_area, piece_uv) in enumerate(pieces):
-                length, width, yaw = min_rect(piece_mm, k)
-                top = None if row_tops is None else row_tops[j]
-                if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
-                    top = fit_top_face(outline_mm, normals, piece_m, nadir, k, cls, yaw)
-                if top is not None:
-                    centre, used = nadir + (top - nadir) / k, "top_outline"
-                    by_area, model = footprint_centre(piece_m, piece_area * k * k, nadir, k, expected, "auto")
-                    if model == "silhouette":       # the whole visible part is in the blob: two estimates
-                        centre, used = 0.5 * (centre + by_area), "top_outline+silhouette"
-                else:
-                    centre, used = (piece_m, "none") if not parallax else footprint_centre(
-                        piece_m, piece_area * k * k, nadir, k, expected, mode)
-                piece_status, piece_reason = status, reason
-                if status == "ok" and not points_in_polygon(np.asarray(centre)[None], cell.work_area)[0]:
-                    piece_status, piece_reason = "cut_by_edge", "lies across the edge of the work area"
-                found.append(DetectedPart("", name, piece_status, piece_reason, piece_uv, (float(centre[0]), float(centre[1])),
-                                          float(height), float(piece_area), yaw, length, width, used, de, piece_px))
-    found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
-    parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
-             for i, p in enumerate(found)]
-    return Detection(parts, illumination, notes)
+            blob = _Blob(name, cls, float(height), k, mode, status, reason, pieces, outline_mm,
+                         outward_normals(outline_mm), m, de)
+            if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
+                yaw = min_rect(outline_mm, k)[2]
+                blob.problem = TopFaceProblem.of_class(outline_mm, blob.normals, m, nadir, k, cls, yaw)
+            yield blob
+
+
+def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool, cell) -> list[DetectedPart]:
+    """The blob's parts with their footprint centres (parallax corrected) and statuses."""
+    expected = expected_area_mm2(b.cls) if b.cls is not None else b.pieces[0][3]
+    tops = [None if top_fit is None else top_fit[0]]
+    if parallax and b.mode == "auto" and b.cls is not None and len(b.pieces) > 1 and b.cls.shape == "box":
+        tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
+    parts = []
+    for (piece_m, piece_mm, piece_px, piece_area, piece_uv), top in zip(b.pieces, tops * (len(b.pieces) // len(tops))):
+        length, width, yaw = min_rect(piece_mm, b.k)
+        if top is not None:
+            centre, used = nadir + (top - nadir) / b.k, "top_outline"
+            by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")
+            if model == "silhouette":       # the whole visible part is in the blob: two estimates
+                centre, used = 0.5 * (centre + by_area), "top_outline+silhouette"
+        else:
+            centre, used = (piece_m, "none") if not parallax else footprint_centre(
+                piece_m, piece_area * b.k * b.k, nadir, b.k, expected, b.mode)
+        status, reason = b.status, b.reason
+        if status == "ok" and not points_in_polygon(np.asarray(centre)[None], cell.work_area)[0]:
+            status, reason = "cut_by_edge", "lies across the edge of the work area"
+        parts.append(DetectedPart("", b.name, status, reason, piece_uv, (float(centre[0]), float(centre[1])),
+                                  b.height_mm, float(piece_area), yaw, length, width, used, b.delta_e, piece_px))
+    return parts
 
 
 def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):

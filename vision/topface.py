@@ -11,11 +11,15 @@ Where no fit holds, the two centroid formulas of DESIGN.md sec. 6 are chosen by 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import cv2
 import numpy as np
 
+from vision.robust import masked_median, robust_lm, soft_l1
+
 __all__ = ["polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "fit_top_face", "fit_row_of_tops", "min_rect"]
+           "TopFaceProblem", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
 
 
 def polygon_area_centroid(xy: np.ndarray):
@@ -64,112 +68,123 @@ def outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
     return normal if ccw else -normal
 
 
-def _robust_gauss_newton(residual, x0, iterations: int = 12, scale: float = 0.15):
-    """Minimise sum rho(r_i), rho soft L1 with scale ``scale`` (mm), by Levenberg-Marquardt on
-    iteratively reweighted least squares. ``residual`` takes parameter sets (P, n) and returns (P, N), so
-    the forward-difference Jacobian is one call. Returns (x, residuals)."""
-    def cost(r):
-        return np.sum(np.sqrt(1.0 + (r / scale) ** 2) - 1.0, axis=-1)
-
-    x = np.asarray(x0, float)
-    n = len(x)
-    eps = 1e-6 * np.maximum(1.0, np.abs(x))
-    r = residual(x[None])[0]
-    c = float(cost(r))
-    damping = 1e-3
-    for _ in range(iterations):
-        rr = residual(np.vstack([x, x + np.diag(eps)]))
-        J = ((rr[1:] - rr[0]) / eps[:, None]).T                     # (N, n)
-        w = 1.0 / np.sqrt(1.0 + (r / scale) ** 2)                    # IRLS weights of soft L1
-        A = J.T @ (J * w[:, None])
-        g = J.T @ (w * r)
-        diag = np.diag(np.diag(A) + 1e-12)
-        # try several dampings at once; keep the least damped step that lowers the cost
-        dampings = damping * 10.0 ** np.arange(4)
-        try:
-            steps = np.linalg.solve(A[None] + dampings[:, None, None] * diag[None], np.broadcast_to(g, (4, n))[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            break
-        trials = x - steps
-        r_trials = residual(trials)
-        costs = cost(r_trials)
-        ok = np.flatnonzero(costs < c)
-        if not ok.size:
-            break
-        j = int(ok[0])
-        step = steps[j]
-        x, r, c = trials[j], r_trials[j], float(costs[j])
-        damping = max(dampings[j] / 10.0, 1e-7)
-        if np.abs(step).max() < 1e-3:           # mm and rad: far below what matters here
-            break
-    return x, r
+_MAX_POINTS = 60            # outline points per fit (evenly thinned)
+_SOFT_L1_MM = 0.15          # scale of the robust loss
 
 
-def fit_top_face(outline_mm: np.ndarray, normals: np.ndarray, centre, nadir, k, cls, yaw_guess_deg: float,
-                  with_axis: bool = False):
-    """Fit the class's top face (circle, or rectangle of the class's proportions; centre, yaw, size
-    free) to the outer half of a blob's outline: the half away from the nadir, which is always the top
-    face's own edge whichever side faces the segmentation kept (outline points facing away from the
-    nadir, beyond the centre: the sides' own edges face the nadir). Two passes: the second keeps only the
-    outline beyond the first fit's centre. A robust loss (soft L1, 0.15 mm) discounts the stretches of
-    outline that run from the top face down the visible sides. Returns the top face's centre in
-    table-mapped mm, or None if the outline does not look like the class's shape. With
-    ``with_axis``, returns (centre, unit vector of the footprint's first axis, fitted scale)."""
-    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
-    centre = np.asarray(centre, float)
-    radial = centre - nadir
-    e_r = radial / np.linalg.norm(radial) if np.linalg.norm(radial) > 1e-6 else None
-    round_part = cls.shape == "cylinder"
-    half = np.array([fp[0], fp[1]]) / 2.0
-    facing_out = np.ones(len(outline_mm), bool) if e_r is None else normals @ e_r > -0.1
-    params, res = None, None
-    for _ in range(2):
-        pts = outline_mm if e_r is None else outline_mm[((outline_mm - centre) @ e_r >= 0.0) & facing_out]
+@dataclass(frozen=True)
+class TopFaceProblem:
+    """One blob's top-face fit: its outline and outward normals (table-mapped mm), a first guess of the
+    top face's centre, the nadir, the scale k, the footprint's shape and half sizes (mm), a yaw guess."""
+
+    outline_mm: np.ndarray
+    normals: np.ndarray
+    centre: np.ndarray
+    nadir: np.ndarray
+    k: float
+    round: bool
+    half_mm: tuple[float, float]
+    yaw_guess_deg: float = 0.0
+
+    @classmethod
+    def of_class(cls, outline_mm, normals, centre, nadir, k, part_class, yaw_guess_deg=0.0):
+        fp = list(part_class.footprint_mm) * (2 if len(part_class.footprint_mm) == 1 else 1)
+        return cls(outline_mm, normals, np.asarray(centre, float), np.asarray(nadir, float), float(k),
+                   part_class.shape == "cylinder", (fp[0] / 2.0, fp[1] / 2.0), float(yaw_guess_deg))
+
+
+def _outer_points(problem: TopFaceProblem, centre) -> np.ndarray:
+    """The outline beyond ``centre`` away from the nadir, facing away from it, thinned to 60 points."""
+    outline = problem.outline_mm
+    radial = problem.centre - problem.nadir
+    norm = float(np.hypot(*radial))
+    if norm > 1e-6:
+        e_r = radial / norm
+        outline = outline[((outline - centre) @ e_r >= 0.0) & (problem.normals @ e_r > -0.1)]
+    if len(outline) > _MAX_POINTS:
+        outline = outline[:: int(np.ceil(len(outline) / _MAX_POINTS))]
+    return outline
+
+
+def _shape_residuals(point_sets, round_, half):
+    """Residuals of R fits at once: signed distance (mm) of each problem's points to its circle or
+    rectangle with parameters (centre x, y, yaw rad, scale); padded points give 0."""
+    n_max = max(len(p) for p in point_sets)
+    pts = np.zeros((len(point_sets), n_max, 2))
+    mask = np.zeros((len(point_sets), n_max))
+    for i, p in enumerate(point_sets):
+        pts[i, :len(p)], mask[i, :len(p)] = p, 1.0
+    px, py, mask = pts[None, ..., 0].transpose(1, 0, 2), pts[None, ..., 1].transpose(1, 0, 2), mask[:, None, :]
+    hx, hy = half[:, 0, None, None], half[:, 1, None, None]
+    round_ = round_[:, None, None]
+
+    def residual(p):
+        dx, dy = px - p[..., 0:1], py - p[..., 1:2]
+        c, sn = np.cos(p[..., 2:3]), np.sin(p[..., 2:3])
+        qx = np.abs(dx * c + dy * sn) - p[..., 3:4] * hx
+        qy = np.abs(dy * c - dx * sn) - p[..., 3:4] * hy
+        box = np.where((qx > 0) | (qy > 0), np.hypot(np.maximum(qx, 0.0), np.maximum(qy, 0.0)), np.maximum(qx, qy))
+        return np.where(round_, np.hypot(dx, dy) - p[..., 3:4] * hx, box) * mask
+
+    return residual, mask[:, 0, :]
+
+
+def fit_top_faces(problems: list[TopFaceProblem]) -> list:
+    """Fit each problem's top face (circle, or rectangle of its footprint's proportions; centre, yaw,
+    size free) to the outer half of its blob's outline: the half away from the nadir, which is always
+    the top face's own edge whichever side faces the segmentation kept (outline points facing away
+    from the nadir, beyond the centre: the sides' own edges face the nadir). Two passes: the second
+    keeps only the outline beyond the first fit's centre; a rectangle starts from its yaw guess and
+    45 degrees on, the better kept. A robust loss (soft L1, 0.15 mm) discounts the stretches of outline
+    that run from the top face down the visible sides. All problems are fitted together.
+
+    Returns, per problem, None if the outline does not look like the shape (fewer than 12 points, a
+    scale off k by more than 15 %, or a median residual over 0.4 mm), else (top face centre in
+    table-mapped mm, unit vector of the footprint's first axis, fitted scale)."""
+    results: list = [None] * len(problems)
+    # pass 1: every start of every problem with enough outline
+    rows, starts, sets = [], [], []
+    for i, p in enumerate(problems):
+        pts = _outer_points(p, p.centre)
         if len(pts) < 12:
-            return None
-        if len(pts) > 60:
-            pts = pts[:: int(np.ceil(len(pts) / 60))]
-        px, py = pts[:, 0][None, :], pts[:, 1][None, :]
-        if round_part:
-            def circle(p, px=px, py=py):
-                return np.hypot(px - p[:, :1], py - p[:, 1:2]) - p[:, 2:3]
-            params, res = _robust_gauss_newton(circle, [centre[0], centre[1], 0.5 * k * fp[0]])
-            scale = 2 * params[2] / fp[0]
-        else:
-            def rectangle(p, px=px, py=py):
-                c, sn = np.cos(p[:, 2:3]), np.sin(p[:, 2:3])
-                dx, dy = px - p[:, :1], py - p[:, 1:2]
-                qx = np.abs(dx * c + dy * sn) - p[:, 3:4] * half[0]
-                qy = np.abs(-dx * sn + dy * c) - p[:, 3:4] * half[1]
-                outside = np.hypot(np.maximum(qx, 0.0), np.maximum(qy, 0.0))
-                return np.where((qx > 0) | (qy > 0), outside, np.maximum(qx, qy))
-            guesses = [yaw_guess_deg, yaw_guess_deg + 45.0] if params is None else [np.degrees(params[2])]
-            best = None
-            for yaw in guesses:
-                trial = _robust_gauss_newton(rectangle, [centre[0], centre[1], np.radians(yaw), k])
-                cost = np.sum(np.sqrt(1.0 + (trial[1] / 0.15) ** 2) - 1.0)
-                if best is None or cost < best[0]:
-                    best = (cost, *trial)
-                if np.median(np.abs(trial[1])) < 0.1:     # a clean fit: the other start is not needed
-                    break
-            _, params, res = best
-            scale = params[3]
-        centre = params[:2]
-    size_ratio = scale / k
-    if not (0.85 < size_ratio < 1.15) or float(np.median(np.abs(res))) > 0.4:
-        return None
-    if with_axis:
-        yaw = params[2] if not round_part else 0.0
-        return np.array(params[:2]), np.array([np.cos(yaw), np.sin(yaw)]), float(scale)
-    return np.array(params[:2])
+            continue
+        for yaw in ([0.0] if p.round else [p.yaw_guess_deg, p.yaw_guess_deg + 45.0]):
+            rows.append(i)
+            starts.append([p.centre[0], p.centre[1], np.radians(yaw), p.k])
+            sets.append(pts)
+    if not rows:
+        return results
+    x, r, _ = _fit(sets, [problems[i] for i in rows], np.array(starts))
+    cost = soft_l1(r, _SOFT_L1_MM)
+    best: dict[int, int] = {}
+    for j, i in enumerate(rows):
+        if i not in best or cost[j] < cost[best[i]]:
+            best[i] = j
+    # pass 2: the outline beyond the first fit's centre
+    keep = [(i, np.array([*x[j, :3], problems[i].k])) for i, j in best.items()]   # the scale starts at k again
+    sets2 = [_outer_points(problems[i], xi[:2]) for i, xi in keep]
+    keep = [(i, xi, s) for (i, xi), s in zip(keep, sets2) if len(s) >= 12]
+    if not keep:
+        return results
+    x2, r2, mask = _fit([s for _, _, s in keep], [problems[i] for i, _, _ in keep], np.array([xi for _, xi, _ in keep]))
+    median = masked_median(np.abs(r2), mask > 0)
+    for (i, _, _), params, med in zip(keep, x2, median):
+        if 0.85 < params[3] / problems[i].k < 1.15 and med <= 0.4:
+            yaw = 0.0 if problems[i].round else params[2]
+            results[i] = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), float(params[3]))
+    return results
 
 
-class _Footprint:
-    """A stand-in class with another footprint (for fitting a row of touching boxes as one box)."""
+def _fit(point_sets, problems, starts):
+    residual, mask = _shape_residuals(point_sets, np.array([p.round for p in problems]),
+                                      np.array([p.half_mm for p in problems], float))
+    return (*robust_lm(residual, starts, _SOFT_L1_MM), mask)
 
-    def __init__(self, length_mm: float, width_mm: float):
-        self.footprint_mm = [length_mm, width_mm]
-        self.shape = "box"
+
+def fit_top_face(outline_mm, normals, centre, nadir, k, cls, yaw_guess_deg: float = 0.0):
+    """One blob's top-face centre (table-mapped mm), or None: :func:`fit_top_faces` for one problem."""
+    fit = fit_top_faces([TopFaceProblem.of_class(outline_mm, normals, centre, nadir, k, cls, yaw_guess_deg)])[0]
+    return None if fit is None else fit[0]
 
 
 def fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces):
@@ -179,14 +194,16 @@ def fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces):
     n = len(pieces)
     fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
     _, _, yaw_guess = min_rect(outline_mm, k)
+    rows = ((fp[0], fp[1]), (fp[1], fp[0]))
+    fits = fit_top_faces([TopFaceProblem(outline_mm, normals, np.asarray(m, float), np.asarray(nadir, float), float(k),
+                                         False, (n * along / 2.0, across / 2.0), yaw_guess) for along, across in rows])
+    piece_centres = np.array([p[0] for p in pieces])
     best = None
-    for along, across in ((fp[0], fp[1]), (fp[1], fp[0])):
-        fit = fit_top_face(outline_mm, normals, m, nadir, k, _Footprint(n * along, across), yaw_guess, with_axis=True)
+    for (along, _), fit in zip(rows, fits):
         if fit is None:
             continue
         centre, axis, scale = fit
         tops = centre + np.outer((np.arange(n) - (n - 1) / 2) * along * scale, axis)
-        piece_centres = np.array([p[0] for p in pieces])
         cost = np.linalg.norm(tops[:, None, :] - piece_centres[None], axis=2)
         order = np.argmin(cost, axis=0)                          # the top nearest each k-means piece
         if len(set(order.tolist())) != n or cost[order, np.arange(n)].max() > 0.5 * along * scale:

@@ -18,6 +18,7 @@ from vision.colour import delta_e_2000, lab_from_srgb
 from vision.photoset import UNKNOWN_LAB, read_truth
 from vision.render import encode_photo, render_scene
 from vision.scene import CameraSpec, LightingSpec, SensorSpec, random_scene
+from vision.whitebalance import lab_of_pixels
 
 SAMPLES = ROOT / "sample_images"
 
@@ -52,6 +53,13 @@ def test_ciede2000_and_cielab_agree_with_colour_science():
     np.testing.assert_allclose(delta_e_2000(a, b), colour.delta_E(a, b, method="CIE 2000"), atol=1e-9)
     rgb = rng.uniform(0, 1, (2000, 3))
     np.testing.assert_allclose(lab_from_srgb(rgb), colour.XYZ_to_Lab(colour.sRGB_to_XYZ(rgb)), atol=0.05)
+    # the detector's fast paths: CIEDE2000 in float32, CIELAB through OpenCV's linear-BGR conversion
+    np.testing.assert_allclose(delta_e_2000(a.astype(np.float32), b.astype(np.float32)),
+                               colour.delta_E(a, b, method="CIE 2000"), atol=2e-3)
+    codes = rng.integers(0, 256, (2000, 3), dtype=np.uint8)
+    fast = lab_of_pixels(codes[:, ::-1].copy(), np.zeros(2000), np.zeros(2000), None)
+    np.testing.assert_allclose(fast, colour.XYZ_to_Lab(colour.sRGB_to_XYZ(codes / 255.0)), atol=0.05)
+    np.testing.assert_allclose(fast, lab_from_srgb(codes / 255.0), atol=0.02)
 
 
 def _sample_scores(folder, **kwargs) -> Score:

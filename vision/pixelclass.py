@@ -1,0 +1,149 @@
+"""Which part class each pixel's colour belongs to, coarse to fine (DESIGN.md sec. 6, step 2).
+
+Each pixel takes the class whose reference colour is nearest in CIEDE2000, if within that class's
+tolerance. Saturated pixels (chroma > 30) near no class and unlike the table are an unknown colour.
+Every colour is white-balanced first (:mod:`vision.whitebalance`).
+
+Parts cover a few per cent of the work area, so the search runs at two resolutions:
+
+1. At a quarter of the resolution (each pixel the mean of the middle 2 x 2 of a 4 x 4 block), every pixel of the searched
+   region is converted to CIELAB. The table's own colour is its median (parts are few), its spread the
+   scaled median distance from it. Candidates are pixels that differ from the table and lie within
+   2.5x a class's tolerance in CIE76 (CIEDE2000 is never more than about that), or are saturated and
+   unlike the table.
+2. The candidates, grown by one coarse pixel, are grouped into connected regions; only their pixels are
+   classified at full resolution, in CIEDE2000. Each region is a window the blobs are then found in.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+
+from vision.colour import delta_e_2000
+from vision.whitebalance import lab_image, lab_of_pixels
+
+__all__ = ["ClassifiedRegion", "classify_region", "classify_pixels", "coarse_mask"]
+
+_UNKNOWN_CHROMA = 30.0
+_UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
+_FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at least this much
+_COARSE = 4                   # the coarse pass runs at 1/4 resolution
+_NEAR = 2.5                   # CIE76 candidates: within this many times a class's tolerance
+
+
+def _distance2(lab: np.ndarray, ref) -> np.ndarray:
+    """Squared CIE76 distance of colours (..., 3) to one colour (channel by channel: a reduction over
+    an axis of three is slow)."""
+    return (lab[..., 0] - ref[0]) ** 2 + (lab[..., 1] - ref[1]) ** 2 + (lab[..., 2] - ref[2]) ** 2
+
+
+def _foreground(lab: np.ndarray, background) -> np.ndarray:
+    """Pixels that differ from the table: CIE76 from its median colour beyond max(12, 4 x the table's own
+    spread). ``background`` is (median Lab, spread) or None (everything counts)."""
+    if background is None:
+        return np.ones(lab.shape[:-1], bool)
+    median, spread = background
+    return _distance2(lab, median) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
+
+
+def _unknown_mask(lab: np.ndarray, background) -> np.ndarray:
+    """Saturated pixels that differ from the table's own colour (a colourful table is not a part)."""
+    saturated = lab[..., 1] ** 2 + lab[..., 2] ** 2 > _UNKNOWN_CHROMA ** 2
+    if background is None:
+        return saturated
+    return saturated & (_distance2(lab, background[0]) > _UNKNOWN_FROM_TABLE ** 2)
+
+
+def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np.ndarray, np.ndarray]:
+    """Class index + 1 (0 none, K + 1 unknown saturated) and the CIEDE2000 to it, for pixels (N, 3).
+    Every (pixel, class) pair within the CIE76 pre-filter goes through one CIEDE2000 call."""
+    refs = np.array([c.lab for c in classes.values()], np.float32)
+    tolerances = np.array([c.tolerance for c in classes.values()], np.float32)
+    fg = _foreground(lab, background)
+    pairs = [np.flatnonzero((_distance2(lab, ref) < (_NEAR * tol) ** 2) & fg) for ref, tol in zip(refs, tolerances)]
+    pixel = np.concatenate(pairs)
+    which = np.repeat(np.arange(len(refs)), [len(p) for p in pairs])
+    d00 = delta_e_2000(lab[pixel], refs[which]).astype(np.float32)
+    ok = d00 < tolerances[which]
+    pixel, which, d00 = pixel[ok], which[ok], d00[ok]
+    best = np.full(len(lab), np.inf, np.float32)
+    np.minimum.at(best, pixel, d00)
+    nearest = d00 == best[pixel]                          # per pixel, the nearest class
+    label = np.zeros(len(lab), np.uint8)
+    label[pixel[nearest]] = which[nearest] + 1
+    label[(label == 0) & _unknown_mask(lab, background)] = len(classes) + 1
+    return label, best
+
+
+def _candidates(lab: np.ndarray, classes: dict, background) -> np.ndarray:
+    """Pixels worth a full-resolution look (any shape (..., 3))."""
+    near = _unknown_mask(lab, background)
+    for cls in classes.values():
+        near |= _distance2(lab, cls.lab) < (_NEAR * cls.tolerance) ** 2
+    return near & _foreground(lab, background)
+
+
+@dataclass(frozen=True)
+class ClassifiedRegion:
+    """The classified pixels of a searched rectangle at ``origin`` (photo px): ``label`` (class index + 1,
+    0 none, K + 1 unknown) and ``delta_e`` (CIEDE2000 to the class; meaningful where labelled), and the
+    windows (x, y, w, h; rectangle px) that hold every labelled pixel, one per connected group of
+    candidates, with the group's own pixels (``member``, same size as the window)."""
+
+    origin: tuple[int, int]
+    label: np.ndarray
+    delta_e: np.ndarray
+    windows: list[tuple[tuple[int, int, int, int], np.ndarray]]
+
+
+def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small: np.ndarray, illumination,
+                    classes: dict) -> ClassifiedRegion:
+    """Classify the pixels of ``rect`` = (u0, v0, w, h) inside the ``valid`` mask (bool, rect-sized);
+    ``valid_small`` is that mask at the coarse resolution (w // 4, h // 4)."""
+    u0, v0, w, h = rect
+    f = _COARSE
+    hs, ws = valid_small.shape
+    block = image_bgr[v0:v0 + hs * f, u0:u0 + ws * f]
+    small = cv2.resize(block, (ws, hs), interpolation=cv2.INTER_LINEAR)   # the mean of each block's centre 2 x 2
+    lab_small = lab_image(small, illumination, (u0 + (f - 1) / 2, v0 + (f - 1) / 2), step=f)
+    table = lab_small[::2, ::2][valid_small[::2, ::2]]          # the table: parts cover a few % of it
+    background = None
+    if len(table):
+        median = np.median(table, axis=0)
+        background = (median, 1.4826 * float(np.sqrt(np.median(_distance2(table, median)))))
+    near = (_candidates(lab_small, classes, background) & valid_small).astype(np.uint8)
+    near = cv2.dilate(near, np.ones((3, 3), np.uint8))
+    n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)
+    label = np.zeros((h, w), np.uint8)
+    delta_e = np.zeros((h, w), np.float32)
+    if n <= 1:
+        return ClassifiedRegion((u0, v0), label, delta_e, [])
+    # every full-resolution pixel of the candidate blocks, inside the searched area
+    ys, xs = np.nonzero(near)
+    dy, dx = np.divmod(np.arange(f * f), f)
+    ys = (ys[:, None] * f + dy).ravel()
+    xs = (xs[:, None] * f + dx).ravel()
+    keep = valid[ys, xs]
+    ys, xs = ys[keep], xs[keep]
+    lab = lab_of_pixels(block[ys, xs], xs + u0, ys + v0, illumination)
+    label[ys, xs], delta_e[ys, xs] = classify_pixels(lab, classes, background)
+    windows = []
+    for i in range(1, n):
+        x, y, bw, bh, _ = stats[i]
+        member = groups[y:y + bh, x:x + bw] == i
+        member = np.repeat(np.repeat(member, f, axis=0), f, axis=1)
+        windows.append(((x * f, y * f, bw * f, bh * f), member))
+    return ClassifiedRegion((u0, v0), label, delta_e, windows)
+
+
+def coarse_mask(valid: np.ndarray) -> np.ndarray:
+    """A rectangle-sized bool mask at the coarse resolution (w // 4, h // 4), nearest pixel."""
+    h, w = valid.shape
+    f = _COARSE
+    if h < f or w < f:
+        return np.zeros((0, 0), bool)
+    return cv2.resize(valid[: h // f * f, : w // f * f].astype(np.uint8), (w // f, h // f),
+                      interpolation=cv2.INTER_NEAREST) > 0
