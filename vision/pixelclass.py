@@ -6,13 +6,15 @@ Every colour is white-balanced first (:mod:`vision.whitebalance`).
 
 Parts cover a few per cent of the work area, so the search runs at two resolutions:
 
-1. At a quarter of the resolution (each pixel the mean of the middle 2 x 2 of a 4 x 4 block), every pixel of the searched
-   region is converted to CIELAB. The table's own colour is its median (parts are few), its spread the
-   scaled median distance from it. Candidates are pixels that differ from the table and lie within
-   2.5x a class's tolerance in CIE76 (CIEDE2000 is never more than about that), or are saturated and
-   unlike the table.
-2. The candidates, grown by one coarse pixel, are grouped into connected regions; only their pixels are
-   classified at full resolution, in CIEDE2000. Each region is a window the blobs are then found in.
+1. At a quarter of the resolution (each pixel the mean of the middle 2 x 2 of a 4 x 4 block), every
+   pixel of the searched region is converted to CIELAB. The table's own colour is its median (parts
+   are few), its spread the scaled median distance from it. Candidates are pixels that differ from the
+   table and lie within 2.5x a class's tolerance in CIE76 (CIEDE2000 is never more than about that),
+   or are saturated and unlike the table. The candidates are classified there, in CIEDE2000.
+2. A block whose 3 x 3 neighbours all took its class lies inside a part: its pixels keep that class.
+   The other candidate blocks, grown by one block (the parts' edges), are classified pixel by pixel at
+   full resolution, in CIEDE2000. Each connected group of candidates is a window the blobs are then
+   found in. The white balance is smooth, so each block's pixels share its factor.
 """
 
 from __future__ import annotations
@@ -23,7 +25,7 @@ import cv2
 import numpy as np
 
 from vision.colour import delta_e_2000
-from vision.whitebalance import lab_image, lab_of_pixels
+from vision.whitebalance import lab_of_linear, linear_of, white_gain
 
 __all__ = ["ClassifiedRegion", "classify_region", "classify_pixels", "coarse_mask"]
 
@@ -108,27 +110,35 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     hs, ws = valid_small.shape
     block = image_bgr[v0:v0 + hs * f, u0:u0 + ws * f]
     small = cv2.resize(block, (ws, hs), interpolation=cv2.INTER_LINEAR)   # the mean of each block's centre 2 x 2
-    lab_small = lab_image(small, illumination, (u0 + (f - 1) / 2, v0 + (f - 1) / 2), step=f)
-    table = lab_small[::2, ::2][valid_small[::2, ::2]]          # the table: parts cover a few % of it
+    gain = white_gain(illumination, f * np.arange(ws, dtype=np.float32)[None, :] + (u0 + (f - 1) / 2),
+                      f * np.arange(hs, dtype=np.float32)[:, None] + (v0 + (f - 1) / 2))
+    gain = np.broadcast_to(gain, (hs, ws, 3))                 # the white balance is smooth: one per block
+    lab_small = lab_of_linear(linear_of(small) * gain)
+    table = lab_small[::3, ::3][valid_small[::3, ::3]]          # the table: parts cover a few % of it
     background = None
     if len(table):
         median = np.median(table, axis=0)
         background = (median, 1.4826 * float(np.sqrt(np.median(_distance2(table, median)))))
-    near = (_candidates(lab_small, classes, background) & valid_small).astype(np.uint8)
-    near = cv2.dilate(near, np.ones((3, 3), np.uint8))
+    candidate = _candidates(lab_small, classes, background) & valid_small
+    near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
     n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)
     label = np.zeros((h, w), np.uint8)
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
         return ClassifiedRegion((u0, v0), label, delta_e, [])
-    # every full-resolution pixel of the candidate blocks, inside the searched area
-    ys, xs = np.nonzero(near)
-    dy, dx = np.divmod(np.arange(f * f), f)
-    ys = (ys[:, None] * f + dy).ravel()
-    xs = (xs[:, None] * f + dx).ravel()
-    keep = valid[ys, xs]
-    ys, xs = ys[keep], xs[keep]
-    lab = lab_of_pixels(block[ys, xs], xs + u0, ys + v0, illumination)
+    # the candidates' classes at the coarse resolution; a block whose 3 x 3 neighbours all agree is inside
+    # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
+    cy, cx = np.nonzero(candidate)
+    coarse_label = np.zeros((hs, ws), np.uint8)
+    coarse_de = np.zeros((hs, ws), np.float32)
+    coarse_label[cy, cx], coarse_de[cy, cx] = classify_pixels(lab_small[cy, cx], classes, background)
+    kernel = np.ones((3, 3), np.uint8)
+    inside = (coarse_label > 0) & (cv2.erode(coarse_label, kernel) == cv2.dilate(coarse_label, kernel))
+    ys, xs = _pixels_of_blocks(inside, valid)
+    label[ys, xs] = coarse_label[ys // f, xs // f]
+    delta_e[ys, xs] = coarse_de[ys // f, xs // f]
+    ys, xs = _pixels_of_blocks((near > 0) & ~inside, valid)
+    lab = lab_of_linear(linear_of(block[ys, xs]) * gain[ys // f, xs // f])
     label[ys, xs], delta_e[ys, xs] = classify_pixels(lab, classes, background)
     windows = []
     for i in range(1, n):
@@ -137,6 +147,17 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
         member = np.repeat(np.repeat(member, f, axis=0), f, axis=1)
         windows.append(((x * f, y * f, bw * f, bh * f), member))
     return ClassifiedRegion((u0, v0), label, delta_e, windows)
+
+
+def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Full-resolution (rows, columns) of the coarse ``blocks`` (bool), inside ``valid``."""
+    f = _COARSE
+    ys, xs = np.nonzero(blocks)
+    dy, dx = np.divmod(np.arange(f * f), f)
+    ys = (ys[:, None] * f + dy).ravel()
+    xs = (xs[:, None] * f + dx).ravel()
+    keep = valid[ys, xs]
+    return ys[keep], xs[keep]
 
 
 def coarse_mask(valid: np.ndarray) -> np.ndarray:

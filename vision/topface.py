@@ -22,9 +22,16 @@ __all__ = ["polygon_area_centroid", "expected_area_mm2", "footprint_centre", "ou
            "TopFaceProblem", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
 
 
+def _shifted(a: np.ndarray, s: int) -> np.ndarray:
+    """``a`` rotated so that row i holds row i + s (np.roll(a, -s, axis=0), without its overhead)."""
+    s %= len(a)
+    return np.concatenate([a[s:], a[:s]])
+
+
 def polygon_area_centroid(xy: np.ndarray):
     x, y = xy[:, 0], xy[:, 1]
-    xn, yn = np.roll(x, -1), np.roll(y, -1)
+    nxt = _shifted(xy, 1)
+    xn, yn = nxt[:, 0], nxt[:, 1]
     cross = x * yn - xn * y
     area = 0.5 * cross.sum()
     if abs(area) < 1e-9:
@@ -60,10 +67,10 @@ def footprint_centre(m, area_mapped, nadir, k, expected_mm2, mode: str):
 
 def outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
     """Unit outward normals (N, 2) of a closed outline, from its neighbours ``step`` points either side."""
-    tangent = np.roll(outline, -step, axis=0) - np.roll(outline, step, axis=0)
-    tangent /= np.maximum(np.linalg.norm(tangent, axis=1, keepdims=True), 1e-12)
-    x, y = outline[:, 0], outline[:, 1]
-    ccw = (x * np.roll(y, -1) - np.roll(x, -1) * y).sum() > 0
+    tangent = _shifted(outline, step) - _shifted(outline, -step)
+    tangent /= np.maximum(np.hypot(tangent[:, :1], tangent[:, 1:]), 1e-12)
+    nxt = _shifted(outline, 1)
+    ccw = (outline[:, 0] * nxt[:, 1] - nxt[:, 0] * outline[:, 1]).sum() > 0
     normal = np.column_stack([tangent[:, 1], -tangent[:, 0]])
     return normal if ccw else -normal
 

@@ -23,7 +23,7 @@ import numpy as np
 from vision.colour import linear_from_srgb
 from vision.robust import masked_median
 
-__all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels"]
+__all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels", "lab_of_linear", "linear_of", "white_gain"]
 
 REFERENCE_WHITE = 0.80
 _LIN_LUT = linear_from_srgb(np.arange(256) / 255.0).astype(np.float32)
@@ -46,9 +46,13 @@ class Illumination:
         return feats[: self.coeffs.shape[1]]
 
     def field(self, u, v) -> np.ndarray:
-        """Paper brightness (..., 3) at pixel coordinates u, v (broadcast)."""
-        f = self._features(u, v)
-        return np.stack([sum(c * x for c, x in zip(self.coeffs[ch], f)) for ch in range(3)], axis=-1)
+        """Paper brightness (..., 3) at pixel coordinates u, v (broadcast: a row of u and a column of v
+        give the grid). The polynomial is a sum of a part in u and a part in v, so a grid costs one add."""
+        c = np.zeros((4, 3), np.float32)
+        c[: self.coeffs.shape[1]] = self.coeffs.T
+        un = ((np.asarray(u, np.float32) - self.width_px / 2) / (self.width_px / 2))[..., None]
+        vn = ((np.asarray(v, np.float32) - self.height_px / 2) / (self.width_px / 2))[..., None]
+        return (c[0] + un * (c[1] + un * c[3])) + vn * (c[2] + vn * c[3])
 
     def as_dict(self) -> dict:
         return {"markers": self.n_markers, "terms": int(self.coeffs.shape[1]),
@@ -74,9 +78,8 @@ def _bilinear_linear(image_bgr: np.ndarray, uv: np.ndarray) -> np.ndarray:
     y0 = np.floor(uv[..., 1]).astype(int)
     fx = (uv[..., 0] - x0)[..., None].astype(np.float32)
     fy = (uv[..., 1] - y0)[..., None].astype(np.float32)
-    lut = _LIN_LUT
-    top = lut[image_bgr[y0, x0]] * (1 - fx) + lut[image_bgr[y0, x0 + 1]] * fx
-    bottom = lut[image_bgr[y0 + 1, x0]] * (1 - fx) + lut[image_bgr[y0 + 1, x0 + 1]] * fx
+    top = linear_of(image_bgr[y0, x0]) * (1 - fx) + linear_of(image_bgr[y0, x0 + 1]) * fx
+    bottom = linear_of(image_bgr[y0 + 1, x0]) * (1 - fx) + linear_of(image_bgr[y0 + 1, x0 + 1]) * fx
     return top * (1 - fy) + bottom * fy
 
 
@@ -115,7 +118,7 @@ def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | 
     return ill
 
 
-def _lab_of_linear(lin_bgr: np.ndarray) -> np.ndarray:
+def lab_of_linear(lin_bgr: np.ndarray) -> np.ndarray:
     """CIELAB (D65) of linear BGR float32 (..., 3), through OpenCV's conversion (it agrees with
     :func:`vision.colour.lab_from_xyz` to 0.02 on 8-bit codes: tested)."""
     flat = np.ascontiguousarray(lin_bgr, np.float32).reshape(1, -1, 3)     # one row: per-row cost is high
@@ -124,10 +127,19 @@ def _lab_of_linear(lin_bgr: np.ndarray) -> np.ndarray:
 
 def lab_of_pixels(bgr: np.ndarray, u: np.ndarray, v: np.ndarray, illumination: Illumination | None) -> np.ndarray:
     """CIELAB (..., 3) float32 of pixels (..., 3) uint8 BGR at photo coordinates u, v, white-balanced."""
-    lin = _LIN_LUT[bgr]
-    if illumination is not None:
-        lin *= (illumination.white / np.maximum(illumination.field(u, v), 1e-3)).astype(np.float32)
-    return _lab_of_linear(lin)
+    return lab_of_linear(linear_of(bgr) * white_gain(illumination, u, v))
+
+
+def linear_of(bgr: np.ndarray) -> np.ndarray:
+    """Linear light (float32, same shape) of 8-bit sRGB codes."""
+    return cv2.LUT(bgr, _LIN_LUT)
+
+
+def white_gain(illumination: Illumination | None, u, v) -> np.ndarray | float:
+    """The factor (..., 3) that white-balances linear BGR at photo coordinates u, v (1 without a fit)."""
+    if illumination is None:
+        return np.float32(1.0)
+    return (illumination.white / np.maximum(illumination.field(u, v), 1e-3)).astype(np.float32)
 
 
 def lab_image(image_bgr: np.ndarray, illumination: Illumination | None, origin=(0, 0), step: float = 1.0) -> np.ndarray:
