@@ -23,7 +23,7 @@ Per photo (see DESIGN.md sec. 6):
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import cv2
 import numpy as np
@@ -40,6 +40,7 @@ from vision.topface import (
     min_rect,
     outward_normals,
     polygon_area_centroid,
+    top_face_guess,
 )
 from vision.whitebalance import Illumination, fit_illumination
 
@@ -184,15 +185,19 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts)
-    blobs = [blob for window in classified.windows
-             for blob in _blobs_in_window(classified, window, region.edge_band, mapping, camera_centre_mm, cell,
-                                          parallax, seen_as)]
-    nadir = np.asarray(camera_centre_mm[:2], float)
+    search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
+    blobs = [blob for group, window in enumerate(classified.windows, start=1)
+             for blob in _blobs_in_window(search, group, window)]
+    nadir = search.nadir
     fits = iter(fit_top_faces([b.problem for b in blobs if b.problem is not None]))
     found: list[DetectedPart] = []
     for b in blobs:
         top_fit = next(fits) if b.problem is not None else None
-        found += _parts_of_blob(b, top_fit, nadir, parallax, cell)
+        found += _parts_of_blob(b, top_fit, nadir, parallax)
+    if found:                                   # a footprint centre outside the work area: not pickable
+        outside = ~points_in_polygon([p.xy_mm for p in found], cell.work_area)
+        found = [replace(p, status="cut_by_edge", reason="lies across the edge of the work area")
+                 if out and p.status == "ok" else p for p, out in zip(found, outside)]
     found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
     parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
              for i, p in enumerate(found)]
@@ -216,41 +221,57 @@ class _Blob:
     normals: np.ndarray
     m: np.ndarray
     delta_e: float
+    rect: tuple[float, float, float]            # the outline's length, width (footprint mm) and yaw
     problem: TopFaceProblem | None = None
 
 
-def _blobs_in_window(classified, window, edge_band, mapping, camera_centre_mm, cell, parallax, seen_as):
-    """The blobs of every class in one window of classified pixels."""
-    (wx, wy, ww, wh), member = window
+class _Search:
+    """What every window of one photo shares: the classified pixels, the searched area's edge band, the
+    mapping, the cell's classes and the camera centre."""
+
+    def __init__(self, classified, edge_band, mapping, cell, parallax, seen_as, camera_centre_mm):
+        self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
+        self.parallax, self.seen_as = parallax, seen_as
+        self.names = list(cell.parts)
+        self.nadir = np.asarray(camera_centre_mm[:2], float)
+        self.cz = float(camera_centre_mm[2])
+        self.kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
+        self.tallest = max(c.height_mm for c in cell.parts.values())
+        self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+
+
+def _blobs_in_window(search: _Search, group: int, window):
+    """The blobs of every class in one group's window of classified pixels (a blob of another group
+    that reaches into the window is left to its own)."""
+    wx, wy, ww, wh = window
+    classified, edge_band, mapping, cell = search.classified, search.edge_band, search.mapping, search.cell
+    parallax, seen_as, names, nadir, cz = search.parallax, search.seen_as, search.names, search.nadir, search.cz
     rh, rw = classified.label.shape
     x0, y0 = max(wx - 2, 0), max(wy - 2, 0)               # a margin for the morphology
     x1, y1 = min(wx + ww + 2, rw), min(wy + wh + 2, rh)
-    own = np.zeros((y1 - y0, x1 - x0), bool)
-    own[wy - y0:wy - y0 + wh, wx - x0:wx - x0 + ww] = member[: min(wh, y1 - wy), : min(ww, x1 - wx)]
-    labels = np.where(own, classified.label[y0:y1, x0:x1], 0)
+    labels = classified.label[y0:y1, x0:x1]
     u0, v0 = classified.origin
-    names = list(cell.parts)
-    nadir = np.asarray(camera_centre_mm[:2], float)
-    cz = float(camera_centre_mm[2])
-    kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
-    tallest = max(c.height_mm for c in cell.parts.values())
-    typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+    kernel, tallest, typical = search.kernel, search.tallest, search.typical
     for k_label in np.flatnonzero(np.bincount(labels.ravel(), minlength=len(names) + 2)[1:]) + 1:
         mask = cv2.morphologyEx((labels == k_label).astype(np.uint8), cv2.MORPH_OPEN, kernel)
         mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, kernel)
-        n, comp, stats, _ = cv2.connectedComponentsWithStats(mask, connectivity=8)
+        contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
         unknown = k_label == len(names) + 1
         name = "unknown" if unknown else names[k_label - 1]
         cls = None if unknown else cell.parts[name]
         height = tallest if unknown else cls.height_mm
         k = cz / (cz - height) if parallax else 1.0
-        for i in range(1, n):
-            x, y, w, h, npx = stats[i]
-            if npx < 12:
+        for contour in contours:
+            if len(contour) < 10:                             # a speck of a few pixels
                 continue
-            sub = (comp[y:y + h, x:x + w] == i).astype(np.uint8)
+            outline = contour.reshape(-1, 2)
+            if classified.group_at(int(outline[0, 0]) + x0, int(outline[0, 1]) + y0) != group:
+                continue
+            x, y, w, h = cv2.boundingRect(contour)
+            sub = np.zeros((h, w), np.uint8)
+            cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
             x, y = x + x0, y + y0                             # rectangle px
-            whole = _whole(sub, x + u0, y + v0, mapping, k)
+            whole = _whole(outline + (x0 + u0, y0 + v0), sub, x + u0, y + v0, mapping, k)
             m, outline_mm, _, area, _ = whole[0]
             if unknown and area < _MIN_UNKNOWN_MM2:
                 continue
@@ -278,22 +299,24 @@ def _blobs_in_window(classified, window, edge_band, mapping, camera_centre_mm, c
                 elif ratio > _MAX_RATIO:
                     pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
             blob = _Blob(name, cls, float(height), k, mode, status, reason, pieces, outline_mm,
-                         outward_normals(outline_mm), m, de)
+                         outward_normals(outline_mm), m, de, min_rect(outline_mm, k))
             if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
-                yaw = min_rect(outline_mm, k)[2]
-                blob.problem = TopFaceProblem.of_class(outline_mm, blob.normals, m, nadir, k, cls, yaw)
+                yaw = blob.rect[2]
+                guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
+                blob.problem = TopFaceProblem.of_class(outline_mm, blob.normals, guess, nadir, k, cls, yaw)
             yield blob
 
 
-def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool, cell) -> list[DetectedPart]:
+def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:
     """The blob's parts with their footprint centres (parallax corrected) and statuses."""
     expected = expected_area_mm2(b.cls) if b.cls is not None else b.pieces[0][3]
     tops = [None if top_fit is None else top_fit[0]]
     if parallax and b.mode == "auto" and b.cls is not None and len(b.pieces) > 1 and b.cls.shape == "box":
-        tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
+        area_mapped = sum(p[3] for p in b.pieces) * b.k * b.k
+        tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, area_mapped, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
     parts = []
     for (piece_m, piece_mm, piece_px, piece_area, piece_uv), top in zip(b.pieces, tops * (len(b.pieces) // len(tops))):
-        length, width, yaw = min_rect(piece_mm, b.k)
+        length, width, yaw = b.rect if len(b.pieces) == 1 else min_rect(piece_mm, b.k)
         if top is not None:
             centre, used = nadir + (top - nadir) / b.k, "top_outline"
             by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")
@@ -302,10 +325,7 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool, cell) -> list[Detec
         else:
             centre, used = (piece_m, "none") if not parallax else footprint_centre(
                 piece_m, piece_area * b.k * b.k, nadir, b.k, expected, b.mode)
-        status, reason = b.status, b.reason
-        if status == "ok" and not points_in_polygon(np.asarray(centre)[None], cell.work_area)[0]:
-            status, reason = "cut_by_edge", "lies across the edge of the work area"
-        parts.append(DetectedPart("", b.name, status, reason, piece_uv, (float(centre[0]), float(centre[1])),
+        parts.append(DetectedPart("", b.name, b.status, b.reason, piece_uv, (float(centre[0]), float(centre[1])),
                                   b.height_mm, float(piece_area), yaw, length, width, used, b.delta_e, piece_px))
     return parts
 
@@ -339,11 +359,12 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
     return pieces, "ok", f"split from {n} touching parts"
 
 
-def _whole(sub, ox, oy, mapping, k):
-    """The blob as one piece: (mapped centroid, outline mm, outline px, area / k^2, pixel centroid)."""
-    contours, _ = cv2.findContours(sub, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
-    outline = max(contours, key=len).reshape(-1, 2).astype(float) + [ox, oy]
+def _whole(outline_px, sub, ox, oy, mapping, k):
+    """The blob (outline in photo px, its pixels ``sub`` at (ox, oy)) as one piece: (mapped centroid,
+    outline mm, outline px, area / k^2, pixel centroid)."""
+    outline = outline_px.astype(float)
     outline_mm = mapping(outline)
     area, m = polygon_area_centroid(outline_mm)
-    py, px = np.nonzero(sub)
-    return [(m, outline_mm, outline, area / (k * k), (float(px.mean() + ox), float(py.mean() + oy)))]
+    moments = cv2.moments(sub, binaryImage=True)
+    pixel_uv = (moments["m10"] / moments["m00"] + ox, moments["m01"] / moments["m00"] + oy)
+    return [(m, outline_mm, outline, area / (k * k), pixel_uv)]

@@ -36,36 +36,47 @@ _COARSE = 4                   # the coarse pass runs at 1/4 resolution
 _NEAR = 2.5                   # CIE76 candidates: within this many times a class's tolerance
 
 
-def _distance2(lab: np.ndarray, ref) -> np.ndarray:
-    """Squared CIE76 distance of colours (..., 3) to one colour (channel by channel: a reduction over
-    an axis of three is slow)."""
-    return (lab[..., 0] - ref[0]) ** 2 + (lab[..., 1] - ref[1]) ** 2 + (lab[..., 2] - ref[2]) ** 2
+def _planes(lab: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """L, a, b as contiguous arrays (numpy is slow over a last axis of three)."""
+    return tuple(np.moveaxis(lab, -1, 0).copy())
 
 
-def _foreground(lab: np.ndarray, background) -> np.ndarray:
+def _distance2(planes, ref) -> np.ndarray:
+    """Squared CIE76 distance of colours (as L, a, b planes) to one colour."""
+    d = planes[0] - np.float32(ref[0])
+    d *= d
+    for plane, r in zip(planes[1:], ref[1:]):
+        t = plane - np.float32(r)
+        t *= t
+        d += t
+    return d
+
+
+def _foreground(planes, background) -> np.ndarray:
     """Pixels that differ from the table: CIE76 from its median colour beyond max(12, 4 x the table's own
     spread). ``background`` is (median Lab, spread) or None (everything counts)."""
     if background is None:
-        return np.ones(lab.shape[:-1], bool)
+        return np.ones(planes[0].shape, bool)
     median, spread = background
-    return _distance2(lab, median) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
+    return _distance2(planes, median) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
 
 
-def _unknown_mask(lab: np.ndarray, background) -> np.ndarray:
+def _unknown_mask(planes, background) -> np.ndarray:
     """Saturated pixels that differ from the table's own colour (a colourful table is not a part)."""
-    saturated = lab[..., 1] ** 2 + lab[..., 2] ** 2 > _UNKNOWN_CHROMA ** 2
+    saturated = planes[1] * planes[1] + planes[2] * planes[2] > _UNKNOWN_CHROMA ** 2
     if background is None:
         return saturated
-    return saturated & (_distance2(lab, background[0]) > _UNKNOWN_FROM_TABLE ** 2)
+    return saturated & (_distance2(planes, background[0]) > _UNKNOWN_FROM_TABLE ** 2)
 
 
 def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np.ndarray, np.ndarray]:
     """Class index + 1 (0 none, K + 1 unknown saturated) and the CIEDE2000 to it, for pixels (N, 3).
     Every (pixel, class) pair within the CIE76 pre-filter goes through one CIEDE2000 call."""
+    planes = _planes(lab)
     refs = np.array([c.lab for c in classes.values()], np.float32)
     tolerances = np.array([c.tolerance for c in classes.values()], np.float32)
-    fg = _foreground(lab, background)
-    pairs = [np.flatnonzero((_distance2(lab, ref) < (_NEAR * tol) ** 2) & fg) for ref, tol in zip(refs, tolerances)]
+    fg = _foreground(planes, background)
+    pairs = [np.flatnonzero((_distance2(planes, ref) < (_NEAR * tol) ** 2) & fg) for ref, tol in zip(refs, tolerances)]
     pixel = np.concatenate(pairs)
     which = np.repeat(np.arange(len(refs)), [len(p) for p in pairs])
     d00 = delta_e_2000(lab[pixel], refs[which]).astype(np.float32)
@@ -76,29 +87,34 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     nearest = d00 == best[pixel]                          # per pixel, the nearest class
     label = np.zeros(len(lab), np.uint8)
     label[pixel[nearest]] = which[nearest] + 1
-    label[(label == 0) & _unknown_mask(lab, background)] = len(classes) + 1
+    label[(label == 0) & _unknown_mask(planes, background)] = len(classes) + 1
     return label, best
 
 
-def _candidates(lab: np.ndarray, classes: dict, background) -> np.ndarray:
-    """Pixels worth a full-resolution look (any shape (..., 3))."""
-    near = _unknown_mask(lab, background)
+def _candidates(planes, classes: dict, background) -> np.ndarray:
+    """Pixels worth a full-resolution look."""
+    near = _unknown_mask(planes, background)
     for cls in classes.values():
-        near |= _distance2(lab, cls.lab) < (_NEAR * cls.tolerance) ** 2
-    return near & _foreground(lab, background)
+        near |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
+    return near & _foreground(planes, background)
 
 
 @dataclass(frozen=True)
 class ClassifiedRegion:
     """The classified pixels of a searched rectangle at ``origin`` (photo px): ``label`` (class index + 1,
-    0 none, K + 1 unknown) and ``delta_e`` (CIEDE2000 to the class; meaningful where labelled), and the
-    windows (x, y, w, h; rectangle px) that hold every labelled pixel, one per connected group of
-    candidates, with the group's own pixels (``member``, same size as the window)."""
+    0 none, K + 1 unknown) and ``delta_e`` (CIEDE2000 to the class; meaningful where labelled). Every
+    labelled pixel belongs to one connected group of candidate blocks (``groups``, coarse, 1-based);
+    ``windows[g - 1]`` is the rectangle (x, y, w, h; rectangle px) of group g."""
 
     origin: tuple[int, int]
     label: np.ndarray
     delta_e: np.ndarray
-    windows: list[tuple[tuple[int, int, int, int], np.ndarray]]
+    groups: np.ndarray
+    windows: list[tuple[int, int, int, int]]
+
+    def group_at(self, x: int, y: int) -> int:
+        """The group of the pixel at column x, row y of the rectangle."""
+        return int(self.groups[y // _COARSE, x // _COARSE])
 
 
 def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small: np.ndarray, illumination,
@@ -114,18 +130,19 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
                       f * np.arange(hs, dtype=np.float32)[:, None] + (v0 + (f - 1) / 2))
     gain = np.broadcast_to(gain, (hs, ws, 3))                 # the white balance is smooth: one per block
     lab_small = lab_of_linear(linear_of(small) * gain)
-    table = lab_small[::3, ::3][valid_small[::3, ::3]]          # the table: parts cover a few % of it
+    planes = cv2.split(lab_small)
+    table = [p[::4, ::4][valid_small[::4, ::4]] for p in planes]   # the table: parts cover a few % of it
     background = None
-    if len(table):
-        median = np.median(table, axis=0)
+    if len(table[0]):
+        median = np.array([np.median(p) for p in table], np.float32)
         background = (median, 1.4826 * float(np.sqrt(np.median(_distance2(table, median)))))
-    candidate = _candidates(lab_small, classes, background) & valid_small
+    candidate = _candidates(planes, classes, background) & valid_small
     near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
     n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)
     label = np.zeros((h, w), np.uint8)
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
-        return ClassifiedRegion((u0, v0), label, delta_e, [])
+        return ClassifiedRegion((u0, v0), label, delta_e, groups, [])
     # the candidates' classes at the coarse resolution; a block whose 3 x 3 neighbours all agree is inside
     # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
     cy, cx = np.nonzero(candidate)
@@ -140,13 +157,8 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     ys, xs = _pixels_of_blocks((near > 0) & ~inside, valid)
     lab = lab_of_linear(linear_of(block[ys, xs]) * gain[ys // f, xs // f])
     label[ys, xs], delta_e[ys, xs] = classify_pixels(lab, classes, background)
-    windows = []
-    for i in range(1, n):
-        x, y, bw, bh, _ = stats[i]
-        member = groups[y:y + bh, x:x + bw] == i
-        member = np.repeat(np.repeat(member, f, axis=0), f, axis=1)
-        windows.append(((x * f, y * f, bw * f, bh * f), member))
-    return ClassifiedRegion((u0, v0), label, delta_e, windows)
+    windows = [tuple(int(c) * f for c in stats[i, :4]) for i in range(1, n)]
+    return ClassifiedRegion((u0, v0), label, delta_e, groups, windows)
 
 
 def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

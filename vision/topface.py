@@ -19,7 +19,7 @@ import numpy as np
 from vision.robust import masked_median, robust_lm, soft_l1
 
 __all__ = ["polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "TopFaceProblem", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
+           "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
 
 
 def _shifted(a: np.ndarray, s: int) -> np.ndarray:
@@ -95,6 +95,7 @@ class TopFaceProblem:
 
     @classmethod
     def of_class(cls, outline_mm, normals, centre, nadir, k, part_class, yaw_guess_deg=0.0):
+        """The problem for a part class; ``centre`` is the first guess of the top face's centre."""
         fp = list(part_class.footprint_mm) * (2 if len(part_class.footprint_mm) == 1 else 1)
         return cls(outline_mm, normals, np.asarray(centre, float), np.asarray(nadir, float), float(k),
                    part_class.shape == "cylinder", (fp[0] / 2.0, fp[1] / 2.0), float(yaw_guess_deg))
@@ -136,20 +137,26 @@ def _shape_residuals(point_sets, round_, half):
     return residual, mask[:, 0, :]
 
 
+def top_face_guess(m, area_mapped, nadir, k, expected_mm2) -> np.ndarray:
+    """A first guess of a blob's top-face centre (table-mapped mm): the footprint centre of the area
+    model (:func:`footprint_centre`, ``auto``) scaled back up by k about the nadir."""
+    centre, _ = footprint_centre(np.asarray(m, float), area_mapped, nadir, k, expected_mm2, "auto")
+    return nadir + k * (centre - nadir)
+
+
 def fit_top_faces(problems: list[TopFaceProblem]) -> list:
     """Fit each problem's top face (circle, or rectangle of its footprint's proportions; centre, yaw,
     size free) to the outer half of its blob's outline: the half away from the nadir, which is always
     the top face's own edge whichever side faces the segmentation kept (outline points facing away
-    from the nadir, beyond the centre: the sides' own edges face the nadir). Two passes: the second
-    keeps only the outline beyond the first fit's centre; a rectangle starts from its yaw guess and
-    45 degrees on, the better kept. A robust loss (soft L1, 0.15 mm) discounts the stretches of outline
-    that run from the top face down the visible sides. All problems are fitted together.
+    from the nadir, beyond the first guess of the centre (:func:`top_face_guess`): the sides' own
+    edges face the nadir). A rectangle starts from its yaw guess and 45 degrees on, the better kept.
+    A robust loss (soft L1, 0.15 mm) discounts the stretches of outline that run from the top face
+    down the visible sides. All problems are fitted together.
 
     Returns, per problem, None if the outline does not look like the shape (fewer than 12 points, a
     scale off k by more than 15 %, or a median residual over 0.4 mm), else (top face centre in
     table-mapped mm, unit vector of the footprint's first axis, fitted scale)."""
     results: list = [None] * len(problems)
-    # pass 1: every start of every problem with enough outline
     rows, starts, sets = [], [], []
     for i, p in enumerate(problems):
         pts = _outer_points(p, p.centre)
@@ -161,22 +168,16 @@ def fit_top_faces(problems: list[TopFaceProblem]) -> list:
             sets.append(pts)
     if not rows:
         return results
-    x, r, _ = _fit(sets, [problems[i] for i in rows], np.array(starts))
+    x, r, mask = _fit(sets, [problems[i] for i in rows], np.array(starts))
     cost = soft_l1(r, _SOFT_L1_MM)
+    median = masked_median(np.abs(r), mask > 0)
     best: dict[int, int] = {}
     for j, i in enumerate(rows):
         if i not in best or cost[j] < cost[best[i]]:
             best[i] = j
-    # pass 2: the outline beyond the first fit's centre
-    keep = [(i, np.array([*x[j, :3], problems[i].k])) for i, j in best.items()]   # the scale starts at k again
-    sets2 = [_outer_points(problems[i], xi[:2]) for i, xi in keep]
-    keep = [(i, xi, s) for (i, xi), s in zip(keep, sets2) if len(s) >= 12]
-    if not keep:
-        return results
-    x2, r2, mask = _fit([s for _, _, s in keep], [problems[i] for i, _, _ in keep], np.array([xi for _, xi, _ in keep]))
-    median = masked_median(np.abs(r2), mask > 0)
-    for (i, _, _), params, med in zip(keep, x2, median):
-        if 0.85 < params[3] / problems[i].k < 1.15 and med <= 0.4:
+    for i, j in best.items():
+        params = x[j]
+        if 0.85 < params[3] / problems[i].k < 1.15 and median[j] <= 0.4:
             yaw = 0.0 if problems[i].round else params[2]
             results[i] = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), float(params[3]))
     return results
@@ -194,16 +195,19 @@ def fit_top_face(outline_mm, normals, centre, nadir, k, cls, yaw_guess_deg: floa
     return None if fit is None else fit[0]
 
 
-def fit_row_of_tops(outline_mm, normals, m, nadir, k, cls, pieces):
+def fit_row_of_tops(outline_mm, normals, m, area_mapped, nadir, k, cls, pieces):
     """Touching boxes face to face make one box n parts long: fit that (along either side of the class's
-    footprint) to the blob's outline and cut it into n top faces. Returns each piece's top-face centre
-    (table-mapped mm), in the pieces' order, or None if the row does not fit."""
+    footprint) to the blob's outline (mapped centroid m, mapped area ``area_mapped``) and cut it into n
+    top faces. Returns each piece's top-face centre (table-mapped mm), in the pieces' order, or None if
+    the row does not fit."""
     n = len(pieces)
     fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
     _, _, yaw_guess = min_rect(outline_mm, k)
+    nadir = np.asarray(nadir, float)
+    guess = top_face_guess(m, area_mapped, nadir, k, n * expected_area_mm2(cls))
     rows = ((fp[0], fp[1]), (fp[1], fp[0]))
-    fits = fit_top_faces([TopFaceProblem(outline_mm, normals, np.asarray(m, float), np.asarray(nadir, float), float(k),
-                                         False, (n * along / 2.0, across / 2.0), yaw_guess) for along, across in rows])
+    fits = fit_top_faces([TopFaceProblem(outline_mm, normals, guess, nadir, float(k), False,
+                                         (n * along / 2.0, across / 2.0), yaw_guess) for along, across in rows])
     piece_centres = np.array([p[0] for p in pieces])
     best = None
     for (along, _), fit in zip(rows, fits):

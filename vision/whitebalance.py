@@ -48,11 +48,12 @@ class Illumination:
     def field(self, u, v) -> np.ndarray:
         """Paper brightness (..., 3) at pixel coordinates u, v (broadcast: a row of u and a column of v
         give the grid). The polynomial is a sum of a part in u and a part in v, so a grid costs one add."""
-        c = np.zeros((4, 3), np.float32)
-        c[: self.coeffs.shape[1]] = self.coeffs.T
-        un = ((np.asarray(u, np.float32) - self.width_px / 2) / (self.width_px / 2))[..., None]
-        vn = ((np.asarray(v, np.float32) - self.height_px / 2) / (self.width_px / 2))[..., None]
-        return (c[0] + un * (c[1] + un * c[3])) + vn * (c[2] + vn * c[3])
+        c = np.zeros((3, 4), np.float32)
+        c[:, : self.coeffs.shape[1]] = self.coeffs
+        un = (np.asarray(u, np.float32) - np.float32(self.width_px / 2)) / np.float32(self.width_px / 2)
+        vn = (np.asarray(v, np.float32) - np.float32(self.height_px / 2)) / np.float32(self.width_px / 2)
+        # channel by channel: numpy broadcasts slowly over a last axis of three
+        return np.stack([(ch[0] + un * (ch[1] + un * ch[3])) + vn * (ch[2] + vn * ch[3]) for ch in c], axis=-1)
 
     def as_dict(self) -> dict:
         return {"markers": self.n_markers, "terms": int(self.coeffs.shape[1]),
@@ -139,7 +140,8 @@ def white_gain(illumination: Illumination | None, u, v) -> np.ndarray | float:
     """The factor (..., 3) that white-balances linear BGR at photo coordinates u, v (1 without a fit)."""
     if illumination is None:
         return np.float32(1.0)
-    return (illumination.white / np.maximum(illumination.field(u, v), 1e-3)).astype(np.float32)
+    field = illumination.field(u, v)                       # float32, a fresh array: worked in place
+    return np.divide(np.float32(illumination.white), np.maximum(field, np.float32(1e-3), out=field), out=field)
 
 
 def lab_image(image_bgr: np.ndarray, illumination: Illumination | None, origin=(0, 0), step: float = 1.0) -> np.ndarray:
