@@ -72,6 +72,11 @@ def srgb_from_lab(lab):
     return srgb_from_linear(linear_from_xyz(xyz_from_lab(lab)))
 
 
+def _seventh_power(x):
+    x2 = x * x
+    return x2 * x2 * x2 * x          # by products: a float power is slow
+
+
 def delta_e_2000(lab1, lab2, kL: float = 1.0, kC: float = 1.0, kH: float = 1.0):
     """CIEDE2000 colour difference (CIE 142-2001), vectorised with broadcasting over leading axes.
 
@@ -82,36 +87,45 @@ def delta_e_2000(lab1, lab2, kL: float = 1.0, kC: float = 1.0, kH: float = 1.0):
     dtype = np.result_type(np.asarray(lab1).dtype, np.asarray(lab2).dtype, np.float32)   # float32 stays
     lab1 = np.asarray(lab1, dtype=dtype)
     lab2 = np.asarray(lab2, dtype=dtype)
+    # written with products, square roots and where: np.hypot, np.degrees and % are several times
+    # slower than the arithmetic they stand for
+    deg = 180.0 / np.pi
+    rad = np.pi / 180.0
     L1, a1, b1 = lab1[..., 0], lab1[..., 1], lab1[..., 2]
     L2, a2, b2 = lab2[..., 0], lab2[..., 1], lab2[..., 2]
-    c_mean = 0.5 * (np.hypot(a1, b1) + np.hypot(a2, b2))
-    c7 = c_mean ** 7
+    c_mean = 0.5 * (np.sqrt(a1 * a1 + b1 * b1) + np.sqrt(a2 * a2 + b2 * b2))
+    c7 = _seventh_power(c_mean)
     g = 0.5 * (1.0 - np.sqrt(c7 / (c7 + 25.0 ** 7)))
     a1p, a2p = (1.0 + g) * a1, (1.0 + g) * a2
-    c1p, c2p = np.hypot(a1p, b1), np.hypot(a2p, b2)
-    h1p = np.where((a1p == 0) & (b1 == 0), 0.0, np.degrees(np.arctan2(b1, a1p)) % 360.0)
-    h2p = np.where((a2p == 0) & (b2 == 0), 0.0, np.degrees(np.arctan2(b2, a2p)) % 360.0)
+    c1p, c2p = np.sqrt(a1p * a1p + b1 * b1), np.sqrt(a2p * a2p + b2 * b2)
+    h1p = np.arctan2(b1, a1p) * deg      # (-180, 180]; a zero chroma's hue never counts (its dH' is 0)
+    h2p = np.arctan2(b2, a2p) * deg
+    h1p = np.where(h1p < 0, h1p + 360.0, h1p)              # [0, 360)
+    h2p = np.where(h2p < 0, h2p + 360.0, h2p)
     dLp = L2 - L1
     dCp = c2p - c1p
     zero = (c1p * c2p) == 0
     dh = h2p - h1p
     dh = np.where(dh > 180.0, dh - 360.0, np.where(dh < -180.0, dh + 360.0, dh))
     dh = np.where(zero, 0.0, dh)
-    dHp = 2.0 * np.sqrt(c1p * c2p) * np.sin(np.radians(dh) / 2.0)
+    dHp = 2.0 * np.sqrt(c1p * c2p) * np.sin(dh * (rad / 2.0))
     Lp = 0.5 * (L1 + L2)
     Cp = 0.5 * (c1p + c2p)
     hsum = h1p + h2p
     hp = np.where(np.abs(h1p - h2p) <= 180.0, hsum / 2.0,
                   np.where(hsum < 360.0, (hsum + 360.0) / 2.0, (hsum - 360.0) / 2.0))
     hp = np.where(zero, hsum, hp)
-    t = (1.0 - 0.17 * np.cos(np.radians(hp - 30.0)) + 0.24 * np.cos(np.radians(2.0 * hp))
-         + 0.32 * np.cos(np.radians(3.0 * hp + 6.0)) - 0.20 * np.cos(np.radians(4.0 * hp - 63.0)))
-    d_theta = 30.0 * np.exp(-(((hp - 275.0) / 25.0) ** 2))
-    cp7 = Cp ** 7
+    hr = hp * rad
+    t = (1.0 - 0.17 * np.cos(hr - 30.0 * rad) + 0.24 * np.cos(2.0 * hr)
+         + 0.32 * np.cos(3.0 * hr + 6.0 * rad) - 0.20 * np.cos(4.0 * hr - 63.0 * rad))
+    q = (hp - 275.0) / 25.0
+    d_theta = 30.0 * np.exp(-q * q)
+    cp7 = _seventh_power(Cp)
     rc = 2.0 * np.sqrt(cp7 / (cp7 + 25.0 ** 7))
-    sl = 1.0 + 0.015 * (Lp - 50.0) ** 2 / np.sqrt(20.0 + (Lp - 50.0) ** 2)
+    lq = (Lp - 50.0) * (Lp - 50.0)
+    sl = 1.0 + 0.015 * lq / np.sqrt(20.0 + lq)
     sc = 1.0 + 0.045 * Cp
     sh = 1.0 + 0.015 * Cp * t
-    rt = -np.sin(np.radians(2.0 * d_theta)) * rc
+    rt = -np.sin(d_theta * (2.0 * rad)) * rc
     tl, tc, th = dLp / (kL * sl), dCp / (kC * sc), dHp / (kH * sh)
     return np.sqrt(tl * tl + tc * tc + th * th + rt * tc * th)

@@ -68,7 +68,7 @@ def footprint_centre(m, area_mapped, nadir, k, expected_mm2, mode: str):
 def outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
     """Unit outward normals (N, 2) of a closed outline, from its neighbours ``step`` points either side."""
     tangent = _shifted(outline, step) - _shifted(outline, -step)
-    tangent /= np.maximum(np.hypot(tangent[:, :1], tangent[:, 1:]), 1e-12)
+    tangent /= np.maximum(np.sqrt((tangent * tangent).sum(axis=1, keepdims=True)), 1e-12)
     nxt = _shifted(outline, 1)
     ccw = (outline[:, 0] * nxt[:, 1] - nxt[:, 0] * outline[:, 1]).sum() > 0
     normal = np.column_stack([tangent[:, 1], -tangent[:, 0]])
@@ -131,8 +131,9 @@ def _shape_residuals(point_sets, round_, half):
         c, sn = np.cos(p[..., 2:3]), np.sin(p[..., 2:3])
         qx = np.abs(dx * c + dy * sn) - p[..., 3:4] * hx
         qy = np.abs(dy * c - dx * sn) - p[..., 3:4] * hy
-        box = np.where((qx > 0) | (qy > 0), np.hypot(np.maximum(qx, 0.0), np.maximum(qy, 0.0)), np.maximum(qx, qy))
-        return np.where(round_, np.hypot(dx, dy) - p[..., 3:4] * hx, box) * mask
+        ox, oy = np.maximum(qx, 0.0), np.maximum(qy, 0.0)          # (np.hypot is slow)
+        box = np.where((qx > 0) | (qy > 0), np.sqrt(ox * ox + oy * oy), np.maximum(qx, qy))
+        return np.where(round_, np.sqrt(dx * dx + dy * dy) - p[..., 3:4] * hx, box) * mask
 
     return residual, mask[:, 0, :]
 

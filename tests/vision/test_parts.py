@@ -43,6 +43,8 @@ SHARMA_PAIRS = [
 def test_ciede2000_published_pairs(lab1, lab2, expected):
     assert float(delta_e_2000(lab1, lab2)) == pytest.approx(expected, abs=1e-4)
     assert float(delta_e_2000(lab2, lab1)) == pytest.approx(expected, abs=1e-4)      # symmetric
+    signed_zeros = [tuple(-0.0 if c == 0 else c for c in lab) for lab in (lab1, lab2)]
+    assert float(delta_e_2000(*signed_zeros)) == pytest.approx(expected, abs=1e-4)    # a grey's hue never counts
     assert float(colour.delta_E(np.array(lab1), np.array(lab2), method="CIE 2000")) == pytest.approx(expected, abs=1e-4)
 
 
