@@ -58,7 +58,7 @@ def linearised_gray(image) -> np.ndarray:
     gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
     if gray.dtype != np.uint8:
         gray = np.clip(gray, 0, 255).astype(np.uint8)
-    return _LIN_LUT[gray]
+    return cv2.LUT(gray, _LIN_LUT)
 
 
 @functools.lru_cache(maxsize=8)
@@ -149,6 +149,53 @@ def refine_corners(lin: np.ndarray, corners: np.ndarray):
     return np.where(good[:, None, None], out, corners), good
 
 
+@functools.lru_cache(maxsize=256)
+def _cells(dictionary_name: str, marker_id: int) -> np.ndarray:
+    """The marker's cells, border included ((n + 2) x (n + 2), True where ink), in its image's orientation."""
+    d = aruco_dictionary(dictionary_name)
+    return d.generateImageMarker(marker_id, d.markerSize + 2) < 128
+
+
+def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str) -> bool:
+    """Whether every marker's cells, read at their centres through its corners, are its id's pattern
+    (one cell in error allowed): the ink level from the border cells, the paper level from a ring just
+    outside, the threshold half way."""
+    n = aruco_dictionary(dictionary_name).markerSize + 2
+    centres = np.arange(n) + 0.5
+    gx, gy = np.meshgrid(centres, centres)
+    ring = np.concatenate([np.column_stack([centres, np.full(n, -0.5)]), np.column_stack([centres, np.full(n, n + 0.5)]),
+                           np.column_stack([np.full(n, -0.5), centres]), np.column_stack([np.full(n, n + 0.5), centres])])
+    local = np.concatenate([np.column_stack([gx.ravel(), gy.ravel()]), ring]).astype(np.float32)
+    square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
+    pts = np.concatenate([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
+                          for c in corners])
+    values = cv2.remap(lin, pts[:, 0].reshape(1, -1), pts[:, 1].reshape(1, -1), cv2.INTER_LINEAR,
+                       borderMode=cv2.BORDER_REPLICATE).reshape(len(corners), -1)
+    border = np.zeros((n, n), bool)
+    border[[0, -1], :] = border[:, [0, -1]] = True
+    for v, marker_id in zip(values, ids):
+        cells = v[: n * n].reshape(n, n)
+        threshold = 0.5 * (np.median(cells[border]) + np.median(v[n * n:]))
+        if int(((cells < threshold) != _cells(dictionary_name, int(marker_id))).sum()) > 1:
+            return False
+    return True
+
+
+def _track(lin: np.ndarray, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
+    """The expected markers where they were (a camera that has not moved, or moved by a pixel or two):
+    corners refined from the edges next to the expected ones, identities read from the cells. None if
+    any marker is not found so (then the markers are searched for)."""
+    ids = sorted(expected)
+    rough = np.array([np.asarray(expected[i], float).reshape(4, 2) for i in ids])
+    refined, good = refine_corners(lin, rough)
+    if not good.all():
+        return None
+    refined, good = refine_corners(lin, refined)          # again, from corners that are now close
+    if not good.all() or not _cells_match(lin, refined, ids, dictionary_name):
+        return None
+    return [MarkerDetection(int(i), refined[k], True) for k, i in enumerate(ids)]
+
+
 def _detect_in_windows(gray, detector, expected: dict):
     """Look for each expected marker only in a window around where it was: (ids, corners) or None if
     any expected marker is not found there (then the caller searches the whole photo)."""
@@ -182,10 +229,16 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None) ->
     dictionary_name : str
         The cell file's dictionary name, e.g. ``aruco_4x4_50``.
     expected : dict of id -> corners (4, 2) px, optional
-        Where the markers were at calibration. They are then looked for in small windows there first
-        (a fraction of the full search's time); if any is missing the whole photo is searched.
+        Where the markers were at calibration. They are first refined from the edges right there and
+        checked by their cells (a camera that has not moved); failing that, looked for in small windows
+        there; if any is still missing, the whole photo is searched.
     """
     gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
+    lin = linearised_gray(gray)
+    if expected:
+        tracked = _track(lin, dictionary_name, expected)
+        if tracked is not None:
+            return tracked
     detector = _detector(dictionary_name)
     windowed = _detect_in_windows(gray, detector, expected) if expected else None
     if windowed is not None:
@@ -195,6 +248,6 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None) ->
     if ids is None or len(ids) == 0:
         return []
     rough = np.array([np.asarray(c).reshape(4, 2) for c in corners], dtype=float)
-    refined, good = refine_corners(linearised_gray(gray), rough)
+    refined, good = refine_corners(lin, rough)
     found = [MarkerDetection(int(i), refined[k], bool(good[k])) for k, i in enumerate(np.ravel(ids))]
     return sorted(found, key=lambda d: d.id)
