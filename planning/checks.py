@@ -16,7 +16,8 @@ from planning.angles import wrap_angle
 from planning.arm import JOINT_NAMES, Arm, Reason
 from planning.motion import SampledSegment
 
-__all__ = ["CheckContext", "Rejection", "first_failure", "first_failure_in", "grip_fit_rejection", "jaw_width_mm"]
+__all__ = ["CheckContext", "Rejection", "first_failure", "first_failure_in", "first_failing_segment",
+           "grip_fit_rejection", "jaw_width_mm"]
 
 _LINK_POINTS = 6  # points tested along each moving link for keep-out zones
 
@@ -115,6 +116,14 @@ def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Re
 
 def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: float = 0.0) -> Rejection | None:
     """:func:`first_failure` over consecutive segments at once (one pass over all their samples)."""
+    found = first_failing_segment(ctx, segments, t0_s)
+    return None if found is None else found[1]
+
+
+def first_failing_segment(ctx: CheckContext, segments: list[SampledSegment],
+                          t0_s: float = 0.0) -> tuple[int, Rejection] | None:
+    """The index of the first segment with a failing sample and that sample's :class:`Rejection`
+    (:func:`first_failure` over consecutive segments at once); None if every sample passes."""
     if not segments:
         return None
     starts = np.cumsum([0.0] + [s.duration_s for s in segments[:-1]]) + t0_s
@@ -130,8 +139,9 @@ def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: fl
     if rej is None:
         return None
     index = int(np.searchsorted(joined.t_s + t0_s, rej.time_s - 1e-9))
-    seg = segments[int(kinds[min(index, len(kinds) - 1)])].segment
-    return Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
+    k = int(kinds[min(index, len(kinds) - 1)])
+    seg = segments[k].segment
+    return k, Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
 
 
 def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_steps=None,

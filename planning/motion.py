@@ -19,7 +19,7 @@ from planning.paths import ArcPath, StraightPath, TimeScaling, peak_rate, time_s
 
 __all__ = ["SegmentKind", "Segment", "SampledSegment", "durations_s", "sample_segments"]
 
-_DENSE = 257            # samples along s used to size the duration from joint speeds
+_DENSE = 129            # samples along s used to size the duration from joint speeds
 _SPEED_MARGIN = 1.01    # stretch a little beyond the joint-speed bound: samples are checked exactly
 
 

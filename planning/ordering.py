@@ -42,15 +42,19 @@ def order_nearest_two_opt(start_xy, part_xy, bin_xy, max_rounds: int = 20) -> li
         k = left.pop(int(np.argmin(d)))
         order.append(k)
         here = bin_xy[k]
+    # every leg's length once: from the start to each part, from each part's bin to each other part
+    from_start = np.linalg.norm(part_xy - np.asarray(start_xy, float), axis=1)
+    between = np.linalg.norm(part_xy[None, :, :] - bin_xy[:, None, :], axis=2)        # [bin of a, part b]
     best = order_cost_mm(order, start_xy, part_xy, bin_xy)
-    for _ in range(max_rounds):
-        improved = False
-        for trial in _neighbours(order):
-            cost = order_cost_mm(trial, start_xy, part_xy, bin_xy)
-            if cost < best - 1e-9:
-                order, best, improved = trial, cost, True
-        if not improved:
+    for _ in range(max_rounds):              # each round moves to the best neighbour, while one is better
+        trials = np.array(list(_neighbours(order)), dtype=int).reshape(-1, n)
+        if not len(trials):
             break
+        costs = from_start[trials[:, 0]] + between[trials[:, :-1], trials[:, 1:]].sum(axis=1)
+        j = int(np.argmin(costs))
+        if costs[j] >= best - 1e-9:
+            break
+        order, best = trials[j].tolist(), float(costs[j])
     return order
 
 

@@ -86,6 +86,11 @@ def _as_point(p, name: str) -> np.ndarray:
     return arr
 
 
+def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """a x b for two 3-vectors (np.cross costs many times more for one pair)."""
+    return np.array([a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]])
+
+
 def _fmt(p: np.ndarray) -> str:
     return "(" + ", ".join(f"{v:.3f}" for v in p) + ")"
 
@@ -141,16 +146,16 @@ class ArcPath:
             if np.linalg.norm(a - b) < 1e-9:
                 raise PathGeometryError(f"arc: {na} {_fmt(a)} and {nb} {_fmt(b)} coincide")
         a, b = via - p0, p1 - p0
-        n = np.cross(a, b)
+        n = _cross(a, b)
         nn = float(np.dot(n, n))
         scale = np.linalg.norm(a) * np.linalg.norm(b)
         if np.sqrt(nn) <= 1e-9 * scale:
             raise PathGeometryError(f"arc: p0 {_fmt(p0)}, via {_fmt(via)} and p1 {_fmt(p1)} are collinear")
         # circumcentre of the triangle (p0, via, p1), in 3D
-        centre = p0 + (np.dot(a, a) * np.cross(b, n) + np.dot(b, b) * np.cross(n, a)) / (2.0 * nn)
+        centre = p0 + (np.dot(a, a) * _cross(b, n) + np.dot(b, b) * _cross(n, a)) / (2.0 * nn)
         n_hat = n / np.sqrt(nn)
         e1 = (p0 - centre) / np.linalg.norm(p0 - centre)
-        e2 = np.cross(n_hat, e1)
+        e2 = _cross(n_hat, e1)
         d1 = p1 - centre
         sweep = float(np.arctan2(np.dot(d1, e2), np.dot(d1, e1))) % (2.0 * np.pi)
         object.__setattr__(self, "p0", p0)

@@ -9,6 +9,8 @@ A pick, from wherever the tool is (DESIGN.md sec. 8)::
 Every sample of every segment goes through :func:`planning.checks.first_failure`. A part whose pick
 fails any check is rejected with that check's reason, segment, time and value; the arm does not move
 for it and the plan goes on with the next part. Only checked samples ever reach the joint sequence.
+The remaining picks are chained as if all pass and timed, sampled and checked in one pass; after a
+failure the picks behind it are chained again from where the last kept pick ends.
 """
 
 from __future__ import annotations
@@ -18,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from planning.arm import Arm
-from planning.checks import CheckContext, Rejection, first_failure, first_failure_in, grip_fit_rejection
+from planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
 from planning.errors import CellFileError, Problem
 from planning.motion import SampledSegment, Segment, SegmentKind, durations_s, sample_segments
 from planning.ordering import order_nearest_two_opt
@@ -193,13 +195,18 @@ class Planner:
         seg = Segment(SegmentKind.SWING, None, part_id=part_id, joints_rad=(np.asarray(q0, float), sol.joints_rad[0]))
         return [seg], target
 
-    def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], Rejection | None]:
-        """Time, sample and check a pick's segments together (one IK call for each stage)."""
+    def _check_all(self, segments: list[Segment], t0_s: float) -> tuple[list[SampledSegment], tuple | None]:
+        """Time, sample and check consecutive segments together (one IK call for each stage); the
+        failure is (index of the first failing segment, its Rejection), or None."""
         m = self.cell.motion
         durations = durations_s(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
         sampled = sample_segments(segments, durations, self.arm, self.scaling, self.dt_s)
-        rej = first_failure_in(self.ctx, sampled, t0_s)
-        return sampled, rej
+        return sampled, first_failing_segment(self.ctx, sampled, t0_s)
+
+    def _pick_end(self, part: PartTarget) -> np.ndarray:
+        """Where a pick leaves the tool: above the part's bin at safe height."""
+        b = self.cell.bins[self.bin_for(part)]
+        return np.array([b.x, b.y, self.safe_z])
 
     # ------------------------------------------------------------ the plan
     def bin_for(self, part: PartTarget) -> str | None:
@@ -229,8 +236,7 @@ class Planner:
         start_mm = self.arm.forward(q0[None])[0]
         outcomes: dict[str, PartOutcome] = {}
         candidates: list[PartTarget] = []
-        for part in parts:
-            rej = self._precheck(part)
+        for part, rej in zip(parts, self._precheck(parts)):
             if rej is not None:
                 outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), rej)
             else:
@@ -254,19 +260,29 @@ class Planner:
                 candidates = []
             else:
                 lead, here = swing
-        for part in candidates:
-            bin_name = self.bin_for(part)
-            segs = lead + self.pick_segments(part, bin_name, here)
-            sampled, rej = self._check_all(segs, t)
-            if rej is not None:
-                outcomes[part.id] = PartOutcome(part, "rejected", bin_name, rej)
-                continue
-            picks.append(PlannedPick(part.id, part.class_name, bin_name, sampled, t))
-            outcomes[part.id] = PartOutcome(part, "planned", bin_name)
-            accepted += sampled
-            t += sum(s.duration_s for s in sampled)
-            here = sampled[-1].xyz_mm[-1]
-            lead = []
+        while candidates:
+            # every remaining pick, chained as if all pass, timed, sampled and checked in one pass; the
+            # picks before the first failure are kept, the failing one is rejected, the rest go again
+            runs, start_here, first_lead = [], here, lead
+            for part in candidates:
+                runs.append(first_lead + self.pick_segments(part, self.bin_for(part), start_here))
+                start_here, first_lead = self._pick_end(part), []
+            flat = [seg for segs in runs for seg in segs]
+            sampled, failure = self._check_all(flat, t)
+            bounds = np.cumsum([0] + [len(segs) for segs in runs])
+            failed = len(runs) if failure is None else int(np.searchsorted(bounds, failure[0], side="right")) - 1
+            for k in range(failed):
+                part, own = candidates[k], sampled[bounds[k]:bounds[k + 1]]
+                picks.append(PlannedPick(part.id, part.class_name, self.bin_for(part), own, t))
+                outcomes[part.id] = PartOutcome(part, "planned", self.bin_for(part))
+                accepted += own
+                t += sum(s.duration_s for s in own)
+                here, lead = own[-1].xyz_mm[-1], []
+            if failure is None:
+                break
+            part = candidates[failed]
+            outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), failure[1])
+            candidates = candidates[failed + 1:]
         home_mm = self.arm.forward(self.home_rad[None])[0]
         q_here = accepted[-1].joints_rad[-1] if accepted else q0
         if end_at_home and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
@@ -278,36 +294,53 @@ class Planner:
             else:                            # home is a pose Cartesian moves cannot end in: swing to it
                 q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]
                 segs = lead + segs + [Segment(SegmentKind.SWING, None, joints_rad=(q_safe, self.home_rad))]
-            sampled, rej = self._check_all(segs, t)
-            if rej is None:
+            sampled, failure = self._check_all(segs, t)
+            if failure is None:
                 accepted += sampled
             else:
-                warnings.append(f"the move back to the home pose failed a check and was left out: {rej.describe()}")
+                warnings.append(f"the move back to the home pose failed a check and was left out: "
+                                f"{failure[1].describe()}")
         ordered = [outcomes[p.id] for p in parts]
         return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings,
                     speed_scale=self.speed_scale)
 
-    def _precheck(self, part: PartTarget) -> Rejection | None:
-        """Reasons known before any motion: the photo's verdict, no bin, grip fit, grip or above-part
-        point unreachable."""
-        if part.vision_status not in ("ok", "unknown_colour"):
-            return Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
-        if self.bin_for(part) is None:
-            return Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no 'reject' bin")
-        rej = grip_fit_rejection(part, self.cell.arm.gripper)
-        if rej is not None:
-            return rej
-        x, y = part.xy_mm
-        grip_z = part.height_mm - self.cell.motion.grip_depth_mm
-        pts = np.array([[x, y, grip_z], [x, y, self.safe_z]])
+    def _precheck(self, parts: list[PartTarget]) -> list[Rejection | None]:
+        """Reasons known before any motion, per part: the photo's verdict, no bin, grip fit, grip or
+        above-part point unreachable (every part's two points through one IK call and one check pass,
+        again after each point that fails)."""
+        out: list[Rejection | None] = [None] * len(parts)
+        probed = []
+        for k, part in enumerate(parts):
+            if part.vision_status not in ("ok", "unknown_colour"):
+                out[k] = Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
+            elif self.bin_for(part) is None:
+                out[k] = Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no "
+                                                    f"'reject' bin")
+            else:
+                out[k] = grip_fit_rejection(part, self.cell.arm.gripper)
+                if out[k] is None:
+                    probed.append(k)
+        if not probed:
+            return out
+        grip_depth = self.cell.motion.grip_depth_mm
+        pts = np.array([[*parts[k].xy_mm, z] for k in probed
+                        for z in (parts[k].height_mm - grip_depth, self.safe_z)], float)
         sol = self.arm.inverse(pts)
-        for i, where in enumerate(("descend", "transfer")):
-            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[i]), 0.0, np.zeros(1), pts[i:i + 1],
-                                   sol.joints_rad[i:i + 1], sol.reason[i:i + 1])
-            bad = first_failure(self.ctx, probe)
-            if bad is not None:
-                return Rejection(bad.check, bad.detail, where, None, bad.value, bad.limit, bad.unit)
-        return None
+        first = 0
+        while first < len(pts):
+            # the probes are separate points, not a motion: no speeds or branch flips between them; the
+            # sample "times" are their indices, so the failure says which point it is
+            n = len(pts) - first
+            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[first]), 0.0, np.arange(n, dtype=float),
+                                   pts[first:], sol.joints_rad[first:], sol.reason[first:])
+            bad = first_failure(self.ctx, probe, dt_steps=np.zeros(n - 1), flip_allowed=np.ones(n - 1, bool))
+            if bad is None:
+                break
+            i = first + int(round(bad.time_s))
+            out[probed[i // 2]] = Rejection(bad.check, bad.detail, ("descend", "transfer")[i % 2], None,
+                                            bad.value, bad.limit, bad.unit)
+            first = (i // 2 + 1) * 2
+        return out
 
     def _join(self, sampled: list[SampledSegment], q0, start_mm, t0_s):
         """Concatenate segments on one clock (each segment's first sample is the previous one's last)."""
