@@ -126,16 +126,19 @@ def first_failing_segment(ctx: CheckContext, segments: list[SampledSegment],
     (:func:`first_failure` over consecutive segments at once); None if every sample passes."""
     if not segments:
         return None
-    starts = np.cumsum([0.0] + [s.duration_s for s in segments[:-1]]) + t0_s
-    kinds = np.concatenate([np.full(len(s.t_s), k) for k, s in enumerate(segments)])
+    counts = [len(s.t_s) for s in segments]
+    starts = np.cumsum([0.0] + [s.duration_s for s in segments[:-1]])
+    kinds = np.repeat(np.arange(len(segments)), counts)
+    local_t = np.concatenate([s.t_s for s in segments])
     joined = SampledSegment(segments[0].segment, sum(s.duration_s for s in segments),
-                            np.concatenate([t0 + s.t_s for t0, s in zip(starts, segments)]) - t0_s,
+                            local_t + starts[kinds],
                             np.concatenate([s.xyz_mm for s in segments]),
                             np.concatenate([s.joints_rad for s in segments]),
                             np.concatenate([s.reason for s in segments]))
-    swing = np.concatenate([np.full(len(s.t_s), s.segment.kind.value == "swing") for s in segments])
-    rej = first_failure(ctx, joined, t0_s, dt_steps=np.concatenate(
-        [np.diff(s.t_s, prepend=s.t_s[0]) for s in segments])[1:], flip_allowed=swing[1:] | swing[:-1])
+    swing = np.repeat([s.segment.kind.value == "swing" for s in segments], counts)
+    steps = np.diff(local_t)
+    steps[np.cumsum(counts)[:-1] - 1] = 0.0             # a segment's first sample repeats the last one's
+    rej = first_failure(ctx, joined, t0_s, dt_steps=steps, flip_allowed=swing[1:] | swing[:-1])
     if rej is None:
         return None
     index = int(np.searchsorted(joined.t_s + t0_s, rej.time_s - 1e-9))

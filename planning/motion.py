@@ -103,21 +103,21 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
     """Sample segments on the sequence clock, both ends included (M = duration / dt + 1 samples each),
     with one IK call for all."""
     pts, times, swings = [], [], {}
-    for k, (seg, duration) in enumerate(zip(segments, durations)):
-        n = int(round(duration / dt_s))
-        t = np.arange(n + 1) * dt_s
+    counts = [int(round(duration / dt_s)) + 1 for duration in durations]
+    # every segment's path parameter from one time-scaling call (the last sample exactly at s = 1)
+    tau = np.concatenate([np.arange(c) / (c - 1) if c > 1 else np.ones(1) for c in counts])
+    s_all = np.split(time_scaling(scaling, tau)[0], np.cumsum(counts)[:-1])
+    for k, (seg, count, sv) in enumerate(zip(segments, counts, s_all)):
+        t = np.arange(count) * dt_s
+        sv[-1] = 1.0
         if seg.joints_rad is not None:
-            sv, _, _ = time_scaling(scaling, t / duration)
-            sv[-1] = 1.0
             q0, q1 = (np.asarray(q, float) for q in seg.joints_rad)
             q = q0 + sv[:, None] * (q1 - q0)
             swings[k] = q
             xyz = arm.forward(q)
         elif seg.path is None:
-            xyz = np.repeat(seg.hold_mm[None, :], n + 1, axis=0)
+            xyz = np.repeat(seg.hold_mm[None, :], count, axis=0)
         else:
-            sv, _, _ = time_scaling(scaling, t / duration)
-            sv[-1] = 1.0
             xyz = seg.path.points(sv)
         pts.append(xyz)
         times.append(t)

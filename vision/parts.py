@@ -38,8 +38,7 @@ from vision.topface import (
     fit_top_faces,
     footprint_centre,
     min_rect,
-    outward_normals,
-    polygon_area_centroid,
+    outlines_geometry,
     top_face_guess,
 )
 from vision.whitebalance import Illumination, fit_illumination
@@ -186,8 +185,9 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         return Detection([], illumination, notes)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts)
     search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
-    blobs = [blob for group, window in enumerate(classified.windows, start=1)
-             for blob in _blobs_in_window(search, group, window)]
+    outlines = [o for group, window in enumerate(classified.windows, start=1)
+                for o in _outlines_in_window(search, group, window)]
+    blobs = _blobs(search, outlines)
     nadir = search.nadir
     fits = iter(fit_top_faces([b.problem for b in blobs if b.problem is not None]))
     found: list[DetectedPart] = []
@@ -240,27 +240,41 @@ class _Search:
         self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
 
 
-def _blobs_in_window(search: _Search, group: int, window):
-    """The blobs of every class in one group's window of classified pixels (a blob of another group
+@dataclass
+class _Outline:
+    """One contour of one class's colour (or an unknown colour), before it is measured: its class, its
+    outline (photo px), its pixels ``sub`` and where they sit in the searched rectangle (x, y)."""
+
+    name: str
+    cls: object
+    height_mm: float
+    k: float
+    outline_px: np.ndarray
+    sub: np.ndarray
+    x: int
+    y: int
+
+
+def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
+    """The outlines of every class in one group's window of classified pixels (a blob of another group
     that reaches into the window is left to its own)."""
     wx, wy, ww, wh = window
-    classified, edge_band, mapping, cell = search.classified, search.edge_band, search.mapping, search.cell
-    parallax, seen_as, names, nadir, cz = search.parallax, search.seen_as, search.names, search.nadir, search.cz
+    classified, names, cz = search.classified, search.names, search.cz
     rh, rw = classified.label.shape
     x0, y0 = max(wx - 2, 0), max(wy - 2, 0)               # a margin for the morphology
     x1, y1 = min(wx + ww + 2, rw), min(wy + wh + 2, rh)
     labels = classified.label[y0:y1, x0:x1]
     u0, v0 = classified.origin
-    kernel, tallest, typical = search.kernel, search.tallest, search.typical
+    out = []
     for k_label in np.flatnonzero(np.bincount(labels.ravel(), minlength=len(names) + 2)[1:]) + 1:
-        mask = cv2.morphologyEx((labels == k_label).astype(np.uint8), cv2.MORPH_OPEN, kernel)
-        mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, kernel)
+        mask = cv2.morphologyEx((labels == k_label).astype(np.uint8), cv2.MORPH_OPEN, search.kernel)
+        mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, search.kernel)
         contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
         unknown = k_label == len(names) + 1
         name = "unknown" if unknown else names[k_label - 1]
-        cls = None if unknown else cell.parts[name]
-        height = tallest if unknown else cls.height_mm
-        k = cz / (cz - height) if parallax else 1.0
+        cls = None if unknown else search.cell.parts[name]
+        height = search.tallest if unknown else cls.height_mm
+        k = cz / (cz - height) if search.parallax else 1.0
         for contour in contours:
             if len(contour) < 10:                             # a speck of a few pixels
                 continue
@@ -270,41 +284,62 @@ def _blobs_in_window(search: _Search, group: int, window):
             x, y, w, h = cv2.boundingRect(contour)
             sub = np.zeros((h, w), np.uint8)
             cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
-            x, y = x + x0, y + y0                             # rectangle px
-            whole = _whole(outline + (x0 + u0, y0 + v0), sub, x + u0, y + v0, mapping, k)
-            m, outline_mm, _, area, _ = whole[0]
-            if unknown and area < _MIN_UNKNOWN_MM2:
-                continue
-            if not unknown and area < _NOISE_RATIO * expected_area_mm2(cls):
-                continue                    # specks of the class's colour, not a part seen in part
-            inside = sub > 0
-            de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
-            cut = bool(edge_band[y:y + h, x:x + w][inside].any())
-            mode = seen_as or (cls.seen_as if cls is not None else "auto")
-            pieces, status, reason = whole, "ok", ""
-            if unknown:
-                if cut:
-                    status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
-                elif area > _UNKNOWN_MAX_RATIO * typical:
-                    status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
-                else:
-                    status, reason = "unknown_colour", "colour matches no class"
-            elif cut:
-                status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
+            out.append(_Outline(name, cls, float(height), k, (outline + (x0 + u0, y0 + v0)).astype(float), sub,
+                                x + x0, y + y0))
+    return out
+
+
+def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
+    """Measure every outline in table mm (one mapping, areas, centroids and normals for all), then give
+    each blob its verdict, its pieces and, where wanted, its top-face fit problem."""
+    if not outlines:
+        return []
+    classified, mapping, nadir, parallax = search.classified, search.mapping, search.nadir, search.parallax
+    u0, v0 = classified.origin
+    lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
+    outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
+    areas, centroids, normals = outlines_geometry(outlines_mm)
+    blobs = []
+    for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
+        name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
+        unknown = cls is None
+        area = float(area_mapped) / (k * k)
+        if unknown and area < _MIN_UNKNOWN_MM2:
+            continue
+        if not unknown and area < _NOISE_RATIO * expected_area_mm2(cls):
+            continue                    # specks of the class's colour, not a part seen in part
+        h, w = sub.shape
+        inside = sub > 0
+        moments = cv2.moments(sub, binaryImage=True)
+        pixel_uv = (moments["m10"] / moments["m00"] + x + u0, moments["m01"] / moments["m00"] + y + v0)
+        whole = [(m, outline_mm, o.outline_px, area, pixel_uv)]
+        de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
+        cut = bool(search.edge_band[y:y + h, x:x + w][inside].any())
+        mode = search.seen_as or (cls.seen_as if cls is not None else "auto")
+        pieces, status, reason = whole, "ok", ""
+        if unknown:
+            if cut:
+                status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
+            elif area > _UNKNOWN_MAX_RATIO * search.typical:
+                status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
             else:
-                expected = expected_area_mm2(cls)
-                ratio = area / expected
-                if ratio < _MIN_RATIO:
-                    status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
-                elif ratio > _MAX_RATIO:
-                    pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
-            blob = _Blob(name, cls, float(height), k, mode, status, reason, pieces, outline_mm,
-                         outward_normals(outline_mm), m, de, min_rect(outline_mm, k))
-            if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
-                yaw = blob.rect[2]
-                guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
-                blob.problem = TopFaceProblem.of_class(outline_mm, blob.normals, guess, nadir, k, cls, yaw)
-            yield blob
+                status, reason = "unknown_colour", "colour matches no class"
+        elif cut:
+            status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
+        else:
+            expected = expected_area_mm2(cls)
+            ratio = area / expected
+            if ratio < _MIN_RATIO:
+                status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
+            elif ratio > _MAX_RATIO:
+                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
+        blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
+                     min_rect(outline_mm, k))
+        if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
+            guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
+            blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
+        blobs.append(blob)
+    return blobs
 
 
 def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:
@@ -342,7 +377,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
     xy = mapping(uv).astype(np.float32)
     crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_MAX_ITER, 50, 0.01)
     cv2.setRNGSeed(0)
-    _, labels, _ = cv2.kmeans(xy, n, None, crit, 4, cv2.KMEANS_PP_CENTERS)
+    _, labels, _ = cv2.kmeans(xy, n, None, crit, 2, cv2.KMEANS_PP_CENTERS)
     labels = labels.ravel()
     per_px = (mapping.mm_per_px(uv[:1]) ** 2)[0]
     pieces = []
@@ -357,14 +392,3 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
         pieces.append((pts_mm.mean(axis=0), hull, mapping.inverse(hull), float(area),
                        (float(uv[sel, 0].mean()), float(uv[sel, 1].mean()))))
     return pieces, "ok", f"split from {n} touching parts"
-
-
-def _whole(outline_px, sub, ox, oy, mapping, k):
-    """The blob (outline in photo px, its pixels ``sub`` at (ox, oy)) as one piece: (mapped centroid,
-    outline mm, outline px, area / k^2, pixel centroid)."""
-    outline = outline_px.astype(float)
-    outline_mm = mapping(outline)
-    area, m = polygon_area_centroid(outline_mm)
-    moments = cv2.moments(sub, binaryImage=True)
-    pixel_uv = (moments["m10"] / moments["m00"] + ox, moments["m01"] / moments["m00"] + oy)
-    return [(m, outline_mm, outline, area / (k * k), pixel_uv)]

@@ -18,27 +18,44 @@ import numpy as np
 
 from vision.robust import masked_median, robust_lm, soft_l1
 
-__all__ = ["polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
+__all__ = ["outlines_geometry", "polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
            "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
 
 
-def _shifted(a: np.ndarray, s: int) -> np.ndarray:
-    """``a`` rotated so that row i holds row i + s (np.roll(a, -s, axis=0), without its overhead)."""
-    s %= len(a)
-    return np.concatenate([a[s:], a[:s]])
+def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
+    """Areas (B,), centroids (B, 2) and unit outward normals (one (N_b, 2) array each) of closed
+    outlines, all at once. The area and centroid are the polygon's (shoelace); each normal is
+    perpendicular to the chord between the neighbours ``step`` points either side, turned outward."""
+    lengths = np.array([len(o) for o in outlines])
+    starts = np.concatenate([[0], np.cumsum(lengths)[:-1]])
+    pts = np.concatenate(outlines).astype(float)
+    owner = np.repeat(np.arange(len(outlines)), lengths)
+    local = np.arange(len(pts)) - starts[owner]
+    size = lengths[owner]
+
+    def shifted(s):
+        return pts[starts[owner] + (local + s) % size]
+
+    nxt = shifted(1)
+    cross = pts[:, 0] * nxt[:, 1] - nxt[:, 0] * pts[:, 1]
+    twice_area = np.add.reduceat(cross, starts)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cx = np.add.reduceat((pts[:, 0] + nxt[:, 0]) * cross, starts) / (3.0 * twice_area)
+        cy = np.add.reduceat((pts[:, 1] + nxt[:, 1]) * cross, starts) / (3.0 * twice_area)
+    flat = np.abs(twice_area) < 2e-9
+    centroids = np.column_stack([cx, cy])
+    if flat.any():
+        centroids[flat] = [o.mean(axis=0) for o, f in zip(outlines, flat) if f]
+    tangent = shifted(step) - shifted(-step)
+    tangent /= np.maximum(np.sqrt((tangent * tangent).sum(axis=1, keepdims=True)), 1e-12)
+    normal = np.column_stack([tangent[:, 1], -tangent[:, 0]]) * np.where(twice_area > 0, 1.0, -1.0)[owner, None]
+    return np.where(flat, 0.0, 0.5 * np.abs(twice_area)), centroids, np.split(normal, np.cumsum(lengths)[:-1])
 
 
 def polygon_area_centroid(xy: np.ndarray):
-    x, y = xy[:, 0], xy[:, 1]
-    nxt = _shifted(xy, 1)
-    xn, yn = nxt[:, 0], nxt[:, 1]
-    cross = x * yn - xn * y
-    area = 0.5 * cross.sum()
-    if abs(area) < 1e-9:
-        return 0.0, xy.mean(axis=0)
-    cx = ((x + xn) * cross).sum() / (6 * area)
-    cy = ((y + yn) * cross).sum() / (6 * area)
-    return abs(area), np.array([cx, cy])
+    """Area and centroid of one closed outline (:func:`outlines_geometry`)."""
+    area, centroid, _ = outlines_geometry([xy])
+    return float(area[0]), centroid[0]
 
 
 def expected_area_mm2(cls) -> float:
@@ -66,13 +83,8 @@ def footprint_centre(m, area_mapped, nadir, k, expected_mm2, mode: str):
 
 
 def outward_normals(outline: np.ndarray, step: int = 3) -> np.ndarray:
-    """Unit outward normals (N, 2) of a closed outline, from its neighbours ``step`` points either side."""
-    tangent = _shifted(outline, step) - _shifted(outline, -step)
-    tangent /= np.maximum(np.sqrt((tangent * tangent).sum(axis=1, keepdims=True)), 1e-12)
-    nxt = _shifted(outline, 1)
-    ccw = (outline[:, 0] * nxt[:, 1] - nxt[:, 0] * outline[:, 1]).sum() > 0
-    normal = np.column_stack([tangent[:, 1], -tangent[:, 0]])
-    return normal if ccw else -normal
+    """Unit outward normals (N, 2) of a closed outline (:func:`outlines_geometry`)."""
+    return outlines_geometry([outline], step)[2][0]
 
 
 _MAX_POINTS = 60            # outline points per fit (evenly thinned)

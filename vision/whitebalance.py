@@ -15,6 +15,7 @@ the paper at another level says so there.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import cv2
@@ -60,6 +61,7 @@ class Illumination:
                 "paper_at_centre_bgr": [round(float(x), 4) for x in self.field(self.width_px / 2, self.height_px / 2)]}
 
 
+@functools.lru_cache(maxsize=16)
 def _ring_points_local(size_mm: float, margin_mm: float, per_side: int = 8) -> np.ndarray:
     """Points in the marker's local frame (black square from -s/2 to s/2) on its white margin."""
     h = size_mm / 2
@@ -79,9 +81,9 @@ def _bilinear_linear(image_bgr: np.ndarray, uv: np.ndarray) -> np.ndarray:
     y0 = np.floor(uv[..., 1]).astype(int)
     fx = (uv[..., 0] - x0)[..., None].astype(np.float32)
     fy = (uv[..., 1] - y0)[..., None].astype(np.float32)
-    top = linear_of(image_bgr[y0, x0]) * (1 - fx) + linear_of(image_bgr[y0, x0 + 1]) * fx
-    bottom = linear_of(image_bgr[y0 + 1, x0]) * (1 - fx) + linear_of(image_bgr[y0 + 1, x0 + 1]) * fx
-    return top * (1 - fy) + bottom * fy
+    corners = linear_of(np.stack([image_bgr[y0, x0], image_bgr[y0, x0 + 1], image_bgr[y0 + 1, x0],
+                                  image_bgr[y0 + 1, x0 + 1]]))
+    return (corners[0] * (1 - fx) + corners[1] * fx) * (1 - fy) + (corners[2] * (1 - fx) + corners[3] * fx) * fy
 
 
 def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | None:
