@@ -52,21 +52,21 @@ def _distance2(planes, ref) -> np.ndarray:
     return d
 
 
-def _foreground(planes, background) -> np.ndarray:
-    """Pixels that differ from the table: CIE76 from its median colour beyond max(12, 4 x the table's own
-    spread). ``background`` is (median Lab, spread) or None (everything counts)."""
+def _table_masks(planes, background) -> tuple[np.ndarray, np.ndarray]:
+    """(foreground, unlike the table for an unknown colour): pixels whose CIE76 from the table's median
+    colour is beyond max(12, 4 x the table's own spread), and beyond 25. ``background`` is (median Lab,
+    spread) or None (everything counts)."""
     if background is None:
-        return np.ones(planes[0].shape, bool)
+        every = np.ones(planes[0].shape, bool)
+        return every, every
     median, spread = background
-    return _distance2(planes, median) > max(_FOREGROUND_MIN, 4.0 * spread) ** 2
+    d2 = _distance2(planes, median)
+    return d2 > max(_FOREGROUND_MIN, 4.0 * spread) ** 2, d2 > _UNKNOWN_FROM_TABLE ** 2
 
 
-def _unknown_mask(planes, background) -> np.ndarray:
-    """Saturated pixels that differ from the table's own colour (a colourful table is not a part)."""
-    saturated = planes[1] * planes[1] + planes[2] * planes[2] > _UNKNOWN_CHROMA ** 2
-    if background is None:
-        return saturated
-    return saturated & (_distance2(planes, background[0]) > _UNKNOWN_FROM_TABLE ** 2)
+def _saturated(planes) -> np.ndarray:
+    """Chroma above 30: a colourful pixel (an unknown colour if near no class and unlike the table)."""
+    return planes[1] * planes[1] + planes[2] * planes[2] > _UNKNOWN_CHROMA ** 2
 
 
 def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np.ndarray, np.ndarray]:
@@ -75,7 +75,7 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     planes = _planes(lab)
     refs = np.array([c.lab for c in classes.values()], np.float32)
     tolerances = np.array([c.tolerance for c in classes.values()], np.float32)
-    fg = _foreground(planes, background)
+    fg, unlike_table = _table_masks(planes, background)
     pairs = [np.flatnonzero((_distance2(planes, ref) < (_NEAR * tol) ** 2) & fg) for ref, tol in zip(refs, tolerances)]
     pixel = np.concatenate(pairs)
     which = np.repeat(np.arange(len(refs)), [len(p) for p in pairs])
@@ -87,16 +87,17 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     nearest = d00 == best[pixel]                          # per pixel, the nearest class
     label = np.zeros(len(lab), np.uint8)
     label[pixel[nearest]] = which[nearest] + 1
-    label[(label == 0) & _unknown_mask(planes, background)] = len(classes) + 1
+    label[(label == 0) & _saturated(planes) & unlike_table] = len(classes) + 1
     return label, best
 
 
 def _candidates(planes, classes: dict, background) -> np.ndarray:
     """Pixels worth a full-resolution look."""
-    near = _unknown_mask(planes, background)
+    fg, unlike_table = _table_masks(planes, background)
+    near = _saturated(planes) & unlike_table
     for cls in classes.values():
         near |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
-    return near & _foreground(planes, background)
+    return near & fg
 
 
 @dataclass(frozen=True)
