@@ -2,8 +2,9 @@
 
 A segment is a tool path (straight or arc) or a dwell (the gripper opens or closes while the arm holds
 still). Its duration comes first from the path length and the cell's ``speed_mm_s`` (the peak tool
-speed), then is stretched until every joint stays under its ``max_speed_deg_s``, then rounded up to a
-whole number of sample periods so that every sample of the joint sequence sits on one uniform clock.
+speed), rounded up to a whole number of sample periods so that every sample of the joint sequence
+sits on one uniform clock; a move whose samples ask a joint for more than its ``max_speed_deg_s`` is
+then stretched by that ratio and sampled again.
 """
 
 from __future__ import annotations
@@ -17,10 +18,9 @@ import numpy as np
 from planning.arm import Arm
 from planning.paths import ArcPath, StraightPath, TimeScaling, peak_rate, time_scaling
 
-__all__ = ["SegmentKind", "Segment", "SampledSegment", "durations_s", "sample_segments"]
+__all__ = ["SegmentKind", "Segment", "SampledSegment", "durations_s", "sample_segments", "timed_samples"]
 
-_DENSE = 129            # samples along s used to size the duration from joint speeds
-_SPEED_MARGIN = 1.01    # stretch a little beyond the joint-speed bound: samples are checked exactly
+_SPEED_MARGIN = 1.01    # stretch a little beyond the joint-speed ratio: samples are checked exactly
 
 
 class SegmentKind(str, Enum):
@@ -63,39 +63,49 @@ def _round_up(duration_s: float, dt_s: float) -> float:
 
 def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
                 dt_s: float, speed_scale: float = 1.0) -> list[float]:
-    """Durations of segments on the sequence clock (whole numbers of sample periods, at least one), with
-    one IK call for all: the larger of length x peak s' / speed and the time that keeps every joint under
-    its speed limit (from dq/ds on a dense grid, x 1.01); a dwell lasts ``dwell_s``. ``speed_scale`` < 1
-    slows every move (tool speed and joint speeds) by that factor, for a first careful run."""
-    out = [0.0] * len(segments)
-    moving = [i for i, seg in enumerate(segments) if seg.path is not None]
-    for i, seg in enumerate(segments):
+    """First durations of segments on the sequence clock (whole numbers of sample periods, at least
+    one): a move takes length x peak s' / speed; a joint-space swing keeps its slowest joint at the
+    scaling's peak rate under its speed limit; a dwell lasts ``dwell_s``. ``speed_scale`` < 1 slows
+    every move (tool speed and joint speeds) by that factor, for a first careful run. A move whose
+    joints would be too fast is stretched by :func:`timed_samples`."""
+    out = []
+    for seg in segments:
         if seg.joints_rad is not None:        # joint space: the slowest joint at the scaling's peak rate
             q0, q1 = seg.joints_rad
             need = float(np.max(np.abs(np.asarray(q1) - q0) / (arm.max_speed_rad_s * speed_scale))) * peak_rate(scaling)
-            out[i] = _round_up(max(need * _SPEED_MARGIN, dt_s), dt_s)
+            out.append(_round_up(max(need * _SPEED_MARGIN, dt_s), dt_s))
         elif seg.path is None:
-            out[i] = _round_up(dwell_s, dt_s)
-    if not moving:
-        return out
-    s_dense = np.linspace(0.0, 1.0, _DENSE)
-    pts = np.concatenate([segments[i].path.points(s_dense) for i in moving])
-    q = arm.inverse(pts).joints_rad.reshape(len(moving), _DENSE, 3)
-    dq_ds = np.abs(np.gradient(q, s_dense, axis=1))                        # (n, DENSE, 3)
-    tau = np.linspace(0.0, 1.0, 2 * _DENSE)
-    s_tau, ds_dtau, _ = time_scaling(scaling, tau)
-    f = s_tau * (_DENSE - 1)
-    i0 = np.minimum(np.floor(f).astype(int), _DENSE - 2)
-    w = (f - i0)[None, :, None]
-    rate = (dq_ds[:, i0] * (1 - w) + dq_ds[:, i0 + 1] * w) * ds_dtau[None, :, None]
-    with np.errstate(invalid="ignore"):
-        ratio = rate / arm.max_speed_rad_s[None, None, :]
-        need = np.where(np.isfinite(ratio).any(axis=(1, 2)), np.nanmax(np.where(np.isfinite(ratio), ratio, -np.inf),
-                                                                       axis=(1, 2)), 0.0)
-    for k, i in enumerate(moving):
-        t_speed = segments[i].path.length_mm * peak_rate(scaling) / (speed_mm_s * speed_scale)
-        out[i] = _round_up(max(t_speed, float(need[k]) / speed_scale * _SPEED_MARGIN, dt_s), dt_s)
+            out.append(_round_up(dwell_s, dt_s))
+        else:
+            t_speed = seg.path.length_mm * peak_rate(scaling) / (speed_mm_s * speed_scale)
+            out.append(_round_up(max(t_speed, dt_s), dt_s))
     return out
+
+
+def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
+                  dt_s: float, speed_scale: float = 1.0, rounds: int = 3) -> list[SampledSegment]:
+    """Time and sample segments: the durations of :func:`durations_s`, then any move whose samples ask
+    a joint for more than its speed limit (x ``speed_scale``) is stretched by that ratio (x 1.01) and
+    everything is sampled again, up to ``rounds`` times (the checks reject what is still too fast)."""
+    durations = durations_s(segments, arm, scaling, speed_mm_s, dwell_s, dt_s, speed_scale)
+    limit = arm.max_speed_rad_s * speed_scale
+    for _ in range(rounds):
+        sampled = sample_segments(segments, durations, arm, scaling, dt_s)
+        counts = np.array([len(s.t_s) for s in sampled])
+        starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+        joints = np.concatenate([s.joints_rad for s in sampled])
+        with np.errstate(invalid="ignore"):
+            ratio = np.nanmax(np.abs(np.diff(joints, axis=0)) / (dt_s * limit), axis=1, initial=0.0)
+        ratio = np.append(np.nan_to_num(ratio), 0.0)
+        ratio[starts[1:] - 1] = 0.0                     # the step into the next segment is not a step
+        stretch = np.maximum.reduceat(ratio, starts)
+        moving = np.array([seg.path is not None for seg in segments])
+        over = moving & (stretch > 1.0)
+        if not over.any():
+            return sampled
+        durations = [_round_up(d * float(r) * _SPEED_MARGIN, dt_s) if o else d
+                     for d, r, o in zip(durations, stretch, over)]
+    return sampled
 
 
 def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, scaling: TimeScaling,

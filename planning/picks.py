@@ -22,7 +22,7 @@ import numpy as np
 from planning.arm import Arm
 from planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
 from planning.errors import CellFileError, Problem
-from planning.motion import SampledSegment, Segment, SegmentKind, durations_s, sample_segments
+from planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from planning.ordering import order_nearest_two_opt
 from planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
 from planning.targets import PartTarget
@@ -199,8 +199,7 @@ class Planner:
         """Time, sample and check consecutive segments together (one IK call for each stage); the
         failure is (index of the first failing segment, its Rejection), or None."""
         m = self.cell.motion
-        durations = durations_s(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
-        sampled = sample_segments(segments, durations, self.arm, self.scaling, self.dt_s)
+        sampled = timed_samples(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
         return sampled, first_failing_segment(self.ctx, sampled, t0_s)
 
     def _pick_end(self, part: PartTarget) -> np.ndarray:

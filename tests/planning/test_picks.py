@@ -323,3 +323,24 @@ def test_speed_scale_slows_every_move(tmp_path):
                 assert sb["duration_s"] >= 4 * (sa["duration_s"] - 0.02) - 1e-9
     assert quarter["totals"]["speed_scale"] == 0.25
     assert "# speed_scale: 0.25" in (tmp_path / "quarter" / "joints.csv").read_text()
+
+
+def test_slow_joints_stretch_the_moves_instead_of_rejecting_parts():
+    """With every joint limited to 20 deg/s the tool speed no longer sets the pace: each move is
+    stretched until its samples keep every joint under its limit, and every reachable part is still
+    planned (no joint_speed rejection); the cycle is longer than at full joint speed."""
+    data = yaml.safe_load(SAMPLE_CELL.read_text())
+    fast = Planner(parse_cell(data, "cell.yaml"))
+    for joint in data["arm"]["joints"].values():
+        joint["max_speed_deg_s"] = 20
+    slow_cell = parse_cell(data, "cell.yaml")
+    parts = parse_parts(SIX_REACHABLE_TWO_NOT, slow_cell)
+    slow = Planner(slow_cell).plan(parts)
+    assert [o.status for o in slow.parts].count("planned") == 6
+    assert not any(o.rejection and o.rejection.check.startswith("joint_speed") for o in slow.parts)
+    q = slow.samples.joints_rad
+    step = np.diff(slow.samples.t_s)
+    moving = step > 0
+    speed = np.degrees(np.abs(np.diff(q, axis=0))[moving] / step[moving, None])
+    assert speed.max() <= 20 * (1 + 1e-9)
+    assert slow.cycle_s > 1.5 * fast.plan(parse_parts(SIX_REACHABLE_TWO_NOT, fast.cell)).cycle_s
