@@ -13,6 +13,7 @@ s in [0, 1] to table points (mm, table frame); :func:`time_scaling` maps normali
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from enum import Enum
 
@@ -108,7 +109,7 @@ class StraightPath:
 
     @property
     def length_mm(self) -> float:
-        return float(np.linalg.norm(self.p1 - self.p0))
+        return math.dist(self.p1, self.p0)
 
     def points(self, s) -> np.ndarray:
         """Points for path parameters s, shape (M,) -> (M, 3), table mm."""
@@ -143,18 +144,18 @@ class ArcPath:
     def __post_init__(self):
         p0, via, p1 = (_as_point(p, n) for p, n in ((self.p0, "p0"), (self.via, "via"), (self.p1, "p1")))
         for (a, na), (b, nb) in (((p0, "p0"), (via, "via")), ((via, "via"), (p1, "p1")), ((p0, "p0"), (p1, "p1"))):
-            if np.linalg.norm(a - b) < 1e-9:
+            if math.dist(a, b) < 1e-9:
                 raise PathGeometryError(f"arc: {na} {_fmt(a)} and {nb} {_fmt(b)} coincide")
         a, b = via - p0, p1 - p0
         n = _cross(a, b)
         nn = float(np.dot(n, n))
-        scale = np.linalg.norm(a) * np.linalg.norm(b)
+        scale = math.hypot(*a) * math.hypot(*b)
         if np.sqrt(nn) <= 1e-9 * scale:
             raise PathGeometryError(f"arc: p0 {_fmt(p0)}, via {_fmt(via)} and p1 {_fmt(p1)} are collinear")
         # circumcentre of the triangle (p0, via, p1), in 3D
         centre = p0 + (np.dot(a, a) * _cross(b, n) + np.dot(b, b) * _cross(n, a)) / (2.0 * nn)
         n_hat = n / np.sqrt(nn)
-        e1 = (p0 - centre) / np.linalg.norm(p0 - centre)
+        e1 = (p0 - centre) / math.dist(p0, centre)
         e2 = _cross(n_hat, e1)
         d1 = p1 - centre
         sweep = float(np.arctan2(np.dot(d1, e2), np.dot(d1, e1))) % (2.0 * np.pi)
@@ -162,7 +163,7 @@ class ArcPath:
         object.__setattr__(self, "via", via)
         object.__setattr__(self, "p1", p1)
         object.__setattr__(self, "centre", centre)
-        object.__setattr__(self, "radius_mm", float(np.linalg.norm(p0 - centre)))
+        object.__setattr__(self, "radius_mm", math.dist(p0, centre))
         object.__setattr__(self, "sweep_rad", sweep)
         object.__setattr__(self, "_e1", e1)
         object.__setattr__(self, "_e2", e2)

@@ -15,6 +15,7 @@ failure the picks behind it are chained again from where the last kept pick ends
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -130,14 +131,14 @@ class Planner:
 
     # ------------------------------------------------------------ segment builders
     def _straight(self, kind, p0, p1, part_id, closed) -> list[Segment]:
-        if np.linalg.norm(np.asarray(p1) - np.asarray(p0)) < _SAME_POINT_MM:
+        if math.dist(p1, p0) < _SAME_POINT_MM:
             return []
         return [Segment(kind, StraightPath(p0, p1), part_id=part_id, gripper_closed=closed)]
 
     def _transfer(self, p0, p1, part_id, closed) -> list[Segment]:
         """Arc at safe height from p0 to p1 through the point at the mid base angle and mean radius."""
         p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
-        if np.linalg.norm(p1 - p0) < _SAME_POINT_MM:
+        if math.dist(p1, p0) < _SAME_POINT_MM:
             return []
         r0, r1 = np.hypot(*p0[:2]), np.hypot(*p1[:2])
         a0, a1 = np.arctan2(p0[1], p0[0]), np.arctan2(p1[1], p1[0])
@@ -145,7 +146,7 @@ class Planner:
         via = np.array([rm * np.cos(am), rm * np.sin(am), 0.5 * (p0[2] + p1[2])])
         chord = p1 - p0
         off = via - p0
-        bulge = np.linalg.norm(off - chord * (off @ chord) / (chord @ chord))
+        bulge = math.hypot(*(off - chord * (off @ chord) / (chord @ chord)))
         if bulge < _MIN_ARC_BULGE_MM:
             return self._straight(SegmentKind.TRANSFER, p0, p1, part_id, closed)
         try:
