@@ -55,27 +55,28 @@ class CheckContext:
     dt_s: float = 0.02
 
 
-def _link_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[np.ndarray, list[str]]:
-    """Points along shoulder->elbow->wrist->tool, shape (M, 3 * _LINK_POINTS, 3), and their link names."""
+def _link_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[tuple, list[str]]:
+    """Points along shoulder->elbow->wrist->tool as x, y, z arrays of shape (M, 3 * _LINK_POINTS), and
+    their link names (coordinate by coordinate: numpy is slow over a last axis of three)."""
     elbow, wrist = arm.elbow_wrist_mm(joints_rad)
     base = joints_rad[:, 0]
     shoulder = np.column_stack([arm.shoulder_offset_mm * np.cos(base), arm.shoulder_offset_mm * np.sin(base),
                                 np.full(len(base), arm.base_height_mm)])
-    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, :, None]
-    pts, names = [], []
-    for name, a, b in (("upper arm", shoulder, elbow), ("forearm", elbow, wrist), ("tool", wrist, tool_mm)):
-        pts.append(a[:, None, :] + f * (b - a)[:, None, :])
-        names += [name] * _LINK_POINTS
-    return np.concatenate(pts, axis=1), names
+    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, :]
+    links = (("upper arm", shoulder, elbow), ("forearm", elbow, wrist), ("tool", wrist, tool_mm))
+    xyz = tuple(np.concatenate([a[:, c:c + 1] + f * (b[:, c:c + 1] - a[:, c:c + 1]) for _, a, b in links], axis=1)
+                for c in range(3))
+    return xyz, [name for name, _, _ in links for _ in range(_LINK_POINTS)]
 
 
-def _zone_inside(zone, pts: np.ndarray) -> np.ndarray:
-    """Mask (M, K) of points inside a keep-out zone."""
+def _zone_inside(zone, pts) -> np.ndarray:
+    """Mask (M, K) of points (x, y, z arrays, each (M, K)) inside a keep-out zone."""
+    x, y, z = pts
     if zone.shape == "cylinder":
-        d = np.hypot(pts[..., 0] - zone.x, pts[..., 1] - zone.y)
-        return (d < zone.radius_mm) & (pts[..., 2] < zone.top_mm)
-    lo, hi = np.asarray(zone.min_mm), np.asarray(zone.max_mm)
-    return np.all((pts > lo) & (pts < hi), axis=-1)
+        dx, dy = x - zone.x, y - zone.y
+        return (dx * dx + dy * dy < zone.radius_mm ** 2) & (z < zone.top_mm)
+    (x0, y0, z0), (x1, y1, z1) = zone.min_mm, zone.max_mm
+    return (x > x0) & (x < x1) & (y > y0) & (y < y1) & (z > z0) & (z < z1)
 
 
 def _deg(x) -> float:
@@ -175,7 +176,7 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
     if valid.any():
         q = np.where(valid[:, None], s.joints_rad, 0.0)
         pts, names = _link_points(arm, q, s.xyz_mm)
-        low = np.where(valid[:, None], pts[..., 2], np.inf)
+        low = np.where(valid[:, None], pts[2], np.inf)
         floor = low < ctx.floor_clearance_mm - 1e-9
         if floor.any():
             i, k = np.argwhere(floor)[0]
@@ -187,7 +188,7 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             inside = _zone_inside(zone, pts) & valid[:, None]
             if inside.any():
                 i, k = np.argwhere(inside)[0]
-                p = pts[i, k]
+                p = [c[i, k] for c in pts]
                 found.append((int(i), 2, lambda zone=zone, n=names[k], p=p: Rejection(
                     f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
     if m > 1:
