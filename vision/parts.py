@@ -28,7 +28,7 @@ from dataclasses import dataclass, field, replace
 import cv2
 import numpy as np
 
-from vision.pixelclass import classify_region, coarse_mask
+from vision.pixelclass import block_size_px, classify_region, coarse_mask
 from vision.polygon import points_in_polygon
 from vision.scene import marker_paper_corners_mm
 from vision.topface import (
@@ -106,12 +106,14 @@ def _search_margin_mm(cell) -> float:
 @dataclass(frozen=True)
 class _SearchRegion:
     """Where parts are looked for: the bounding rectangle (u0, v0, w, h) of the searched area, the area
-    itself (bool, rectangle-sized) and at the coarse resolution, and its one-pixel edge band."""
+    itself (bool, rectangle-sized) and at the coarse resolution (blocks of ``block_px``), and its
+    one-pixel edge band."""
 
     rect: tuple[int, int, int, int]
     valid: np.ndarray
     valid_small: np.ndarray
     edge_band: np.ndarray
+    block_px: int
 
 
 _REGION_CACHE: dict = {}
@@ -126,13 +128,25 @@ def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     mask = _build_valid_mask(shape, mapping, cell, detections)
     u0, v0, w, h = cv2.boundingRect(mask)
     valid = mask[v0:v0 + h, u0:u0 + w] > 0
-    valid_small = coarse_mask(valid)
+    block_px = block_size_px(_smallest_part_px(mapping, cell))
+    valid_small = coarse_mask(valid, block_px)
     edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0)
-    region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band)
+    region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
     if len(_REGION_CACHE) > 8:
         _REGION_CACHE.clear()
     _REGION_CACHE[key] = (mapping, cell, region)
     return region
+
+
+def _smallest_part_px(mapping, cell) -> float:
+    """The smallest footprint side of any class, in photo pixels where the work area's pixels are
+    largest (its corners and centre)."""
+    if not cell.parts:
+        return float("inf")
+    corners = np.asarray(cell.work_area, float)
+    where = mapping.inverse(np.vstack([corners, corners.mean(axis=0)]))
+    smallest_mm = min(min(c.footprint_mm) for c in cell.parts.values())
+    return smallest_mm / float(mapping.mm_per_px(where).max())
 
 
 def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
@@ -183,7 +197,8 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     if min(region.valid_small.shape) == 0 or not cell.parts:
         notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
-    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts)
+    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts,
+                                 region.block_px)
     search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]

@@ -6,7 +6,8 @@ Every colour is white-balanced first (:mod:`vision.whitebalance`).
 
 Parts cover a few per cent of the work area, so the search runs at two resolutions:
 
-1. At a quarter of the resolution (each pixel the mean of the middle 2 x 2 of a 4 x 4 block), every
+1. At a coarse resolution, one pixel a block of 8, 4 or 2 px (the largest across which the smallest
+   part spans four blocks; each coarse pixel the mean of its block's middle 2 x 2), every
    pixel of the searched region is converted to CIELAB. The table's own colour is its median (parts
    are few), its spread the scaled median distance from it. Candidates are pixels that differ from the
    table and lie within 2.5x a class's tolerance in CIE76 (CIEDE2000 is never more than about that),
@@ -27,12 +28,12 @@ import numpy as np
 from vision.colour import delta_e_2000
 from vision.whitebalance import lab_of_linear, linear_of, white_gain
 
-__all__ = ["ClassifiedRegion", "classify_region", "classify_pixels", "coarse_mask"]
+__all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "coarse_mask"]
 
 _UNKNOWN_CHROMA = 30.0
 _UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
 _FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at least this much
-_COARSE = 4                   # the coarse pass runs at 1/4 resolution
+_BLOCKS = (8, 4, 2)           # coarse block sizes (px) to choose from, largest first
 _NEAR = 2.5                   # CIE76 candidates: within this many times a class's tolerance
 
 
@@ -112,18 +113,25 @@ class ClassifiedRegion:
     delta_e: np.ndarray
     groups: np.ndarray
     windows: list[tuple[int, int, int, int]]
+    block_px: int
 
     def group_at(self, x: int, y: int) -> int:
         """The group of the pixel at column x, row y of the rectangle."""
-        return int(self.groups[y // _COARSE, x // _COARSE])
+        return int(self.groups[y // self.block_px, x // self.block_px])
+
+
+def block_size_px(smallest_part_px: float) -> int:
+    """The coarse block size: the largest of 8, 4, 2 px across which the smallest part spans at least
+    four blocks (so it always holds a whole block and its neighbours, and is found at the coarse pass)."""
+    return next((b for b in _BLOCKS if smallest_part_px >= 4 * b), _BLOCKS[-1])
 
 
 def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small: np.ndarray, illumination,
-                    classes: dict) -> ClassifiedRegion:
+                    classes: dict, block_px: int) -> ClassifiedRegion:
     """Classify the pixels of ``rect`` = (u0, v0, w, h) inside the ``valid`` mask (bool, rect-sized);
-    ``valid_small`` is that mask at the coarse resolution (w // 4, h // 4)."""
+    ``valid_small`` is that mask at the coarse resolution (:func:`coarse_mask` with ``block_px``)."""
     u0, v0, w, h = rect
-    f = _COARSE
+    f = block_px
     hs, ws = valid_small.shape
     block = image_bgr[v0:v0 + hs * f, u0:u0 + ws * f]
     small = cv2.resize(block, (ws, hs), interpolation=cv2.INTER_LINEAR)   # the mean of each block's centre 2 x 2
@@ -143,7 +151,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     label = np.zeros((h, w), np.uint8)
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
-        return ClassifiedRegion((u0, v0), label, delta_e, groups, [])
+        return ClassifiedRegion((u0, v0), label, delta_e, groups, [], f)
     # the candidates' classes at the coarse resolution; a block whose 3 x 3 neighbours all agree is inside
     # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
     cy, cx = np.nonzero(candidate)
@@ -152,19 +160,18 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     coarse_label[cy, cx], coarse_de[cy, cx] = classify_pixels(lab_small[cy, cx], classes, background)
     kernel = np.ones((3, 3), np.uint8)
     inside = (coarse_label > 0) & (cv2.erode(coarse_label, kernel) == cv2.dilate(coarse_label, kernel))
-    ys, xs = _pixels_of_blocks(inside, valid)
+    ys, xs = _pixels_of_blocks(inside, valid, f)
     label[ys, xs] = coarse_label[ys // f, xs // f]
     delta_e[ys, xs] = coarse_de[ys // f, xs // f]
-    ys, xs = _pixels_of_blocks((near > 0) & ~inside, valid)
+    ys, xs = _pixels_of_blocks((near > 0) & ~inside, valid, f)
     lab = lab_of_linear(linear_of(block[ys, xs]) * gain[ys // f, xs // f])
     label[ys, xs], delta_e[ys, xs] = classify_pixels(lab, classes, background)
     windows = [tuple(int(c) * f for c in stats[i, :4]) for i in range(1, n)]
-    return ClassifiedRegion((u0, v0), label, delta_e, groups, windows)
+    return ClassifiedRegion((u0, v0), label, delta_e, groups, windows, f)
 
 
-def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Full-resolution (rows, columns) of the coarse ``blocks`` (bool), inside ``valid``."""
-    f = _COARSE
+def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray, f: int) -> tuple[np.ndarray, np.ndarray]:
+    """Full-resolution (rows, columns) of the coarse ``blocks`` (bool; f x f px each), inside ``valid``."""
     ys, xs = np.nonzero(blocks)
     dy, dx = np.divmod(np.arange(f * f), f)
     ys = (ys[:, None] * f + dy).ravel()
@@ -173,10 +180,9 @@ def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray) -> tuple[np.ndarray
     return ys[keep], xs[keep]
 
 
-def coarse_mask(valid: np.ndarray) -> np.ndarray:
-    """A rectangle-sized bool mask at the coarse resolution (w // 4, h // 4), nearest pixel."""
+def coarse_mask(valid: np.ndarray, f: int) -> np.ndarray:
+    """A rectangle-sized bool mask at the coarse resolution (w // f, h // f), nearest pixel."""
     h, w = valid.shape
-    f = _COARSE
     if h < f or w < f:
         return np.zeros((0, 0), bool)
     return cv2.resize(valid[: h // f * f, : w // f * f].astype(np.uint8), (w // f, h // f),

@@ -308,3 +308,32 @@ def test_hard_photos(condition):
         total = total.add(score(detection.parts, r.truth, cell.work_area))
     assert total.recall >= 0.98 and total.false_parts == 0
     assert total.rms_mm <= 0.7 and total.max_mm <= 1.5
+
+
+def test_block_size_follows_the_smallest_part():
+    """The coarse pass's block is the largest of 8, 4, 2 px across which the smallest part spans four
+    blocks: the demo's 22 mm tokens (~44 px) get 8 px blocks, a 9 mm class 4 px."""
+    from vision.pixelclass import block_size_px
+    assert [block_size_px(px) for px in (44, 32, 31.9, 16, 15, 8, 3)] == [8, 8, 4, 4, 2, 2, 2]
+
+
+def test_small_parts_are_found_with_smaller_blocks():
+    """A 9 mm, 10 mm tall class (~18 px across in the demo camera: 4 px blocks) beside the tokens:
+    every part found, centres within the sample bounds."""
+    from vision.markers import detect_markers
+    from vision.parts import _search_region
+    data = sample_cell_data()
+    data["parts"]["bead"] = {"lab": [60, -35, -20], "tolerance": 18, "height_mm": 10, "shape": "cylinder",
+                             "footprint_mm": [9]}
+    data["bins"]["bead"] = {"x": 150, "y": 245}
+    cell = parse_cell(data)
+    rng = np.random.default_rng(11)
+    total = Score()
+    for _ in range(3):
+        r = render_scene(cell, random_scene(cell, rng, n_parts=(6, 9), sensor=SensorSpec(noise=2.0)))
+        detection, cal = detect_with_own_calibration(r.image_bgr, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+    dets = detect_markers(r.image_bgr, cell.markers.dictionary)
+    assert _search_region(r.image_bgr.shape[:2], cal.mapping, cell, dets).block_px == 4
+    assert total.recall >= 0.98 and total.false_parts == 0
+    assert total.rms_mm <= 0.5 and total.max_mm <= 1.5
