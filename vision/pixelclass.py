@@ -160,24 +160,32 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     coarse_label[cy, cx], coarse_de[cy, cx] = classify_pixels(lab_small[cy, cx], classes, background)
     kernel = np.ones((3, 3), np.uint8)
     inside = (coarse_label > 0) & (cv2.erode(coarse_label, kernel) == cv2.dilate(coarse_label, kernel))
-    ys, xs = _pixels_of_blocks(inside, valid, f)
-    label[ys, xs] = coarse_label[ys // f, xs // f]
-    delta_e[ys, xs] = coarse_de[ys // f, xs // f]
-    ys, xs = _pixels_of_blocks((near > 0) & ~inside, valid, f)
-    lab = lab_of_linear(linear_of(block[ys, xs]) * gain[ys // f, xs // f])
-    label[ys, xs], delta_e[ys, xs] = classify_pixels(lab, classes, background)
+    # whole blocks at a time, through (rows, columns, f, f) views of the images
+    label_blocks, de_blocks = _blocks(label, f, hs, ws), _blocks(delta_e, f, hs, ws)
+    valid_blocks = _blocks(valid, f, hs, ws)
+    by, bx = np.nonzero(inside)
+    ok = valid_blocks[by, bx]
+    label_blocks[by, bx] = coarse_label[by, bx][:, None, None] * ok
+    de_blocks[by, bx] = coarse_de[by, bx][:, None, None] * ok
+    by, bx = np.nonzero((near > 0) & ~inside)
+    ok = valid_blocks[by, bx].ravel()
+    pixels = _blocks(block, f, hs, ws)[by, bx].reshape(-1, 3)[ok]
+    lab = lab_of_linear(linear_of(pixels) * np.repeat(gain[by, bx], f * f, axis=0)[ok])
+    classes_of, distances = classify_pixels(lab, classes, background)
+    fine_label = np.zeros(len(ok), np.uint8)
+    fine_de = np.zeros(len(ok), np.float32)
+    fine_label[ok], fine_de[ok] = classes_of, distances
+    label_blocks[by, bx] = fine_label.reshape(-1, f, f)
+    de_blocks[by, bx] = fine_de.reshape(-1, f, f)
     windows = [tuple(int(c) * f for c in stats[i, :4]) for i in range(1, n)]
     return ClassifiedRegion((u0, v0), label, delta_e, groups, windows, f)
 
 
-def _pixels_of_blocks(blocks: np.ndarray, valid: np.ndarray, f: int) -> tuple[np.ndarray, np.ndarray]:
-    """Full-resolution (rows, columns) of the coarse ``blocks`` (bool; f x f px each), inside ``valid``."""
-    ys, xs = np.nonzero(blocks)
-    dy, dx = np.divmod(np.arange(f * f), f)
-    ys = (ys[:, None] * f + dy).ravel()
-    xs = (xs[:, None] * f + dx).ravel()
-    keep = valid[ys, xs]
-    return ys[keep], xs[keep]
+def _blocks(image: np.ndarray, f: int, rows: int, cols: int) -> np.ndarray:
+    """A (rows, cols, f, f, ...) view of the top-left rows x f by cols x f pixels of ``image``: block
+    (r, c) is ``view[r, c]``; indexing it with block coordinates reads or writes whole blocks."""
+    top = image[: rows * f, : cols * f]
+    return top.reshape(rows, f, cols, f, *image.shape[2:]).swapaxes(1, 2)
 
 
 def coarse_mask(valid: np.ndarray, f: int) -> np.ndarray:
