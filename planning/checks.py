@@ -16,8 +16,7 @@ from planning.angles import wrap_angle
 from planning.arm import JOINT_NAMES, Arm, Reason
 from planning.motion import SampledSegment
 
-__all__ = ["CheckContext", "Rejection", "first_failure", "first_failure_in", "first_failing_segment",
-           "grip_fit_rejection", "jaw_width_mm"]
+__all__ = ["CheckContext", "Rejection", "first_failure", "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
 
 _LINK_POINTS = 6  # points tested along each moving link for keep-out zones
 
@@ -113,12 +112,6 @@ def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Re
     limit, side, word = (lo, "<", "min") if value < lo else (hi, ">", "max")
     return Rejection(reason.label, f"{JOINT_NAMES[j]} {value:.1f} deg {side} {word} {limit:g} deg",
                      value=value, limit=limit, unit="deg")
-
-
-def first_failure_in(ctx: CheckContext, segments: list[SampledSegment], t0_s: float = 0.0) -> Rejection | None:
-    """:func:`first_failure` over consecutive segments at once (one pass over all their samples)."""
-    found = first_failing_segment(ctx, segments, t0_s)
-    return None if found is None else found[1]
 
 
 def first_failing_segment(ctx: CheckContext, segments: list[SampledSegment],

@@ -2,9 +2,10 @@
 
 A part of height h seen from the camera centre C appears scaled by k = C_z / (C_z - h) about the
 nadir n. The top face's centre m_top gives the footprint centre c = n + (m_top - n) / k. The top face is
-found by fitting the class's shape to the outer half of the blob's outline (:func:`fit_top_face`), the
-half away from the nadir, which is always the top face's own edge whichever side faces the colour
-threshold kept; a row of touching boxes is fitted as one longer box and cut (:func:`fit_row_of_tops`).
+found by fitting the class's shape to the outer half of the blob's outline (:func:`fit_top_faces`, all
+blobs of a photo together), the half away from the nadir, which is always the top face's own edge
+whichever side faces the colour threshold kept; a row of touching boxes is fitted as one longer box
+and cut (:func:`fit_row_of_tops`).
 Where no fit holds, the two centroid formulas of DESIGN.md sec. 6 are chosen by the blob's area
 (:func:`footprint_centre`).
 """
@@ -18,8 +19,8 @@ import numpy as np
 
 from vision.robust import masked_median, robust_lm, soft_l1
 
-__all__ = ["outlines_geometry", "polygon_area_centroid", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_top_face", "fit_row_of_tops", "min_rect"]
+__all__ = ["outlines_geometry", "expected_area_mm2", "footprint_centre", "outward_normals",
+           "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_row_of_tops", "min_rect"]
 
 
 def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
@@ -50,12 +51,6 @@ def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
     tangent /= np.maximum(np.sqrt((tangent * tangent).sum(axis=1, keepdims=True)), 1e-12)
     normal = np.column_stack([tangent[:, 1], -tangent[:, 0]]) * np.where(twice_area > 0, 1.0, -1.0)[owner, None]
     return np.where(flat, 0.0, 0.5 * np.abs(twice_area)), centroids, np.split(normal, np.cumsum(lengths)[:-1])
-
-
-def polygon_area_centroid(xy: np.ndarray):
-    """Area and centroid of one closed outline (:func:`outlines_geometry`)."""
-    area, centroid, _ = outlines_geometry([xy])
-    return float(area[0]), centroid[0]
 
 
 def expected_area_mm2(cls) -> float:
@@ -200,12 +195,6 @@ def _fit(point_sets, problems, starts):
     residual, mask = _shape_residuals(point_sets, np.array([p.round for p in problems]),
                                       np.array([p.half_mm for p in problems], float))
     return (*robust_lm(residual, starts, _SOFT_L1_MM), mask)
-
-
-def fit_top_face(outline_mm, normals, centre, nadir, k, cls, yaw_guess_deg: float = 0.0):
-    """One blob's top-face centre (table-mapped mm), or None: :func:`fit_top_faces` for one problem."""
-    fit = fit_top_faces([TopFaceProblem.of_class(outline_mm, normals, centre, nadir, k, cls, yaw_guess_deg)])[0]
-    return None if fit is None else fit[0]
 
 
 def fit_row_of_tops(outline_mm, normals, m, area_mapped, nadir, k, cls, pieces):
