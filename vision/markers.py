@@ -180,12 +180,27 @@ def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str
     return bool(((ink != expected).sum(axis=1) <= 1).all())
 
 
-def _track(lin: np.ndarray, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
+def _linearised_around(image, corners: np.ndarray) -> np.ndarray:
+    """:func:`linearised_gray` only around each marker (its corners' box grown by a quarter of its size
+    and 8 px, room for the edge profiles and the ring outside its cells); zero elsewhere."""
+    h, w = image.shape[:2]
+    lin = np.zeros((h, w), np.float32)
+    for c in corners:
+        pad = 0.25 * np.ptp(c, axis=0).max() + 8.0
+        x0, y0 = np.maximum(np.floor(c.min(axis=0) - pad).astype(int), 0)
+        x1, y1 = np.minimum(np.ceil(c.max(axis=0) + pad).astype(int), [w, h])
+        if x1 > x0 and y1 > y0:
+            lin[y0:y1, x0:x1] = linearised_gray(image[y0:y1, x0:x1])
+    return lin
+
+
+def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
     """The expected markers where they were (a camera that has not moved, or moved by a pixel or two):
     corners refined from the edges next to the expected ones, identities read from the cells. None if
     any marker is not found so (then the markers are searched for)."""
     ids = sorted(expected)
     rough = np.array([np.asarray(expected[i], float).reshape(4, 2) for i in ids])
+    lin = _linearised_around(image, rough)
     refined, good = refine_corners(lin, rough)
     if good.all() and np.abs(refined - rough).max() > 0.25:
         refined, good = refine_corners(lin, refined)      # the camera shifted a little: again, from closer
@@ -231,12 +246,12 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None) ->
         checked by their cells (a camera that has not moved); failing that, looked for in small windows
         there; if any is still missing, the whole photo is searched.
     """
-    gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
-    lin = linearised_gray(gray)
     if expected:
-        tracked = _track(lin, dictionary_name, expected)
+        tracked = _track(image, dictionary_name, expected)
         if tracked is not None:
             return tracked
+    gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
+    lin = linearised_gray(gray)
     detector = _detector(dictionary_name)
     windowed = _detect_in_windows(gray, detector, expected) if expected else None
     if windowed is not None:
