@@ -248,6 +248,13 @@ def test_markers_tracked_where_they_were_equal_the_full_search(sample_calibratio
     full = {d.id: d.corners_px for d in detect_markers(image, cell.markers.dictionary)}
     assert set(found) == set(full)
     assert max(np.abs(found[i] - full[i]).max() for i in found) < 0.05
+    # a part lying on a marker: its cells are not its pattern, so it is not reported where it was
+    covered = image.copy()
+    (x0, y0), (x1, y1) = np.asarray(stored.marker_corners_px[ids[2]]).min(axis=0), np.asarray(
+        stored.marker_corners_px[ids[2]]).max(axis=0)
+    cv2.rectangle(covered, (int(x0) + 10, int(y0) + 10), (int(x1) - 5, int(y1) - 5), (60, 60, 200), -1)
+    found = {d.id for d in detect_markers(covered, cell.markers.dictionary, expected=stored.marker_corners_px)}
+    assert ids[2] not in found and found == set(full) - {ids[2]}
 
 
 def test_recalibrating_from_the_bumped_photo_restores_accuracy():
