@@ -61,11 +61,12 @@ def _link_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple
     base = joints_rad[:, 0]
     shoulder = np.column_stack([arm.shoulder_offset_mm * np.cos(base), arm.shoulder_offset_mm * np.sin(base),
                                 np.full(len(base), arm.base_height_mm)])
-    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, :]
-    links = (("upper arm", shoulder, elbow), ("forearm", elbow, wrist), ("tool", wrist, tool_mm))
-    xyz = tuple(np.concatenate([a[:, c:c + 1] + f * (b[:, c:c + 1] - a[:, c:c + 1]) for _, a, b in links], axis=1)
-                for c in range(3))
-    return xyz, [name for name, _, _ in links for _ in range(_LINK_POINTS)]
+    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, None, :]
+    joints = np.stack([shoulder, elbow, wrist, tool_mm], axis=2)             # (M, 3 coordinates, 4 points)
+    start, step = joints[:, :, :-1, None], np.diff(joints, axis=2)[..., None]
+    points = (start + f * step).reshape(len(joints), 3, 3 * _LINK_POINTS)    # (M, 3, links x points)
+    names = [name for name in ("upper arm", "forearm", "tool") for _ in range(_LINK_POINTS)]
+    return (points[:, 0], points[:, 1], points[:, 2]), names
 
 
 def _zone_inside(zone, pts) -> np.ndarray:

@@ -112,6 +112,7 @@ class Planner:
         self.scaling = TimeScaling(m.time_scaling)
         self.ctx = CheckContext(self.arm, m.floor_clearance_mm, tuple(cell.keep_out), self.dt_s)
         self.home_rad = np.radians([m.home_deg.base, m.home_deg.shoulder, m.home_deg.elbow])
+        self._ik_poses: dict[tuple, bool] = {}
         self._check_cell()
 
     # ------------------------------------------------------------ cell-level checks
@@ -181,10 +182,14 @@ class Planner:
         return segs
 
     def _ik_pose(self, q) -> bool:
-        """True if IK gives back these joints for their own tool point (Cartesian moves can start here)."""
+        """True if IK gives back these joints for their own tool point (Cartesian moves can start here);
+        remembered per pose (a run asks it of the home pose for every photo)."""
         q = np.asarray(q, float)
-        sol = self.arm.inverse(self.arm.forward(q[None]))
-        return bool(sol.ok[0]) and float(np.abs(sol.joints_rad[0] - q).max()) < 1e-6
+        key = tuple(q.tolist())
+        if key not in self._ik_poses:
+            sol = self.arm.inverse(self.arm.forward(q[None]))
+            self._ik_poses[key] = bool(sol.ok[0]) and float(np.abs(sol.joints_rad[0] - q).max()) < 1e-6
+        return self._ik_poses[key]
 
     def _swing_to_safe(self, q0, part_id) -> tuple[list[Segment], np.ndarray] | None:
         """A joint-space swing from ``q0`` to the IK pose above its tool point at safe height."""
