@@ -106,6 +106,10 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
         state = _load_state(out, folder, cell)
+        recorded = float(state.get("speed_scale", 1.0))
+        if abs(recorded - speed_scale) > 1e-9:      # one run.csv, one speed: never mix them
+            raise GripsightError(f"{_state_path(out)}: that run was made at speed scale {recorded:g}; "
+                                 f"resume with --speed-scale {recorded:g}")
         for name in emptied:
             if name not in cell.bins:
                 raise GripsightError(f"--emptied: no bin '{name}' in the cell")
@@ -114,7 +118,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
         _state_path(out).unlink(missing_ok=True)
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
                  "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
-                 "bins": {name: 0 for name in cell.bins}}
+                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale}
     result = RunResult()
     try:
         for photo in photos:

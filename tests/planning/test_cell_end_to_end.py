@@ -241,3 +241,19 @@ def test_report_renders_in_headless_chromium(tmp_path, capsys):
     assert '<section id="summary">' in dom and 'id="reasons-chart"' in dom or "No part was rejected" in dom
     assert dom.count("<tr class=") == 4                          # 3 photos and the empty file's error row
     assert 'class="error"' in dom and "batch_01.jpg/overlay.png" in dom
+
+
+def test_resume_keeps_the_speed_scale_the_run_started_with(tmp_path, capsys):
+    """One run.csv keeps one speed: a run stopped by a full tray at --speed-scale 0.5 refuses to go on at
+    full speed, and goes on at 0.5."""
+    data = sample_cell_data()
+    data["bins"]["blue"]["capacity"] = 3
+    folder = _cell_folder(tmp_path, "demo")
+    (tmp_path / "cell.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
+    out = tmp_path / "out"
+    assert main(["run", str(folder), "--out", str(out), "--speed-scale", "0.5"]) == 4
+    capsys.readouterr()
+    assert main(["run", str(folder), "--out", str(out), "--resume", "--emptied", "blue"]) != 0
+    said = capsys.readouterr()
+    assert "that run was made at speed scale 0.5; resume with --speed-scale 0.5" in said.out + said.err
+    assert main(["run", str(folder), "--out", str(out), "--resume", "--emptied", "blue", "--speed-scale", "0.5"]) in (0, 4)
