@@ -89,6 +89,7 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
     everything is sampled again, up to ``rounds`` times (the checks reject what is still too fast)."""
     durations = durations_s(segments, arm, scaling, speed_mm_s, dwell_s, dt_s, speed_scale)
     limit = arm.max_speed_rad_s * speed_scale
+    moving = np.array([seg.path is not None for seg in segments])
     for _ in range(rounds):
         sampled = sample_segments(segments, durations, arm, scaling, dt_s)
         counts = np.array([len(s.t_s) for s in sampled])
@@ -99,7 +100,6 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
         ratio = np.append(np.nan_to_num(ratio), 0.0)
         ratio[starts[1:] - 1] = 0.0                     # the step into the next segment is not a step
         stretch = np.maximum.reduceat(ratio, starts)
-        moving = np.array([seg.path is not None for seg in segments])
         over = moving & (stretch > 1.0)
         if not over.any():
             return sampled

@@ -34,18 +34,17 @@ def order_nearest_two_opt(start_xy, part_xy, bin_xy, max_rounds: int = 20) -> li
     part_xy = np.asarray(part_xy, float)
     bin_xy = np.asarray(bin_xy, float)
     n = len(part_xy)
-    left = list(range(n))
-    order: list[int] = []
-    here = np.asarray(start_xy, float)
-    while left:
-        d = np.linalg.norm(part_xy[left] - here, axis=1)
-        k = left.pop(int(np.argmin(d)))
-        order.append(k)
-        here = bin_xy[k]
     # every leg's length once: from the start to each part, from each part's bin to each other part
     from_start = np.linalg.norm(part_xy - np.asarray(start_xy, float), axis=1)
     between = np.linalg.norm(part_xy[None, :, :] - bin_xy[:, None, :], axis=2)        # [bin of a, part b]
-    best = order_cost_mm(order, start_xy, part_xy, bin_xy)
+    left = list(range(n))
+    order: list[int] = []
+    legs = from_start
+    while left:
+        k = left.pop(int(np.argmin(legs[left])))
+        order.append(k)
+        legs = between[k]
+    best = float(from_start[order[0]] + between[order[:-1], order[1:]].sum()) if order else 0.0
     for _ in range(max_rounds):              # each round moves to the best neighbour, while one is better
         trials = np.array(list(_neighbours(order)), dtype=int).reshape(-1, n)
         if not len(trials):

@@ -170,7 +170,7 @@ class Planner:
         pid = part.id
         segs, p = self._to_safe(start_mm, pid, False)
         above_part = np.array([x, y, self.safe_z])
-        above_bin = np.array([b.x, b.y, self.safe_z])
+        above_bin = self._above_bin(bin_name)
         segs += self._transfer(p, above_part, pid, False)
         segs += self._straight(SegmentKind.DESCEND, above_part, [x, y, grip_z], pid, False)
         segs.append(Segment(SegmentKind.CLOSE, None, np.array([x, y, grip_z]), pid, True))
@@ -208,9 +208,9 @@ class Planner:
         sampled = timed_samples(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
         return sampled, first_failing_segment(self.ctx, sampled, t0_s)
 
-    def _pick_end(self, part: PartTarget) -> np.ndarray:
-        """Where a pick leaves the tool: above the part's bin at safe height."""
-        b = self.cell.bins[self.bin_for(part)]
+    def _above_bin(self, bin_name: str) -> np.ndarray:
+        """Above a bin at safe height: where every pick into it leaves the tool."""
+        b = self.cell.bins[bin_name]
         return np.array([b.x, b.y, self.safe_z])
 
     # ------------------------------------------------------------ the plan
@@ -271,7 +271,7 @@ class Planner:
             runs, start_here, first_lead = [], here, lead
             for part in candidates:
                 runs.append(first_lead + self.pick_segments(part, self.bin_for(part), start_here))
-                start_here, first_lead = self._pick_end(part), []
+                start_here, first_lead = self._above_bin(self.bin_for(part)), []
             flat = [seg for segs in runs for seg in segs]
             sampled, failure = self._check_all(flat, t)
             bounds = np.cumsum([0] + [len(segs) for segs in runs])

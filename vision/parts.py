@@ -8,7 +8,8 @@ Per photo (see DESIGN.md sec. 6):
 2. Each pixel takes the class whose reference colour is nearest in CIEDE2000, if within that class's
    tolerance, coarse to fine (:mod:`vision.pixelclass`); saturated pixels near no class are candidates
    for an unknown colour.
-3. Per class: morphological opening and closing, connected components.
+3. In each window around a group of candidate pixels, per class: morphological opening and closing,
+   then the outer contours (one blob each).
 4. Each blob's outline goes to table millimetres through the calibration (lens included); its area and
    centroid are taken there. A part of height h seen from the camera centre C appears scaled by
    k = C_z / (C_z - h) about the nadir n: the top face's centroid m gives the footprint centre

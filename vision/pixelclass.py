@@ -26,7 +26,7 @@ import cv2
 import numpy as np
 
 from vision.colour import delta_e_2000
-from vision.whitebalance import lab_of_linear, linear_of, white_gain
+from vision.whitebalance import balanced_lab, white_gain
 
 __all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "coarse_mask"]
 
@@ -138,7 +138,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     gain = white_gain(illumination, f * np.arange(ws, dtype=np.float32)[None, :] + (u0 + (f - 1) / 2),
                       f * np.arange(hs, dtype=np.float32)[:, None] + (v0 + (f - 1) / 2))
     gain = np.broadcast_to(gain, (hs, ws, 3))                 # the white balance is smooth: one per block
-    lab_small = lab_of_linear(linear_of(small) * gain)
+    lab_small = balanced_lab(small, gain)
     planes = cv2.split(lab_small)
     table = [p[::4, ::4][valid_small[::4, ::4]] for p in planes]   # the table: parts cover a few % of it
     background = None
@@ -170,7 +170,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     by, bx = np.nonzero((near > 0) & ~inside)
     ok = valid_blocks[by, bx].ravel()
     pixels = _blocks(block, f, hs, ws)[by, bx].reshape(-1, 3)[ok]
-    lab = lab_of_linear(linear_of(pixels) * np.repeat(gain[by, bx], f * f, axis=0)[ok])
+    lab = balanced_lab(pixels, np.repeat(gain[by, bx], f * f, axis=0)[ok])
     classes_of, distances = classify_pixels(lab, classes, background)
     fine_label = np.zeros(len(ok), np.uint8)
     fine_de = np.zeros(len(ok), np.float32)

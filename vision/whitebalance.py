@@ -24,7 +24,8 @@ import numpy as np
 from vision.colour import linear_from_srgb
 from vision.robust import masked_median
 
-__all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels", "lab_of_linear", "linear_of", "white_gain"]
+__all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels", "balanced_lab", "lab_of_linear", "linear_of",
+           "white_gain"]
 
 REFERENCE_WHITE = 0.80
 _LIN_LUT = linear_from_srgb(np.arange(256) / 255.0).astype(np.float32)
@@ -128,9 +129,15 @@ def lab_of_linear(lin_bgr: np.ndarray) -> np.ndarray:
     return cv2.cvtColor(flat, cv2.COLOR_LBGR2Lab).reshape(lin_bgr.shape)
 
 
+def balanced_lab(bgr: np.ndarray, gain) -> np.ndarray:
+    """CIELAB (..., 3) float32 of 8-bit BGR codes (..., 3) scaled in linear light by ``gain``
+    (:func:`white_gain`, or one factor per pixel gathered from it)."""
+    return lab_of_linear(linear_of(bgr) * gain)
+
+
 def lab_of_pixels(bgr: np.ndarray, u: np.ndarray, v: np.ndarray, illumination: Illumination | None) -> np.ndarray:
     """CIELAB (..., 3) float32 of pixels (..., 3) uint8 BGR at photo coordinates u, v, white-balanced."""
-    return lab_of_linear(linear_of(bgr) * white_gain(illumination, u, v))
+    return balanced_lab(bgr, white_gain(illumination, u, v))
 
 
 def linear_of(bgr: np.ndarray) -> np.ndarray:
@@ -146,10 +153,9 @@ def white_gain(illumination: Illumination | None, u, v) -> np.ndarray | float:
     return np.divide(np.float32(illumination.white), np.maximum(field, np.float32(1e-3), out=field), out=field)
 
 
-def lab_image(image_bgr: np.ndarray, illumination: Illumination | None, origin=(0, 0), step: float = 1.0) -> np.ndarray:
-    """CIELAB (H, W, 3) float32 of an image whose pixel (x, y) sits at photo coordinates
-    ``origin + step * (x, y)`` (a crop, or a reduced copy), white-balanced."""
+def lab_image(image_bgr: np.ndarray, illumination: Illumination | None, origin=(0, 0)) -> np.ndarray:
+    """CIELAB (H, W, 3) float32 of an image (or a crop at ``origin`` = (u0, v0)), white-balanced."""
     h, w = image_bgr.shape[:2]
-    u = step * np.arange(w, dtype=np.float32)[None, :] + np.float32(origin[0])
-    v = step * np.arange(h, dtype=np.float32)[:, None] + np.float32(origin[1])
+    u = np.arange(w, dtype=np.float32)[None, :] + np.float32(origin[0])
+    v = np.arange(h, dtype=np.float32)[:, None] + np.float32(origin[1])
     return lab_of_pixels(image_bgr, u, v, illumination)
