@@ -18,9 +18,6 @@ from planning.motion import SampledSegment
 
 __all__ = ["CheckContext", "Rejection", "first_failure", "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
 
-_LINK_POINTS = 6  # points tested along each moving link for keep-out zones
-
-
 @dataclass(frozen=True)
 class Rejection:
     """Why a part was not planned: the check, where and when it failed, the value and the limit."""
@@ -54,29 +51,57 @@ class CheckContext:
     dt_s: float = 0.02
 
 
-def _link_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[tuple, list[str]]:
-    """Points along shoulder->elbow->wrist->tool as x, y, z arrays of shape (M, 3 * _LINK_POINTS), and
-    their link names (coordinate by coordinate: numpy is slow over a last axis of three)."""
+_LINK_NAMES = ("upper arm", "forearm", "tool")
+
+
+def _arm_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Shoulder, elbow, wrist and tool points as x, y, z arrays of shape (M, 4): link k runs from
+    column k to column k + 1 (upper arm, forearm, tool)."""
     elbow, wrist = arm.elbow_wrist_mm(joints_rad)
     base = joints_rad[:, 0]
-    shoulder = np.column_stack([arm.shoulder_offset_mm * np.cos(base), arm.shoulder_offset_mm * np.sin(base),
-                                np.full(len(base), arm.base_height_mm)])
-    f = np.linspace(0.0, 1.0, _LINK_POINTS)[None, None, :]
-    joints = np.stack([shoulder, elbow, wrist, tool_mm], axis=2)             # (M, 3 coordinates, 4 points)
-    start, step = joints[:, :, :-1, None], np.diff(joints, axis=2)[..., None]
-    points = (start + f * step).reshape(len(joints), 3, 3 * _LINK_POINTS)    # (M, 3, links x points)
-    names = [name for name in ("upper arm", "forearm", "tool") for _ in range(_LINK_POINTS)]
-    return (points[:, 0], points[:, 1], points[:, 2]), names
+    x = np.column_stack([arm.shoulder_offset_mm * np.cos(base), elbow[:, 0], wrist[:, 0], tool_mm[:, 0]])
+    y = np.column_stack([arm.shoulder_offset_mm * np.sin(base), elbow[:, 1], wrist[:, 1], tool_mm[:, 1]])
+    z = np.column_stack([np.full(len(base), arm.base_height_mm), elbow[:, 2], wrist[:, 2], tool_mm[:, 2]])
+    return x, y, z
 
 
-def _zone_inside(zone, pts) -> np.ndarray:
-    """Mask (M, K) of points (x, y, z arrays, each (M, K)) inside a keep-out zone."""
-    x, y, z = pts
+def _slab(a: np.ndarray, d: np.ndarray, lo: float, hi: float) -> tuple[np.ndarray, np.ndarray]:
+    """The open interval of t where lo < a + t d < hi (elementwise; empty as (inf, -inf))."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        t0, t1 = (lo - a) / d, (hi - a) / d
+    still = d == 0.0
+    inside = (a > lo) & (a < hi)
+    enter = np.where(still, np.where(inside, -np.inf, np.inf), np.minimum(t0, t1))
+    leave = np.where(still, np.where(inside, np.inf, -np.inf), np.maximum(t0, t1))
+    return enter, leave
+
+
+def _zone_entry(zone, pts) -> tuple[np.ndarray, np.ndarray]:
+    """Where each link (M, 3) first lies inside a keep-out zone: a mask and the link parameter t in
+    [0, 1] of the entry point. Exact for straight links (slab and circle intersections), so a zone
+    thinner than any spacing of test points is still found."""
+    a = [c[:, :-1] for c in pts]
+    d = [c[:, 1:] - c[:, :-1] for c in pts]
     if zone.shape == "cylinder":
-        dx, dy = x - zone.x, y - zone.y
-        return (dx * dx + dy * dy < zone.radius_mm ** 2) & (z < zone.top_mm)
-    (x0, y0, z0), (x1, y1, z1) = zone.min_mm, zone.max_mm
-    return (x > x0) & (x < x1) & (y > y0) & (y < y1) & (z > z0) & (z < z1)
+        ax, ay = a[0] - zone.x, a[1] - zone.y
+        qa = d[0] * d[0] + d[1] * d[1]
+        qb = ax * d[0] + ay * d[1]
+        qc = ax * ax + ay * ay - zone.radius_mm ** 2
+        with np.errstate(divide="ignore", invalid="ignore"):
+            root = np.sqrt(qb * qb - qa * qc)
+            t0, t1 = (-qb - root) / qa, (-qb + root) / qa
+        still = qa == 0.0
+        enter = np.where(still, np.where(qc < 0.0, -np.inf, np.inf), np.nan_to_num(t0, nan=np.inf))
+        leave = np.where(still, np.where(qc < 0.0, np.inf, -np.inf), np.nan_to_num(t1, nan=-np.inf))
+        z_enter, z_leave = _slab(a[2], d[2], -np.inf, zone.top_mm)
+        enter, leave = np.maximum(enter, z_enter), np.minimum(leave, z_leave)
+    else:
+        enter, leave = np.full(a[0].shape, -np.inf), np.full(a[0].shape, np.inf)
+        for ac, dc, lo, hi in zip(a, d, zone.min_mm, zone.max_mm):
+            e, l_ = _slab(ac, dc, lo, hi)
+            enter, leave = np.maximum(enter, e), np.minimum(leave, l_)
+    enter, leave = np.maximum(enter, 0.0), np.minimum(leave, 1.0)
+    return enter < leave, enter
 
 
 def _deg(x) -> float:
@@ -169,21 +194,24 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
     valid = s.reason == Reason.OK
     if valid.any():
         q = np.where(valid[:, None], s.joints_rad, 0.0)
-        pts, names = _link_points(arm, q, s.xyz_mm)
-        low = np.where(valid[:, None], pts[2], np.inf)
+        pts = _arm_points(arm, q, s.xyz_mm)
+        # a straight link's lowest point is one of its ends
+        z = pts[2]
+        low = np.where(valid[:, None], np.minimum(z[:, :-1], z[:, 1:]), np.inf)
         floor = low < ctx.floor_clearance_mm - 1e-9
         if floor.any():
             i, k = np.argwhere(floor)[0]
             z = float(low[i, k])
-            found.append((int(i), 1, lambda z=z, n=names[k]: Rejection(
+            found.append((int(i), 1, lambda z=z, n=_LINK_NAMES[k]: Rejection(
                 "floor_clearance", f"{n} at z={z:.1f} mm < {ctx.floor_clearance_mm:g} mm above the table",
                 value=z, limit=ctx.floor_clearance_mm, unit="mm")))
         for zone in ctx.keep_out:
-            inside = _zone_inside(zone, pts) & valid[:, None]
+            inside, enter = _zone_entry(zone, pts)
+            inside &= valid[:, None]
             if inside.any():
                 i, k = np.argwhere(inside)[0]
-                p = [c[i, k] for c in pts]
-                found.append((int(i), 2, lambda zone=zone, n=names[k], p=p: Rejection(
+                p = [c[i, k] + enter[i, k] * (c[i, k + 1] - c[i, k]) for c in pts]
+                found.append((int(i), 2, lambda zone=zone, n=_LINK_NAMES[k], p=p: Rejection(
                     f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
     if m > 1:
         step = ctx.dt_s if dt_steps is None else np.where(np.asarray(dt_steps) > 0, dt_steps, np.inf)[:, None]
