@@ -9,8 +9,8 @@ A pick, from wherever the tool is (DESIGN.md sec. 8)::
 Every sample of every segment goes through :func:`planning.checks.first_failure`. A part whose pick
 fails any check is rejected with that check's reason, segment, time and value; the arm does not move
 for it and the plan goes on with the next part. Only checked samples ever reach the joint sequence.
-The remaining picks are chained as if all pass and timed, sampled and checked in one pass; after a
-failure the picks behind it are chained again from where the last kept pick ends.
+The remaining picks and the way home are chained as if all pass and timed, sampled and checked in
+one pass; after a failure the picks behind it are chained again from where the last kept pick ends.
 """
 
 from __future__ import annotations
@@ -265,49 +265,63 @@ class Planner:
                 candidates = []
             else:
                 lead, here = swing
+        home_done = not end_at_home
         while candidates:
-            # every remaining pick, chained as if all pass, timed, sampled and checked in one pass; the
-            # picks before the first failure are kept, the failing one is rejected, the rest go again
+            # every remaining pick (and the way home), chained as if all pass, timed, sampled and checked
+            # in one pass; the picks before the first failure are kept, the failing one is rejected, the
+            # rest go again
             runs, start_here, first_lead = [], here, lead
             for part in candidates:
                 runs.append(first_lead + self.pick_segments(part, self.bin_for(part), start_here))
                 start_here, first_lead = self._above_bin(self.bin_for(part)), []
-            flat = [seg for segs in runs for seg in segs]
+            home = [] if home_done else self._home_segments(start_here)
+            flat = [seg for segs in runs for seg in segs] + home
             sampled, failure = self._check_all(flat, t)
             bounds = np.cumsum([0] + [len(segs) for segs in runs])
             failed = len(runs) if failure is None else int(np.searchsorted(bounds, failure[0], side="right")) - 1
-            for k in range(failed):
+            for k in range(min(failed, len(runs))):
                 part, own = candidates[k], sampled[bounds[k]:bounds[k + 1]]
                 picks.append(PlannedPick(part.id, part.class_name, self.bin_for(part), own, t))
                 outcomes[part.id] = PartOutcome(part, "planned", self.bin_for(part))
                 accepted += own
                 t += sum(s.duration_s for s in own)
                 here, lead = own[-1].xyz_mm[-1], []
-            if failure is None:
+            if failed >= len(runs):              # every pick passed; the way home passed or failed
+                home_done = True
+                if failure is None:
+                    accepted += sampled[bounds[-1]:]
+                else:
+                    warnings.append(self._home_failed(failure[1]))
                 break
             part = candidates[failed]
             outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), failure[1])
             candidates = candidates[failed + 1:]
-        home_mm = self.arm.forward(self.home_rad[None])[0]
         q_here = accepted[-1].joints_rad[-1] if accepted else q0
-        if end_at_home and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
-            segs, p = self._to_safe(here, None, False)
-            if self._ik_pose(self.home_rad):
-                segs = lead + segs + self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
-                segs += self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
-                                       [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
-            else:                            # home is a pose Cartesian moves cannot end in: swing to it
-                q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]
-                segs = lead + segs + [Segment(SegmentKind.SWING, None, joints_rad=(q_safe, self.home_rad))]
-            sampled, failure = self._check_all(segs, t)
+        if not home_done and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
+            sampled, failure = self._check_all(lead + self._home_segments(here), t)
             if failure is None:
                 accepted += sampled
             else:
-                warnings.append(f"the move back to the home pose failed a check and was left out: "
-                                f"{failure[1].describe()}")
+                warnings.append(self._home_failed(failure[1]))
         ordered = [outcomes[p.id] for p in parts]
         return Plan(ordered, picks, *self._join(accepted, q0, start_mm, t0_s), warnings=warnings,
                     speed_scale=self.speed_scale)
+
+    def _home_segments(self, here) -> list[Segment]:
+        """From tool point ``here`` back to the home pose: to safe height, an arc to above home, straight
+        to home; or, if Cartesian moves cannot end in the home pose, a joint-space swing to it."""
+        home_mm = self.arm.forward(self.home_rad[None])[0]
+        segs, p = self._to_safe(here, None, False)
+        if not self._ik_pose(self.home_rad):
+            q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]
+            return segs + [Segment(SegmentKind.SWING, None, joints_rad=(q_safe, self.home_rad))]
+        segs += self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
+        return segs + self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
+                                     [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
+
+    @staticmethod
+    def _home_failed(rejection: Rejection) -> str:
+        return f"the move back to the home pose failed a check and was left out: {rejection.describe()}"
 
     def _precheck(self, parts: list[PartTarget]) -> list[Rejection | None]:
         """Reasons known before any motion, per part: the photo's verdict, no bin, grip fit, grip or

@@ -344,3 +344,23 @@ def test_slow_joints_stretch_the_moves_instead_of_rejecting_parts():
     speed = np.degrees(np.abs(np.diff(q, axis=0))[moving] / step[moving, None])
     assert speed.max() <= 20 * (1 + 1e-9)
     assert slow.cycle_s > 1.5 * fast.plan(parse_parts(SIX_REACHABLE_TWO_NOT, fast.cell)).cycle_s
+
+
+def test_a_way_home_that_fails_is_left_out_and_the_picks_kept():
+    # a lid over the home pose's vertical line: the picks (started elsewhere) pass, the rise to home
+    # does not; the plan ends above the last bin and says why
+    data = yaml.safe_load(SAMPLE_CELL.read_text())
+    data["keep_out"].append({"name": "lid", "shape": "box", "min_mm": [195, -10, 150], "max_mm": [215, 10, 160]})
+    cell = parse_cell(data)
+    planner = Planner(cell)
+    start = planner.arm.inverse([[150, 100, 100]]).joints_rad[0]
+    plan = planner.plan(parse_parts([{"id": "a", "class": "red", "x_mm": 180, "y_mm": 120},
+                                     {"id": "b", "class": "green", "x_mm": 250, "y_mm": 140}], cell),
+                        start_joints_rad=start)
+    assert [o.status for o in plan.parts] == ["planned", "planned"]
+    assert len(plan.warnings) == 1
+    assert plan.warnings[0].startswith("the move back to the home pose failed a check and was left out: "
+                                       "keep_out:lid: tool enters zone 'lid' at (")
+    assert "(rise at t=" in plan.warnings[0]
+    last_bin = cell.bins[plan.picks[-1].bin_name]
+    np.testing.assert_allclose(plan.samples.xyz_mm[-1], [last_bin.x, last_bin.y, cell.motion.safe_z_mm], atol=1e-6)
