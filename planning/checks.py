@@ -14,7 +14,7 @@ import numpy as np
 
 from planning.angles import wrap_angle
 from planning.arm import JOINT_NAMES, Arm, Reason
-from planning.motion import SampledSegment
+from planning.motion import SampledChain, SampledSegment
 
 __all__ = ["CheckContext", "Rejection", "first_failure", "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
 
@@ -74,6 +74,20 @@ def _slab(a: np.ndarray, d: np.ndarray, lo: float, hi: float) -> tuple[np.ndarra
     enter = np.where(still, np.where(inside, -np.inf, np.inf), np.minimum(t0, t1))
     leave = np.where(still, np.where(inside, np.inf, -np.inf), np.maximum(t0, t1))
     return enter, leave
+
+
+def _zone_bounds(zone) -> tuple[tuple, tuple]:
+    """A keep-out zone's bounding box (low corner, high corner), mm."""
+    if zone.shape == "cylinder":
+        r = zone.radius_mm
+        return (zone.x - r, zone.y - r, -np.inf), (zone.x + r, zone.y + r, zone.top_mm)
+    return tuple(zone.min_mm), tuple(zone.max_mm)
+
+
+def _may_enter(zone, pts) -> bool:
+    """False when the box around every link point misses the zone's box (most zones, most plans)."""
+    lo, hi = _zone_bounds(zone)
+    return all(float(c.max()) > a and float(c.min()) < b for c, a, b in zip(pts, lo, hi))
 
 
 def _zone_entry(zone, pts) -> tuple[np.ndarray, np.ndarray]:
@@ -140,30 +154,28 @@ def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Re
                      value=value, limit=limit, unit="deg")
 
 
-def first_failing_segment(ctx: CheckContext, segments: list[SampledSegment],
+def first_failing_segment(ctx: CheckContext, chain: SampledChain,
                           t0_s: float = 0.0) -> tuple[int, Rejection] | None:
-    """The index of the first segment with a failing sample and that sample's :class:`Rejection`
-    (:func:`first_failure` over consecutive segments at once); None if every sample passes."""
-    if not segments:
+    """The index of the first segment of a sampled chain with a failing sample and that sample's
+    :class:`Rejection` (:func:`first_failure` over all its segments at once); None if every sample
+    passes."""
+    if not chain.segments:
         return None
-    counts = [len(s.t_s) for s in segments]
-    starts = np.cumsum([0.0] + [s.duration_s for s in segments[:-1]])
-    kinds = np.repeat(np.arange(len(segments)), counts)
-    local_t = np.concatenate([s.t_s for s in segments])
-    joined = SampledSegment(segments[0].segment, sum(s.duration_s for s in segments),
-                            local_t + starts[kinds],
-                            np.concatenate([s.xyz_mm for s in segments]),
-                            np.concatenate([s.joints_rad for s in segments]),
-                            np.concatenate([s.reason for s in segments]))
-    swing = np.repeat([s.segment.kind.value == "swing" for s in segments], counts)
-    steps = np.diff(local_t)
-    steps[np.cumsum(counts)[:-1] - 1] = 0.0             # a segment's first sample repeats the last one's
+    counts = np.diff(chain.starts)
+    kinds = np.repeat(np.arange(len(chain.segments)), counts)
+    seg_t0 = np.concatenate([[0.0], np.cumsum(chain.durations_s[:-1])])
+    t_s = chain.t_s + seg_t0[kinds]
+    joined = SampledSegment(chain.segments[0], float(sum(chain.durations_s)), t_s, chain.xyz_mm,
+                            chain.joints_rad, chain.reason)
+    swing = np.repeat([s.kind.value == "swing" for s in chain.segments], counts)
+    steps = np.diff(chain.t_s)
+    steps[chain.starts[1:-1] - 1] = 0.0                 # a segment's first sample repeats the last one's
     rej = first_failure(ctx, joined, t0_s, dt_steps=steps, flip_allowed=swing[1:] | swing[:-1])
     if rej is None:
         return None
-    index = int(np.searchsorted(joined.t_s + t0_s, rej.time_s - 1e-9))
+    index = int(np.searchsorted(t_s + t0_s, rej.time_s - 1e-9))
     k = int(kinds[min(index, len(kinds) - 1)])
-    seg = segments[k].segment
+    seg = chain.segments[k]
     return k, Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
 
 
@@ -193,8 +205,9 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
         found.append((i, 0, lambda i=i: _ik_rejection(ctx, s, i, int(s.reason[i]))))
     valid = s.reason == Reason.OK
     if valid.any():
+        # samples IK refused take a harmless pose (no NaN may reach the bounds of _may_enter)
         q = np.where(valid[:, None], s.joints_rad, 0.0)
-        pts = _arm_points(arm, q, s.xyz_mm)
+        pts = _arm_points(arm, q, np.where(valid[:, None], s.xyz_mm, 0.0))
         # a straight link's lowest point is one of its ends
         z = pts[2]
         low = np.where(valid[:, None], np.minimum(z[:, :-1], z[:, 1:]), np.inf)
@@ -205,7 +218,7 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             found.append((int(i), 1, lambda z=z, n=_LINK_NAMES[k]: Rejection(
                 "floor_clearance", f"{n} at z={z:.1f} mm < {ctx.floor_clearance_mm:g} mm above the table",
                 value=z, limit=ctx.floor_clearance_mm, unit="mm")))
-        for zone in ctx.keep_out:
+        for zone in (z for z in ctx.keep_out if _may_enter(z, pts)):
             inside, enter = _zone_entry(zone, pts)
             inside &= valid[:, None]
             if inside.any():
@@ -215,7 +228,8 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
                     f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
     if m > 1:
         step = ctx.dt_s if dt_steps is None else np.where(np.asarray(dt_steps) > 0, dt_steps, np.inf)[:, None]
-        dq = np.abs(np.diff(s.joints_rad, axis=0)) / step                       # (M-1, 3) rad/s
+        step_rad = np.diff(s.joints_rad, axis=0)
+        dq = np.abs(step_rad) / step                                            # (M-1, 3) rad/s
         over = (dq > arm.max_speed_rad_s[None, :] * (1 + 1e-9)) & valid[1:, None] & valid[:-1, None]
         if over.any():
             i, j = np.argwhere(over)[0]
@@ -225,7 +239,9 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
                 value=v, limit=lim, unit="deg/s")))
         psi = arm.forearm_rad(s.joints_rad[:, 1], s.joints_rad[:, 2])
         bend = np.sign(wrap_angle(psi - s.joints_rad[:, 1]))
-        jump = np.abs(wrap_angle(np.diff(s.joints_rad, axis=0))).max(axis=1) > np.pi / 2
+        # a step over 90 deg once wrapped is one over 90 deg before: wrap only those
+        big = np.abs(step_rad) > np.pi / 2
+        jump = (big & (np.abs(wrap_angle(step_rad)) > np.pi / 2)).any(axis=1) if big.any() else np.zeros(m - 1, bool)
         flip = ((bend[1:] != bend[:-1]) & (bend[1:] != 0) & (bend[:-1] != 0) | jump) & valid[1:] & valid[:-1]
         if flip_allowed is not None:          # a swing changes branch on purpose
             flip &= ~np.asarray(flip_allowed, bool)

@@ -16,9 +16,9 @@ from enum import Enum
 import numpy as np
 
 from planning.arm import Arm
-from planning.paths import ArcPath, StraightPath, TimeScaling, peak_rate, time_scaling
+from planning.paths import ArcPath, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
 
-__all__ = ["SegmentKind", "Segment", "SampledSegment", "durations_s", "sample_segments", "timed_samples"]
+__all__ = ["SampledChain", "SampledSegment", "Segment", "SegmentKind", "durations_s", "sample_segments", "timed_samples"]
 
 _SPEED_MARGIN = 1.01    # stretch a little beyond the joint-speed ratio: samples are checked exactly
 
@@ -82,8 +82,28 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     return out
 
 
+@dataclass(frozen=True)
+class SampledChain:
+    """Consecutive segments sampled on one clock as flat arrays, segment after segment (each segment's
+    first sample repeats the previous one's last); :meth:`pieces` gives them one by one."""
+
+    segments: list[Segment]
+    durations_s: list[float]
+    starts: np.ndarray         # (K + 1,) index of each segment's first sample, then the total M
+    t_s: np.ndarray            # (M,) time within its own segment
+    xyz_mm: np.ndarray         # (M, 3) table frame
+    joints_rad: np.ndarray     # (M, 3)
+    reason: np.ndarray         # (M,) Reason codes from IK
+
+    def pieces(self) -> list[SampledSegment]:
+        """One :class:`SampledSegment` per segment (views of the flat arrays)."""
+        b = self.starts.tolist()
+        return [SampledSegment(seg, d, self.t_s[i:j], self.xyz_mm[i:j], self.joints_rad[i:j], self.reason[i:j])
+                for seg, d, i, j in zip(self.segments, self.durations_s, b[:-1], b[1:])]
+
+
 def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
-                  dt_s: float, speed_scale: float = 1.0, rounds: int = 3) -> list[SampledSegment]:
+                  dt_s: float, speed_scale: float = 1.0, rounds: int = 3) -> SampledChain:
     """Time and sample segments: the durations of :func:`durations_s`, then any move whose samples ask
     a joint for more than its speed limit (x ``speed_scale``) is stretched by that ratio (x 1.01) and
     everything is sampled again, up to ``rounds`` times (the checks reject what is still too fast)."""
@@ -91,54 +111,66 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
     limit = arm.max_speed_rad_s * speed_scale
     moving = np.array([seg.path is not None for seg in segments])
     for _ in range(rounds):
-        sampled = sample_segments(segments, durations, arm, scaling, dt_s)
-        counts = np.array([len(s.t_s) for s in sampled])
-        starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
-        joints = np.concatenate([s.joints_rad for s in sampled])
+        chain = sample_segments(segments, durations, arm, scaling, dt_s)
+        starts = chain.starts[:-1]
         with np.errstate(invalid="ignore"):
-            ratio = np.nanmax(np.abs(np.diff(joints, axis=0)) / (dt_s * limit), axis=1, initial=0.0)
+            ratio = np.nanmax(np.abs(np.diff(chain.joints_rad, axis=0)) / (dt_s * limit), axis=1, initial=0.0)
         ratio = np.append(np.nan_to_num(ratio), 0.0)
         ratio[starts[1:] - 1] = 0.0                     # the step into the next segment is not a step
         stretch = np.maximum.reduceat(ratio, starts)
         over = moving & (stretch > 1.0)
         if not over.any():
-            return sampled
+            return chain
         durations = [_round_up(d * float(r) * _SPEED_MARGIN, dt_s) if o else d
                      for d, r, o in zip(durations, stretch, over)]
-    return sampled
+    return chain
+
+
+_ZERO3 = np.zeros(3)
+_STILL = (_ZERO3, _ZERO3, _ZERO3, 0.0)     # d, e1, e2, w of a dwell or swing (c is where it holds)
 
 
 def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, scaling: TimeScaling,
-                    dt_s: float) -> list[SampledSegment]:
-    """Sample segments on the sequence clock, both ends included (M = duration / dt + 1 samples each),
-    with one IK call for all."""
-    pts, times, swings = [], [], {}
-    counts = [int(round(duration / dt_s)) + 1 for duration in durations]
+                    dt_s: float) -> SampledChain:
+    """Sample segments on the sequence clock, both ends included (M = duration / dt + 1 samples each):
+    every path's points from one evaluation of :func:`planning.paths.path_points` with its terms
+    repeated per sample, the ends exact, and one IK call for all."""
+    counts = np.array([int(round(duration / dt_s)) + 1 for duration in durations])
+    bounds = np.concatenate([[0], np.cumsum(counts)])
+    first, last = bounds[:-1], bounds[1:] - 1
+    seg_of = np.repeat(np.arange(len(segments)), counts)
+    local = np.arange(bounds[-1]) - first[seg_of]
     # every segment's path parameter from one time-scaling call (the last sample exactly at s = 1)
-    tau = np.concatenate([np.arange(c) / (c - 1) if c > 1 else np.ones(1) for c in counts])
-    s_all = np.split(time_scaling(scaling, tau)[0], np.cumsum(counts)[:-1])
-    for k, (seg, count, sv) in enumerate(zip(segments, counts, s_all)):
-        t = np.arange(count) * dt_s
-        sv[-1] = 1.0
+    span = np.maximum(counts - 1, 1)[seg_of]
+    s = time_scaling(scaling, np.where(counts[seg_of] > 1, local / span, 1.0))[0]
+    s[last] = 1.0
+    terms, ends, swings = [], [], []
+    for k, seg in enumerate(segments):
         if seg.joints_rad is not None:
-            q0, q1 = (np.asarray(q, float) for q in seg.joints_rad)
-            q = q0 + sv[:, None] * (q1 - q0)
-            swings[k] = q
-            xyz = arm.forward(q)
+            swings.append(k)
+            terms.append((_ZERO3, *_STILL))
+            ends.append((_ZERO3, _ZERO3))
         elif seg.path is None:
-            xyz = np.repeat(seg.hold_mm[None, :], count, axis=0)
+            terms.append((seg.hold_mm, *_STILL))
+            ends.append((seg.hold_mm, seg.hold_mm))
         else:
-            xyz = seg.path.points(sv)
-        pts.append(xyz)
-        times.append(t)
-    sol = arm.inverse(np.concatenate(pts))
-    out, start = [], 0
-    for k, (seg, duration, xyz, t) in enumerate(zip(segments, durations, pts, times)):
-        end = start + len(t)
-        if k in swings:                       # the joints are given; check them as they are
-            q = swings[k]
-            out.append(SampledSegment(seg, duration, t, xyz, q, arm.check_joints(q)))
-        else:
-            out.append(SampledSegment(seg, duration, t, xyz, sol.joints_rad[start:end], sol.reason[start:end]))
-        start = end
-    return out
+            terms.append(seg.path.terms())
+            ends.append((seg.path.p0, seg.path.p1))
+    c, d, e1, e2 = (np.array([t[i] for t in terms])[seg_of] for i in range(4))
+    w = np.array([t[4] for t in terms])[seg_of]
+    xyz = path_points((c, d, e1, e2, w), s)
+    xyz[first] = [e[0] for e in ends]                 # the ends exact (last wins for one-sample segments)
+    xyz[last] = [e[1] for e in ends]
+    for k in swings:                                   # joint space: the tool goes where the joints put it
+        q0, q1 = (np.asarray(q, float) for q in segments[k].joints_rad)
+        rows = slice(first[k], last[k] + 1)
+        xyz[rows] = arm.forward(q0 + s[rows, None] * (q1 - q0))
+    sol = arm.inverse(xyz)
+    joints, reason = sol.joints_rad, sol.reason
+    for k in swings:                                   # the joints are given; check them as they are
+        q0, q1 = (np.asarray(q, float) for q in segments[k].joints_rad)
+        rows = slice(first[k], last[k] + 1)
+        joints[rows] = q0 + s[rows, None] * (q1 - q0)
+        reason[rows] = arm.check_joints(joints[rows])
+    return SampledChain(list(segments), list(durations), bounds, local * dt_s, xyz, joints, reason)
+

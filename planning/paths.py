@@ -21,7 +21,7 @@ import numpy as np
 
 from planning.errors import GripsightError
 
-__all__ = ["ArcPath", "PathGeometryError", "StraightPath", "TimeScaling", "time_scaling", "peak_rate"]
+__all__ = ["ArcPath", "PathGeometryError", "StraightPath", "TimeScaling", "path_points", "peak_rate", "time_scaling"]
 
 
 class PathGeometryError(GripsightError, ValueError):
@@ -82,18 +82,35 @@ def _as_point(p, name: str) -> np.ndarray:
     arr = np.asarray(p, dtype=float)
     if arr.shape != (3,):
         raise ValueError(f"{name}: expected shape (3,), got {arr.shape}")
-    if not np.isfinite(arr).all():
+    if not all(math.isfinite(v) for v in arr.tolist()):
         raise ValueError(f"{name}: must be finite, got {arr.tolist()}")
     return arr
 
 
-def _cross(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """a x b for two 3-vectors (np.cross costs many times more for one pair)."""
-    return np.array([a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0]])
+def _cross(a, b) -> tuple[float, float, float]:
+    """a x b for two 3-vectors as float tuples (numpy costs many times more for one pair)."""
+    return (a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0])
 
 
-def _fmt(p: np.ndarray) -> str:
+def _dot(a, b) -> float:
+    return a[0] * b[0] + a[1] * b[1] + a[2] * b[2]
+
+
+def _fmt(p) -> str:
     return "(" + ", ".join(f"{v:.3f}" for v in p) + ")"
+
+
+_ZERO = np.zeros(3)
+
+
+def path_points(terms, s) -> np.ndarray:
+    """Points c + s d + cos(s w) e1 + sin(s w) e2 of a path's :meth:`terms` (M, 3), at path parameters
+    s (M,); every term may be one row for all samples or one row per sample, so segments of a whole
+    plan are evaluated in one pass (straight: c = p0, d = p1 - p0; arc: c = centre, w = sweep)."""
+    c, d, e1, e2, w = terms
+    s = np.asarray(s, dtype=float)
+    ang = s * w
+    return c + s[:, None] * d + np.cos(ang)[:, None] * e1 + np.sin(ang)[:, None] * e2
 
 
 @dataclass(frozen=True)
@@ -111,10 +128,20 @@ class StraightPath:
     def length_mm(self) -> float:
         return math.dist(self.p1, self.p0)
 
+    def terms(self) -> tuple:
+        """(c, d, e1, e2, w) of :func:`path_points`."""
+        return self.p0, self.p1 - self.p0, _ZERO, _ZERO, 0.0
+
     def points(self, s) -> np.ndarray:
-        """Points for path parameters s, shape (M,) -> (M, 3), table mm."""
-        s = np.asarray(s, dtype=float)[:, None]
-        return self.p0 + s * (self.p1 - self.p0)
+        """Points for path parameters s, shape (M,) -> (M, 3), table mm (the ends exact)."""
+        return _exact_ends(path_points(self.terms(), s), s, self.p0, self.p1)
+
+
+def _exact_ends(pts: np.ndarray, s, p0: np.ndarray, p1: np.ndarray) -> np.ndarray:
+    s = np.asarray(s, dtype=float)
+    pts[s == 0.0] = p0
+    pts[s == 1.0] = p1
+    return pts
 
 
 @dataclass(frozen=True)
@@ -142,42 +169,45 @@ class ArcPath:
     _e2: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self):
-        p0, via, p1 = (_as_point(p, n) for p, n in ((self.p0, "p0"), (self.via, "via"), (self.p1, "p1")))
+        arrays = [_as_point(p, n) for p, n in ((self.p0, "p0"), (self.via, "via"), (self.p1, "p1"))]
+        p0, via, p1 = (a.tolist() for a in arrays)
         for (a, na), (b, nb) in (((p0, "p0"), (via, "via")), ((via, "via"), (p1, "p1")), ((p0, "p0"), (p1, "p1"))):
             if math.dist(a, b) < 1e-9:
                 raise PathGeometryError(f"arc: {na} {_fmt(a)} and {nb} {_fmt(b)} coincide")
-        a, b = via - p0, p1 - p0
+        a = [v - o for v, o in zip(via, p0)]
+        b = [v - o for v, o in zip(p1, p0)]
         n = _cross(a, b)
-        nn = float(np.dot(n, n))
-        scale = math.hypot(*a) * math.hypot(*b)
-        if np.sqrt(nn) <= 1e-9 * scale:
+        nn = _dot(n, n)
+        if math.sqrt(nn) <= 1e-9 * math.hypot(*a) * math.hypot(*b):
             raise PathGeometryError(f"arc: p0 {_fmt(p0)}, via {_fmt(via)} and p1 {_fmt(p1)} are collinear")
         # circumcentre of the triangle (p0, via, p1), in 3D
-        centre = p0 + (np.dot(a, a) * _cross(b, n) + np.dot(b, b) * _cross(n, a)) / (2.0 * nn)
-        n_hat = n / np.sqrt(nn)
-        e1 = (p0 - centre) / math.dist(p0, centre)
+        aa, bb = _dot(a, a), _dot(b, b)
+        bn, na_ = _cross(b, n), _cross(n, a)
+        centre = [o + (aa * u + bb * v) / (2.0 * nn) for o, u, v in zip(p0, bn, na_)]
+        radius = math.dist(p0, centre)
+        n_len = math.sqrt(nn)
+        n_hat = [v / n_len for v in n]
+        e1 = [(v - c) / radius for v, c in zip(p0, centre)]
         e2 = _cross(n_hat, e1)
-        d1 = p1 - centre
-        sweep = float(np.arctan2(np.dot(d1, e2), np.dot(d1, e1))) % (2.0 * np.pi)
-        object.__setattr__(self, "p0", p0)
-        object.__setattr__(self, "via", via)
-        object.__setattr__(self, "p1", p1)
-        object.__setattr__(self, "centre", centre)
-        object.__setattr__(self, "radius_mm", math.dist(p0, centre))
+        d1 = [v - c for v, c in zip(p1, centre)]
+        sweep = math.atan2(_dot(d1, e2), _dot(d1, e1)) % (2.0 * math.pi)
+        object.__setattr__(self, "p0", arrays[0])
+        object.__setattr__(self, "via", arrays[1])
+        object.__setattr__(self, "p1", arrays[2])
+        object.__setattr__(self, "centre", np.array(centre))
+        object.__setattr__(self, "radius_mm", radius)
         object.__setattr__(self, "sweep_rad", sweep)
-        object.__setattr__(self, "_e1", e1)
-        object.__setattr__(self, "_e2", e2)
+        object.__setattr__(self, "_e1", np.array(e1))
+        object.__setattr__(self, "_e2", np.array(e2))
 
     @property
     def length_mm(self) -> float:
         return self.radius_mm * self.sweep_rad
 
+    def terms(self) -> tuple:
+        """(c, d, e1, e2, w) of :func:`path_points`."""
+        return self.centre, _ZERO, self.radius_mm * self._e1, self.radius_mm * self._e2, self.sweep_rad
+
     def points(self, s) -> np.ndarray:
-        """Points for path parameters s, shape (M,) -> (M, 3), table mm."""
-        ang = np.asarray(s, dtype=float)[:, None] * self.sweep_rad
-        pts = self.centre + self.radius_mm * (np.cos(ang) * self._e1 + np.sin(ang) * self._e2)
-        # exact end points (no rounding drift at s = 0 and s = 1)
-        s_flat = np.asarray(s, dtype=float)
-        pts[s_flat == 0.0] = self.p0
-        pts[s_flat == 1.0] = self.p1
-        return pts
+        """Points for path parameters s, shape (M,) -> (M, 3), table mm (the ends exact)."""
+        return _exact_ends(path_points(self.terms(), s), s, self.p0, self.p1)

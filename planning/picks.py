@@ -205,8 +205,8 @@ class Planner:
         """Time, sample and check consecutive segments together (one IK call for each stage); the
         failure is (index of the first failing segment, its Rejection), or None."""
         m = self.cell.motion
-        sampled = timed_samples(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
-        return sampled, first_failing_segment(self.ctx, sampled, t0_s)
+        chain = timed_samples(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
+        return chain.pieces(), first_failing_segment(self.ctx, chain, t0_s)
 
     def _above_bin(self, bin_name: str) -> np.ndarray:
         """Above a bin at safe height: where every pick into it leaves the tool."""

@@ -64,3 +64,22 @@ def test_a_thin_wall_between_link_test_points_is_found():
     assert rej.detail.startswith("forearm enters zone 'wall' at (")
     x, y, z = (float(v) for v in rej.detail.split("at (")[1].split(")")[0].split(","))
     assert 140 <= x <= 142 and abs(y) <= 60 and 120 <= z <= 150
+
+
+def test_a_zone_is_still_tested_when_a_later_sample_cannot_be_reached(sample_cell):
+    # an unreachable sample carries NaN joints and tool point; it must not hide the zone the sample
+    # before it enters (zones far from every link are skipped by their bounds)
+    from planning.arm import Arm, Reason
+    from planning.checks import CheckContext, first_failure
+    from planning.motion import SampledSegment, Segment, SegmentKind
+
+    arm = Arm.from_config(sample_cell.arm)
+    zone = SimpleNamespace(shape="box", min_mm=(190.0, -10.0, 10.0), max_mm=(230.0, 10.0, 40.0), name="jig")
+    ctx = CheckContext(arm, 2.0, (zone,), 0.02)
+    xyz = np.array([[210.0, 0.0, 20.0], [np.nan, np.nan, np.nan]])
+    sol = arm.inverse(xyz[:1])
+    q = np.vstack([sol.joints_rad, np.full((1, 3), np.nan)])
+    seg = SampledSegment(Segment(SegmentKind.DESCEND, None, xyz[0]), 0.02, np.array([0.0, 0.02]), xyz, q,
+                         np.array([Reason.OK, Reason.OUT_OF_REACH], dtype=np.int8))
+    rej = first_failure(ctx, seg, t0_s=1.0)
+    assert rej.check == "keep_out:jig" and rej.time_s == pytest.approx(1.0)
