@@ -363,27 +363,17 @@ class Planner:
 
     def _join(self, sampled: list[SampledSegment], q0, start_mm, t0_s):
         """Concatenate segments on one clock (each segment's first sample is the previous one's last)."""
-        segments, t_parts, xyz, q, closed, seg_idx, kinds, pids = [], [], [], [], [], [], [], []
-        t = t0_s
-        t_parts.append(np.array([t0_s]))
-        xyz.append(start_mm[None])
-        q.append(q0[None])
-        closed.append(np.array([False]))
-        seg_idx.append(np.array([-1]))
-        kinds.append("start")
-        pids.append("")
-        for k, s in enumerate(sampled):
-            segments.append((s, t))
-            n = len(s.t_s) - 1
-            t_parts.append(t + s.t_s[1:])
-            xyz.append(s.xyz_mm[1:])
-            q.append(s.joints_rad[1:])
-            closed.append(np.full(n, s.segment.gripper_closed))
-            seg_idx.append(np.full(n, k))
-            kinds += [s.segment.kind.value] * n
-            pids += [s.segment.part_id or ""] * n
-            t += s.duration_s
-        samples = JointSamples(np.concatenate(t_parts), np.concatenate(xyz), np.concatenate(q),
-                               np.concatenate(closed), np.concatenate(seg_idx), kinds, pids)
-        return segments, samples
-
+        n = np.array([len(s.t_s) - 1 for s in sampled], dtype=int)
+        seg_t0 = np.cumsum([t0_s] + [s.duration_s for s in sampled])[:-1]
+        segments = list(zip(sampled, seg_t0.tolist()))
+        local = np.concatenate([[0.0]] + [s.t_s[1:] for s in sampled])
+        t = local + np.concatenate([[t0_s], np.repeat(seg_t0, n)])
+        xyz = np.concatenate([start_mm[None]] + [s.xyz_mm[1:] for s in sampled])
+        q = np.concatenate([q0[None]] + [s.joints_rad[1:] for s in sampled])
+        closed = np.concatenate([[False], np.repeat([s.segment.gripper_closed for s in sampled], n)]).astype(bool)
+        seg_idx = np.concatenate([[-1], np.repeat(np.arange(len(sampled)), n)])
+        kinds, pids = ["start"], [""]
+        for s, count in zip(sampled, n.tolist()):
+            kinds += [s.segment.kind.value] * count
+            pids += [s.segment.part_id or ""] * count
+        return segments, JointSamples(t, xyz, q, closed, seg_idx, kinds, pids)
