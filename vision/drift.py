@@ -12,6 +12,7 @@ calibration (``ok``), refit from this photo (``refit``), or refuse the photo (``
 
 from __future__ import annotations
 
+from collections import Counter
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -76,16 +77,20 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
                                f"was made from {w}x{h} px photos; calibrate again with a photo from this camera")
     tol = cell.camera.drift_tolerance_mm
     seen = {d.id: d.corners_px for d in detections}
-    shifts, missing = [], []
+    counts = Counter(d.id for d in detections)
     old = stored.mapping
-    for marker_id, old_px in sorted(stored.marker_corners_px.items()):
-        if marker_id not in seen or sum(1 for d in detections if d.id == marker_id) > 1:
-            missing.append(marker_id)
-            continue
-        new_px = seen[marker_id]
-        shift_px = float(np.linalg.norm(new_px - old_px, axis=1).mean())
-        shift_mm = float(np.linalg.norm(old(new_px) - old(old_px), axis=1).mean())
-        shifts.append(MarkerShift(marker_id, shift_px, shift_mm))
+    ids = sorted(stored.marker_corners_px)
+    missing = [i for i in ids if i not in seen or counts[i] > 1]
+    both = [i for i in ids if i not in missing]
+    shifts = []
+    if both:
+        # every marker's corners then and now through the stored mapping at once
+        old_px = np.array([np.asarray(stored.marker_corners_px[i], float).reshape(4, 2) for i in both])
+        new_px = np.array([np.asarray(seen[i], float).reshape(4, 2) for i in both])
+        mm = old(np.concatenate([new_px, old_px]).reshape(-1, 2)).reshape(2, len(both), 4, 2)
+        shift_px = np.sqrt(((new_px - old_px) ** 2).sum(axis=2)).mean(axis=1)
+        shift_mm = np.sqrt(((mm[0] - mm[1]) ** 2).sum(axis=2)).mean(axis=1)
+        shifts = [MarkerShift(i, float(a), float(b)) for i, a, b in zip(both, shift_px, shift_mm)]
     notes = []
     if not missing and shifts and max(sh.shift_px for sh in shifts) < _STILL_PX:
         # every calibrated marker is where it was: the mapping has not moved (no refit needed)

@@ -31,6 +31,9 @@ _PROFILE_HALF_PX = 3.0
 _PROFILE_STEP_PX = 0.25
 _SAMPLES_PER_HALF_EDGE = 10
 _LIN_LUT = (linear_from_srgb(np.arange(256) / 255.0) * 255.0).astype(np.float32)
+# where each edge is profiled: 2 x S places along it (halves apart near the middle), P offsets across it
+_ALONG_EDGE = np.concatenate([np.linspace(0.08, 0.45, _SAMPLES_PER_HALF_EDGE), np.linspace(0.55, 0.92, _SAMPLES_PER_HALF_EDGE)])
+_ACROSS_EDGE_PX = np.arange(-_PROFILE_HALF_PX, _PROFILE_HALF_PX + 1e-9, _PROFILE_STEP_PX)
 
 
 def aruco_dictionary(name: str):
@@ -87,9 +90,8 @@ def _edge_points(lin: np.ndarray, corners: np.ndarray):
     outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
     normal = normal * outward                         # points from ink to paper
     s = _SAMPLES_PER_HALF_EDGE
-    t = np.concatenate([np.linspace(0.08, 0.45, s), np.linspace(0.55, 0.92, s)])        # (2S,)
+    t, offs = _ALONG_EDGE, _ACROSS_EDGE_PX
     base = a[:, :, None, :] + t[None, None, :, None] * d[:, :, None, :]                 # (M, 4, 2S, 2)
-    offs = np.arange(-_PROFILE_HALF_PX, _PROFILE_HALF_PX + 1e-9, _PROFILE_STEP_PX)      # (P,)
     pts = base[..., None, :] + offs[None, None, None, :, None] * normal[:, :, None, None, :]
     flat = pts.reshape(-1, 2).astype(np.float32)
     prof = cv2.remap(lin, flat[:, 0].reshape(1, -1), flat[:, 1].reshape(1, -1), cv2.INTER_LINEAR,
@@ -156,25 +158,32 @@ def _cells(dictionary_name: str, marker_id: int) -> np.ndarray:
     return d.generateImageMarker(marker_id, d.markerSize + 2) < 128
 
 
+@functools.lru_cache(maxsize=8)
+def _cell_grid(n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Where a marker of n x n cells (border included) is read, in cell units: every cell's centre, then a
+    ring just outside (float32, (n * n + 4 n, 2)); and which cells are border cells."""
+    centres = np.arange(n) + 0.5
+    gx, gy = np.meshgrid(centres, centres)
+    ring = np.concatenate([np.column_stack([centres, np.full(n, -0.5)]), np.column_stack([centres, np.full(n, n + 0.5)]),
+                           np.column_stack([np.full(n, -0.5), centres]), np.column_stack([np.full(n, n + 0.5), centres])])
+    border = np.zeros((n, n), bool)
+    border[[0, -1], :] = border[:, [0, -1]] = True
+    return np.concatenate([np.column_stack([gx.ravel(), gy.ravel()]), ring]).astype(np.float32), border.ravel()
+
+
 def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str) -> bool:
     """Whether every marker's cells, read at their centres through its corners, are its id's pattern
     (one cell in error allowed): the ink level from the border cells, the paper level from a ring just
     outside, the threshold half way."""
     n = aruco_dictionary(dictionary_name).markerSize + 2
-    centres = np.arange(n) + 0.5
-    gx, gy = np.meshgrid(centres, centres)
-    ring = np.concatenate([np.column_stack([centres, np.full(n, -0.5)]), np.column_stack([centres, np.full(n, n + 0.5)]),
-                           np.column_stack([np.full(n, -0.5), centres]), np.column_stack([np.full(n, n + 0.5), centres])])
-    local = np.concatenate([np.column_stack([gx.ravel(), gy.ravel()]), ring]).astype(np.float32)
+    local, border = _cell_grid(n)
     square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
     pts = np.concatenate([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
                           for c in corners])
     values = cv2.remap(lin, pts[:, 0].reshape(1, -1), pts[:, 1].reshape(1, -1), cv2.INTER_LINEAR,
                        borderMode=cv2.BORDER_REPLICATE).reshape(len(corners), -1)
-    border = np.zeros((n, n), bool)
-    border[[0, -1], :] = border[:, [0, -1]] = True
     cells = values[:, : n * n]
-    threshold = 0.5 * (np.median(cells[:, border.ravel()], axis=1) + np.median(values[:, n * n:], axis=1))
+    threshold = 0.5 * (np.median(cells[:, border], axis=1) + np.median(values[:, n * n:], axis=1))
     ink = cells < threshold[:, None]
     expected = np.array([_cells(dictionary_name, int(i)).ravel() for i in ids])
     return bool(((ink != expected).sum(axis=1) <= 1).all())
@@ -185,10 +194,11 @@ def _linearised_around(image, corners: np.ndarray) -> np.ndarray:
     and 8 px, room for the edge profiles and the ring outside its cells); zero elsewhere."""
     h, w = image.shape[:2]
     lin = np.zeros((h, w), np.float32)
-    for c in corners:
-        pad = 0.25 * np.ptp(c, axis=0).max() + 8.0
-        x0, y0 = np.maximum(np.floor(c.min(axis=0) - pad).astype(int), 0)
-        x1, y1 = np.minimum(np.ceil(c.max(axis=0) + pad).astype(int), [w, h])
+    lo, hi = corners.min(axis=1), corners.max(axis=1)                       # (M, 2) each
+    pad = 0.25 * (hi - lo).max(axis=1, keepdims=True) + 8.0
+    lo = np.maximum(np.floor(lo - pad), 0).astype(int).tolist()
+    hi = np.minimum(np.ceil(hi + pad), [w, h]).astype(int).tolist()
+    for (x0, y0), (x1, y1) in zip(lo, hi):
         if x1 > x0 and y1 > y0:
             lin[y0:y1, x0:x1] = linearised_gray(image[y0:y1, x0:x1])
     return lin

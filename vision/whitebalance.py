@@ -106,7 +106,7 @@ def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | 
     lum = vals.mean(axis=2)
     keep = inside & (lum > 0.6 * masked_median(lum, inside)[:, None])     # drop samples in a shadow or on ink
     usable = inside.sum(axis=1) >= 16
-    centres = np.array([d.corners_px.mean(axis=0) for d in detections])[usable]
+    centres = np.array([d.corners_px for d in detections]).mean(axis=1)[usable]
     medians = np.stack([masked_median(vals[..., ch], keep) for ch in range(3)], axis=1)[usable]
     if not len(medians):
         return None
