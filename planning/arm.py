@@ -219,15 +219,26 @@ class Arm:
         z = self.base_height_mm + self.upper_arm_mm * np.sin(shoulder) + self.forearm_mm * np.sin(psi) + tz
         return np.column_stack([r * np.cos(base), r * np.sin(base), z])
 
-    def elbow_wrist_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
-        """Elbow and wrist points in table mm, each shape (N, 3), for drawing and clearance checks."""
+    def chain_rz_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
+        """Shoulder, elbow and wrist in the arm's vertical plane: radius from the base axis and height,
+        each shape (N, 3) (the whole arm lies in the half-plane at the base angle)."""
         q = _as_points(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
-        r_e = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(q[:, 1])
-        z_e = self.base_height_mm + self.upper_arm_mm * np.sin(q[:, 1])
-        r_w, z_w = r_e + self.forearm_mm * np.cos(psi), z_e + self.forearm_mm * np.sin(psi)
+        r = np.empty((len(q), 3))
+        z = np.empty((len(q), 3))
+        r[:, 0], z[:, 0] = self.shoulder_offset_mm, self.base_height_mm
+        r[:, 1] = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(q[:, 1])
+        z[:, 1] = self.base_height_mm + self.upper_arm_mm * np.sin(q[:, 1])
+        r[:, 2] = r[:, 1] + self.forearm_mm * np.cos(psi)
+        z[:, 2] = z[:, 1] + self.forearm_mm * np.sin(psi)
+        return r, z
+
+    def elbow_wrist_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
+        """Elbow and wrist points in table mm, each shape (N, 3), for drawing."""
+        q = _as_points(joints_rad, "joints_rad")
+        r, z = self.chain_rz_mm(q)
         c, s = np.cos(q[:, 0]), np.sin(q[:, 0])
-        return (np.column_stack([r_e * c, r_e * s, z_e]), np.column_stack([r_w * c, r_w * s, z_w]))
+        return tuple(np.column_stack([r[:, k] * c, r[:, k] * s, z[:, k]]) for k in (1, 2))
 
     # ------------------------------------------------------------ inverse
     def inverse(self, xyz_mm, branch: Branch | str | None = None) -> IKSolution:

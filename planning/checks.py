@@ -8,7 +8,7 @@ branch consistency. Grip fit is checked per part before any motion is planned (s
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -49,6 +49,7 @@ class CheckContext:
     floor_clearance_mm: float
     keep_out: tuple = ()
     dt_s: float = 0.02
+    reach_spans: dict = field(default_factory=dict, compare=False, repr=False)   # height -> RadialReach
 
 
 _LINK_NAMES = ("upper arm", "forearm", "tool")
@@ -57,11 +58,13 @@ _LINK_NAMES = ("upper arm", "forearm", "tool")
 def _arm_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Shoulder, elbow, wrist and tool points as x, y, z arrays of shape (M, 4): link k runs from
     column k to column k + 1 (upper arm, forearm, tool)."""
-    elbow, wrist = arm.elbow_wrist_mm(joints_rad)
+    r, z_chain = arm.chain_rz_mm(joints_rad)
     base = joints_rad[:, 0]
-    x = np.column_stack([arm.shoulder_offset_mm * np.cos(base), elbow[:, 0], wrist[:, 0], tool_mm[:, 0]])
-    y = np.column_stack([arm.shoulder_offset_mm * np.sin(base), elbow[:, 1], wrist[:, 1], tool_mm[:, 1]])
-    z = np.column_stack([np.full(len(base), arm.base_height_mm), elbow[:, 2], wrist[:, 2], tool_mm[:, 2]])
+    x, y, z = np.empty((len(base), 4)), np.empty((len(base), 4)), np.empty((len(base), 4))
+    np.multiply(r, np.cos(base)[:, None], out=x[:, :3])
+    np.multiply(r, np.sin(base)[:, None], out=y[:, :3])
+    z[:, :3] = z_chain
+    x[:, 3], y[:, 3], z[:, 3] = tool_mm[:, 0], tool_mm[:, 1], tool_mm[:, 2]
     return x, y, z
 
 
@@ -123,15 +126,23 @@ def _deg(x) -> float:
     return float(np.round(np.degrees(x), 9))
 
 
+def _reach_at(ctx: CheckContext, z_mm: float):
+    """The reachable radii at one height (for the out-of-reach report), remembered per check context:
+    the parts of one class are all gripped at one height."""
+    if z_mm not in ctx.reach_spans:
+        from planning.reach import radial_reach
+
+        ctx.reach_spans[z_mm] = radial_reach(ctx.arm, z_mm, step_mm=0.5)
+    return ctx.reach_spans[z_mm]
+
+
 def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Rejection:
     arm = ctx.arm
     x, y, z = s.xyz_mm[i]
     reason = Reason(code)
     q = np.degrees(s.joints_rad[i])
     if reason is Reason.OUT_OF_REACH:
-        from planning.reach import radial_reach
-
-        rr = radial_reach(arm, float(z), step_mm=0.5)
+        rr = _reach_at(ctx, float(z))
         span = "nothing" if rr.r_min_mm is None else f"{rr.r_min_mm:.1f}-{rr.r_max_mm:.1f} mm"
         r = float(np.hypot(x, y))
         return Rejection(reason.label, f"tool at r={r:.1f} mm, z={z:.1f} mm; reachable r at that height: {span}",
