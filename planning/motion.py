@@ -68,18 +68,19 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     scaling's peak rate under its speed limit; a dwell lasts ``dwell_s``. ``speed_scale`` < 1 slows
     every move (tool speed and joint speeds) by that factor, for a first careful run. A move whose
     joints would be too fast is stretched by :func:`timed_samples`."""
-    out = []
-    for seg in segments:
-        if seg.joints_rad is not None:        # joint space: the slowest joint at the scaling's peak rate
-            q0, q1 = seg.joints_rad
-            need = float(np.max(np.abs(np.asarray(q1) - q0) / (arm.max_speed_rad_s * speed_scale))) * peak_rate(scaling)
-            out.append(_round_up(max(need * _SPEED_MARGIN, dt_s), dt_s))
-        elif seg.path is None:
-            out.append(_round_up(dwell_s, dt_s))
-        else:
-            t_speed = seg.path.length_mm * peak_rate(scaling) / (speed_mm_s * speed_scale)
-            out.append(_round_up(max(t_speed, dt_s), dt_s))
-    return out
+    # one duration per segment: swings from their slowest joint, dwells fixed, moves from their length
+    rate, speed = peak_rate(scaling), speed_mm_s * speed_scale
+    need = np.array([_swing_s(seg, arm, speed_scale) * rate * _SPEED_MARGIN if seg.joints_rad is not None
+                     else dwell_s if seg.path is None else seg.path.length_mm * rate / speed for seg in segments])
+    moving = np.array([seg.path is not None or seg.joints_rad is not None for seg in segments], bool)
+    need = np.where(moving, np.maximum(need, dt_s), need)
+    return (np.maximum(1, np.ceil(need / dt_s - 1e-9)) * dt_s).tolist()
+
+
+def _swing_s(seg: Segment, arm: Arm, speed_scale: float) -> float:
+    """A joint-space swing's time at unit peak rate: its largest joint move over that joint's speed."""
+    q0, q1 = seg.joints_rad
+    return float(np.max(np.abs(np.asarray(q1) - q0) / (arm.max_speed_rad_s * speed_scale)))
 
 
 @dataclass(frozen=True)

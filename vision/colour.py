@@ -82,50 +82,48 @@ def delta_e_2000(lab1, lab2, kL: float = 1.0, kC: float = 1.0, kH: float = 1.0):
 
     Implemented as written out by Sharma, Wu & Dalal, "The CIEDE2000 color-difference formula:
     implementation notes, supplementary test data, and mathematical observations" (2005), including
-    their notes on hue angles when a chroma is zero and on the mean hue across 0/360 degrees.
+    their notes on hue angles when a chroma is zero and on the mean hue across 0/360 degrees. Written
+    with products, square roots and boolean factors: np.hypot, np.degrees, % and np.where are several
+    times slower than the arithmetic they stand for, and float32 input stays float32.
     """
     dtype = np.result_type(np.asarray(lab1).dtype, np.asarray(lab2).dtype, np.float32)   # float32 stays
+    f = dtype.type                    # constants multiplying booleans must carry the dtype
     lab1 = np.asarray(lab1, dtype=dtype)
     lab2 = np.asarray(lab2, dtype=dtype)
-    # written with products, square roots and where: np.hypot, np.degrees and % are several times
-    # slower than the arithmetic they stand for
-    deg = 180.0 / np.pi
-    rad = np.pi / 180.0
     L1, a1, b1 = lab1[..., 0], lab1[..., 1], lab1[..., 2]
     L2, a2, b2 = lab2[..., 0], lab2[..., 1], lab2[..., 2]
+    deg, rad = f(180.0 / np.pi), f(np.pi / 180.0)
     c_mean = 0.5 * (np.sqrt(a1 * a1 + b1 * b1) + np.sqrt(a2 * a2 + b2 * b2))
     c7 = _seventh_power(c_mean)
-    g = 0.5 * (1.0 - np.sqrt(c7 / (c7 + 25.0 ** 7)))
-    a1p, a2p = (1.0 + g) * a1, (1.0 + g) * a2
+    g1 = 1.5 - 0.5 * np.sqrt(c7 / (c7 + 25.0 ** 7))          # 1 + G
+    a1p, a2p = g1 * a1, g1 * a2
     c1p, c2p = np.sqrt(a1p * a1p + b1 * b1), np.sqrt(a2p * a2p + b2 * b2)
-    h1p = np.arctan2(b1, a1p) * deg      # (-180, 180]; a zero chroma's hue never counts (its dH' is 0)
+    h1p = np.arctan2(b1, a1p) * deg
     h2p = np.arctan2(b2, a2p) * deg
-    h1p = np.where(h1p < 0, h1p + 360.0, h1p)              # [0, 360)
-    h2p = np.where(h2p < 0, h2p + 360.0, h2p)
-    dLp = L2 - L1
-    dCp = c2p - c1p
-    zero = (c1p * c2p) == 0
+    h1p += f(360.0) * (h1p < 0)                              # [0, 360)
+    h2p += f(360.0) * (h2p < 0)
+    cc = c1p * c2p
+    chromatic = cc != 0
     dh = h2p - h1p
-    dh = np.where(dh > 180.0, dh - 360.0, np.where(dh < -180.0, dh + 360.0, dh))
-    dh = np.where(zero, 0.0, dh)
-    dHp = 2.0 * np.sqrt(c1p * c2p) * np.sin(dh * (rad / 2.0))
-    Lp = 0.5 * (L1 + L2)
-    Cp = 0.5 * (c1p + c2p)
+    far = np.abs(dh) > 180.0
+    dh -= f(360.0) * far * np.sign(dh)                       # (-180, 180]
+    dh *= chromatic                                          # a zero chroma's hue never counts
+    dHp = 2.0 * np.sqrt(cc) * np.sin(dh * (rad / 2.0))
     hsum = h1p + h2p
-    hp = np.where(np.abs(h1p - h2p) <= 180.0, hsum / 2.0,
-                  np.where(hsum < 360.0, (hsum + 360.0) / 2.0, (hsum - 360.0) / 2.0))
-    hp = np.where(zero, hsum, hp)
+    # mean hue: half the sum, moved by 180 when the hues are more than 180 apart (Sharma et al. 2005)
+    hp = 0.5 * hsum + f(180.0) * far * (f(1.0) - f(2.0) * (hsum >= 360.0))
+    hp = np.where(chromatic, hp, hsum)
     hr = hp * rad
     t = (1.0 - 0.17 * np.cos(hr - 30.0 * rad) + 0.24 * np.cos(2.0 * hr)
          + 0.32 * np.cos(3.0 * hr + 6.0 * rad) - 0.20 * np.cos(4.0 * hr - 63.0 * rad))
     q = (hp - 275.0) / 25.0
-    d_theta = 30.0 * np.exp(-q * q)
+    Cp = 0.5 * (c1p + c2p)
     cp7 = _seventh_power(Cp)
-    rc = 2.0 * np.sqrt(cp7 / (cp7 + 25.0 ** 7))
-    lq = (Lp - 50.0) * (Lp - 50.0)
+    rt = -2.0 * np.sqrt(cp7 / (cp7 + 25.0 ** 7)) * np.sin((60.0 * rad) * np.exp(-q * q))
+    Lm = 0.5 * (L1 + L2) - 50.0
+    lq = Lm * Lm
     sl = 1.0 + 0.015 * lq / np.sqrt(20.0 + lq)
-    sc = 1.0 + 0.045 * Cp
-    sh = 1.0 + 0.015 * Cp * t
-    rt = -np.sin(d_theta * (2.0 * rad)) * rc
-    tl, tc, th = dLp / (kL * sl), dCp / (kC * sc), dHp / (kH * sh)
+    tl = (L2 - L1) / (kL * sl)
+    tc = (c2p - c1p) / (kC * (1.0 + 0.045 * Cp))
+    th = dHp / (kH * (1.0 + 0.015 * Cp * t))
     return np.sqrt(tl * tl + tc * tc + th * th + rt * tc * th)

@@ -80,22 +80,11 @@ def _edge_points(lin: np.ndarray, corners: np.ndarray):
     corner k+1), half h (0: next to corner k, 1: next to corner k+1).
     """
     m = len(corners)
-    a = corners                                       # (M, 4, 2)
-    b = np.roll(corners, -1, axis=1)
-    centre = corners.mean(axis=1, keepdims=True)
-    d = b - a
-    length = np.linalg.norm(d, axis=-1, keepdims=True)
-    t_dir = d / length
-    normal = np.stack([t_dir[..., 1], -t_dir[..., 0]], axis=-1)
-    outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
-    normal = normal * outward                         # points from ink to paper
     s = _SAMPLES_PER_HALF_EDGE
-    t, offs = _ALONG_EDGE, _ACROSS_EDGE_PX
-    base = a[:, :, None, :] + t[None, None, :, None] * d[:, :, None, :]                 # (M, 4, 2S, 2)
-    pts = base[..., None, :] + offs[None, None, None, :, None] * normal[:, :, None, None, :]
-    flat = pts.reshape(-1, 2).astype(np.float32)
-    prof = cv2.remap(lin, flat[:, 0].reshape(1, -1), flat[:, 1].reshape(1, -1), cv2.INTER_LINEAR,
-                     borderMode=cv2.BORDER_REPLICATE).reshape(pts.shape[:-1])           # (M, 4, 2S, P)
+    offs = _ACROSS_EDGE_PX
+    base, normal, flat = _profile_grid(np.ascontiguousarray(corners, float).tobytes(), m)
+    prof = cv2.remap(lin, flat[0], flat[1], cv2.INTER_LINEAR,
+                     borderMode=cv2.BORDER_REPLICATE).reshape(m, 4, 2 * s, len(offs))     # (M, 4, 2S, P)
     k = max(2, int(round(0.8 / _PROFILE_STEP_PX)))
     ink = prof[..., :k].mean(axis=-1, keepdims=True)
     paper = prof[..., -k:].mean(axis=-1, keepdims=True)
@@ -113,6 +102,29 @@ def _edge_points(lin: np.ndarray, corners: np.ndarray):
     points = base + crossing[..., None] * normal[:, :, None, :]
     points = points.reshape(m, 4, 2, s, 2).reshape(m, 8, s, 2)
     return points, valid.reshape(m, 8, s)
+
+
+@functools.lru_cache(maxsize=16)
+def _profile_grid(corners_bytes: bytes, m: int):
+    """Where the edges of markers with these corners are profiled: the points along each edge (M, 4, 2S, 2),
+    the outward normals (M, 4, 2) and every profile sample as remap maps (2, 1, M * 4 * 2S * P) float32.
+    Remembered: a still camera's markers are profiled at the same expected corners in every photo."""
+    corners = np.frombuffer(corners_bytes).reshape(m, 4, 2)
+    a = corners                                       # (M, 4, 2)
+    b = np.roll(corners, -1, axis=1)
+    centre = corners.mean(axis=1, keepdims=True)
+    d = b - a
+    length = np.linalg.norm(d, axis=-1, keepdims=True)
+    t_dir = d / length
+    normal = np.stack([t_dir[..., 1], -t_dir[..., 0]], axis=-1)
+    outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
+    normal = normal * outward                         # points from ink to paper
+    base = a[:, :, None, :] + _ALONG_EDGE[None, None, :, None] * d[:, :, None, :]       # (M, 4, 2S, 2)
+    pts = base[..., None, :] + _ACROSS_EDGE_PX[None, None, None, :, None] * normal[:, :, None, None, :]
+    flat = np.ascontiguousarray(np.moveaxis(pts.reshape(-1, 2).astype(np.float32), -1, 0)[:, None, :])
+    for arr in (base, normal, flat):
+        arr.flags.writeable = False
+    return base, normal, flat
 
 
 def _fit_lines(points: np.ndarray, valid: np.ndarray):

@@ -168,15 +168,13 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     label_blocks[by, bx] = coarse_label[by, bx][:, None, None] * ok
     de_blocks[by, bx] = coarse_de[by, bx][:, None, None] * ok
     by, bx = np.nonzero((near > 0) & ~inside)
-    ok = valid_blocks[by, bx].ravel()
-    pixels = _blocks(block, f, hs, ws)[by, bx].reshape(-1, 3)[ok]
-    lab = balanced_lab(pixels, np.repeat(gain[by, bx], f * f, axis=0)[ok])
-    classes_of, distances = classify_pixels(lab, classes, background)
-    fine_label = np.zeros(len(ok), np.uint8)
-    fine_de = np.zeros(len(ok), np.float32)
-    fine_label[ok], fine_de[ok] = classes_of, distances
-    label_blocks[by, bx] = fine_label.reshape(-1, f, f)
-    de_blocks[by, bx] = fine_de.reshape(-1, f, f)
+    # every pixel of those blocks, each block white-balanced by its own factor; pixels outside the
+    # searched area are classified too and then cleared (cheaper than picking them out first)
+    lab = balanced_lab(_blocks(block, f, hs, ws)[by, bx], gain[by, bx][:, None, None, :])
+    classes_of, distances = classify_pixels(lab.reshape(-1, 3), classes, background)
+    ok = valid_blocks[by, bx]
+    label_blocks[by, bx] = classes_of.reshape(-1, f, f) * ok
+    de_blocks[by, bx] = np.where(ok, distances.reshape(-1, f, f), np.float32(0))
     windows = [tuple(int(c) * f for c in stats[i, :4]) for i in range(1, n)]
     return ClassifiedRegion((u0, v0), label, delta_e, groups, windows, f)
 
