@@ -128,24 +128,25 @@ def _profile_grid(corners_bytes: bytes, m: int):
 
 
 def _fit_lines(points: np.ndarray, valid: np.ndarray):
-    """Total-least-squares lines (point, direction) through each half edge's valid points."""
-    w = valid.astype(float)[..., None]
-    n = np.maximum(w.sum(axis=-2), 1.0)
-    mean = (points * w).sum(axis=-2) / n
-    c = (points - mean[..., None, :]) * w
-    cov = np.einsum("...si,...sj->...ij", c, c)
-    _, vecs = np.linalg.eigh(cov)
-    return mean, vecs[..., :, 1], valid.sum(axis=-1)
+    """Total-least-squares lines (point, direction) through each half edge's valid points: the mean and
+    the principal axis of the 2 x 2 scatter, in closed form (angle 0.5 atan2(2 sxy, sxx - syy))."""
+    w = valid.astype(float)
+    n = np.maximum(w.sum(axis=-1), 1.0)
+    px, py = points[..., 0], points[..., 1]
+    mx, my = (px * w).sum(axis=-1) / n, (py * w).sum(axis=-1) / n
+    dx, dy = (px - mx[..., None]) * w, (py - my[..., None]) * w
+    sxx, syy, sxy = (dx * dx).sum(axis=-1), (dy * dy).sum(axis=-1), (dx * dy).sum(axis=-1)
+    theta = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
+    return np.stack([mx, my], axis=-1), np.stack([np.cos(theta), np.sin(theta)], axis=-1), valid.sum(axis=-1)
 
 
 def _intersect(p1, d1, p2, d2):
-    a = np.stack([d1, -d2], axis=-1)
-    det = np.linalg.det(a)
-    rhs = p2 - p1
+    """Where the lines p1 + t d1 and p2 + u d2 meet (Cramer's rule), and whether they are not parallel."""
+    det = d1[..., 1] * d2[..., 0] - d1[..., 0] * d2[..., 1]          # det [d1, -d2]
     safe = np.abs(det) > 1e-9
-    a_safe = np.where(safe[..., None, None], a, np.eye(2))
-    t = np.linalg.solve(a_safe, rhs[..., None])[..., 0]
-    return p1 + t[..., :1] * d1, safe
+    rx, ry = p2[..., 0] - p1[..., 0], p2[..., 1] - p1[..., 1]
+    t = np.where(safe, (ry * d2[..., 0] - rx * d2[..., 1]) / np.where(safe, det, 1.0), 0.0)
+    return p1 + t[..., None] * d1, safe
 
 
 def refine_corners(lin: np.ndarray, corners: np.ndarray):
