@@ -73,8 +73,9 @@ def _detector(dictionary_name: str):
     return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), params)
 
 
-def _edge_points(lin: np.ndarray, corners: np.ndarray):
-    """Subpixel edge points for the 8 half edges of each marker.
+def _edge_points(lin: np.ndarray, corners: np.ndarray, offsets_px=None):
+    """Subpixel edge points for the 8 half edges of each marker, read from ``lin`` (the photo, or patches
+    of it with each marker's ``offsets_px`` (M, 2) from photo to patch pixels).
 
     Returns ``points`` (M, 8, S, 2) and ``valid`` (M, 8, S); half edge 2k + h is edge k (corner k to
     corner k+1), half h (0: next to corner k, 1: next to corner k+1).
@@ -83,6 +84,8 @@ def _edge_points(lin: np.ndarray, corners: np.ndarray):
     s = _SAMPLES_PER_HALF_EDGE
     offs = _ACROSS_EDGE_PX
     base, normal, flat = _profile_grid(np.ascontiguousarray(corners, float).tobytes(), m)
+    if offsets_px is not None:
+        flat = (flat.reshape(2, m, -1) + np.asarray(offsets_px, np.float32).T[:, :, None]).reshape(2, 1, -1)
     prof = cv2.remap(lin, flat[0], flat[1], cv2.INTER_LINEAR,
                      borderMode=cv2.BORDER_REPLICATE).reshape(m, 4, 2 * s, len(offs))     # (M, 4, 2S, P)
     k = max(2, int(round(0.8 / _PROFILE_STEP_PX)))
@@ -149,9 +152,10 @@ def _intersect(p1, d1, p2, d2):
     return p1 + t[..., None] * d1, safe
 
 
-def refine_corners(lin: np.ndarray, corners: np.ndarray):
-    """Edge-based corner refinement; returns refined corners (M, 4, 2) and a per-marker success mask."""
-    points, valid = _edge_points(lin, corners)
+def refine_corners(lin: np.ndarray, corners: np.ndarray, offsets_px=None):
+    """Edge-based corner refinement; returns refined corners (M, 4, 2) and a per-marker success mask.
+    ``lin`` is the linearised photo, or patches of it (see :func:`_edge_points`)."""
+    points, valid = _edge_points(lin, corners, offsets_px)
     mean, direc, count = _fit_lines(points, valid)
     # corner k is where the half of edge k-1 next to it (half edge 2(k-1)+1) meets the half of edge k
     # next to it (half edge 2k)
@@ -184,15 +188,16 @@ def _cell_grid(n: int) -> tuple[np.ndarray, np.ndarray]:
     return np.concatenate([np.column_stack([gx.ravel(), gy.ravel()]), ring]).astype(np.float32), border.ravel()
 
 
-def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str) -> bool:
+def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> bool:
     """Whether every marker's cells, read at their centres through its corners, are its id's pattern
     (one cell in error allowed): the ink level from the border cells, the paper level from a ring just
     outside, the threshold half way."""
     n = aruco_dictionary(dictionary_name).markerSize + 2
     local, border = _cell_grid(n)
     square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
-    pts = np.concatenate([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
-                          for c in corners])
+    offsets = np.zeros((len(corners), 2), np.float32) if offsets_px is None else np.asarray(offsets_px, np.float32)
+    pts = np.concatenate([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0] + o
+                          for c, o in zip(corners, offsets)])
     values = cv2.remap(lin, pts[:, 0].reshape(1, -1), pts[:, 1].reshape(1, -1), cv2.INTER_LINEAR,
                        borderMode=cv2.BORDER_REPLICATE).reshape(len(corners), -1)
     cells = values[:, : n * n]
@@ -202,19 +207,23 @@ def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str
     return bool(((ink != expected).sum(axis=1) <= 1).all())
 
 
-def _linearised_around(image, corners: np.ndarray) -> np.ndarray:
+def _linearised_around(image, corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """:func:`linearised_gray` only around each marker (its corners' box grown by a quarter of its size
-    and 8 px, room for the edge profiles and the ring outside its cells); zero elsewhere."""
+    and 8 px, room for the edge profiles and the ring outside its cells), the patches stacked in one
+    small image; returns it and each marker's offset (M, 2) from photo to patch pixels (a whole-photo
+    image would be mostly zeros, and writing it costs more than the patches)."""
     h, w = image.shape[:2]
-    lin = np.zeros((h, w), np.float32)
     lo, hi = corners.min(axis=1), corners.max(axis=1)                       # (M, 2) each
     pad = 0.25 * (hi - lo).max(axis=1, keepdims=True) + 8.0
-    lo = np.maximum(np.floor(lo - pad), 0).astype(int).tolist()
-    hi = np.minimum(np.ceil(hi + pad), [w, h]).astype(int).tolist()
-    for (x0, y0), (x1, y1) in zip(lo, hi):
+    lo = np.maximum(np.floor(lo - pad), 0).astype(int)
+    hi = np.maximum(np.minimum(np.ceil(hi + pad), [w, h]).astype(int), lo)
+    size = hi - lo
+    rows = np.concatenate([[0], np.cumsum(size[:, 1] + 1)])                # one empty row between patches
+    atlas = np.zeros((max(int(rows[-1]), 1), max(int(size[:, 0].max()), 1)), np.float32)
+    for (x0, y0), (x1, y1), r in zip(lo.tolist(), hi.tolist(), rows[:-1].tolist()):
         if x1 > x0 and y1 > y0:
-            lin[y0:y1, x0:x1] = linearised_gray(image[y0:y1, x0:x1])
-    return lin
+            atlas[r:r + y1 - y0, : x1 - x0] = linearised_gray(image[y0:y1, x0:x1])
+    return atlas, np.column_stack([-lo[:, 0], rows[:-1] - lo[:, 1]]).astype(np.float32)
 
 
 def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
@@ -223,11 +232,11 @@ def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection]
     any marker is not found so (then the markers are searched for)."""
     ids = sorted(expected)
     rough = np.array([np.asarray(expected[i], float).reshape(4, 2) for i in ids])
-    lin = _linearised_around(image, rough)
-    refined, good = refine_corners(lin, rough)
+    lin, offsets = _linearised_around(image, rough)
+    refined, good = refine_corners(lin, rough, offsets)
     if good.all() and np.abs(refined - rough).max() > 0.25:
-        refined, good = refine_corners(lin, refined)      # the camera shifted a little: again, from closer
-    if not good.all() or not _cells_match(lin, refined, ids, dictionary_name):
+        refined, good = refine_corners(lin, refined, offsets)   # the camera shifted a little: again, from closer
+    if not good.all() or not _cells_match(lin, refined, ids, dictionary_name, offsets):
         return None
     return [MarkerDetection(int(i), refined[k], True) for k, i in enumerate(ids)]
 
