@@ -12,7 +12,9 @@ Parts cover a few per cent of the work area, so the search runs at two resolutio
    are few), its spread the scaled median distance from it. Candidates are pixels that differ from the
    table and lie within 2.5x a class's tolerance in CIE76 (CIEDE2000 is never more than about that),
    or are saturated and unlike the table. The candidates are classified there, in CIEDE2000.
-2. A block whose 3 x 3 neighbours all took its class lies inside a part: its pixels keep that class.
+2. A block whose four neighbours all took its class lies inside a part: its pixels keep that class (a
+   part's silhouette is convex, the projection of a box or a cylinder, and a block lies within the
+   diamond of its own and its four neighbours' centres).
    The other candidate blocks, grown by one block (the parts' edges), are classified pixel by pixel at
    full resolution, in CIEDE2000. Each connected group of candidates is a window the blobs are then
    found in. The white balance is smooth, so each block's pixels share its factor.
@@ -152,13 +154,13 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
         return ClassifiedRegion((u0, v0), label, delta_e, groups, [], f)
-    # the candidates' classes at the coarse resolution; a block whose 3 x 3 neighbours all agree is inside
+    # the candidates' classes at the coarse resolution; a block whose 4 neighbours all agree is inside
     # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
     cy, cx = np.nonzero(candidate)
     coarse_label = np.zeros((hs, ws), np.uint8)
     coarse_de = np.zeros((hs, ws), np.float32)
     coarse_label[cy, cx], coarse_de[cy, cx] = classify_pixels(lab_small[cy, cx], classes, background)
-    kernel = np.ones((3, 3), np.uint8)
+    kernel = cv2.getStructuringElement(cv2.MORPH_CROSS, (3, 3))
     inside = (coarse_label > 0) & (cv2.erode(coarse_label, kernel) == cv2.dilate(coarse_label, kernel))
     # whole blocks at a time, through (rows, columns, f, f) views of the images
     label_blocks, de_blocks = _blocks(label, f, hs, ws), _blocks(delta_e, f, hs, ws)

@@ -107,7 +107,8 @@ def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | 
     keep = inside & (lum > 0.6 * masked_median(lum, inside)[:, None])     # drop samples in a shadow or on ink
     usable = inside.sum(axis=1) >= 16
     centres = np.array([d.corners_px for d in detections]).mean(axis=1)[usable]
-    medians = np.stack([masked_median(vals[..., ch], keep) for ch in range(3)], axis=1)[usable]
+    m = len(vals)                                                           # the three channels' medians at once
+    medians = masked_median(np.moveaxis(vals, 2, 0).reshape(3 * m, -1), np.tile(keep, (3, 1))).reshape(3, m).T[usable]
     if not len(medians):
         return None
     n = len(medians)
