@@ -71,6 +71,14 @@ class Reason(IntEnum):
 _JOINT_LIMIT_REASONS = (Reason.JOINT_LIMIT_BASE, Reason.JOINT_LIMIT_SHOULDER, Reason.JOINT_LIMIT_ELBOW)
 
 
+def _first_reason(failures) -> np.ndarray:
+    """Per pose, the code of the first failing check, 0 (OK) where none fails: ``failures`` is (code,
+    mask (N,)) in priority order; one argmax over the stacked masks instead of a where per check."""
+    masks = np.vstack([m for _, m in failures] + [np.ones_like(failures[0][1], bool)])
+    codes = np.array([int(c) for c, _ in failures] + [int(Reason.OK)], np.int8)
+    return codes[masks.argmax(axis=0)]
+
+
 @dataclass(frozen=True)
 class IKSolution:
     """Result of :meth:`Arm.inverse` for N targets.
@@ -286,23 +294,20 @@ class Arm:
         shoulder, psi = wrap_angle(shoulder), wrap_angle(psi)
         elbow = self.elbow_servo_rad(shoulder, psi)
 
-        reason = np.zeros(len(p), dtype=np.int8)
-        for code, fails in self._limit_failures(base, shoulder, psi, elbow)[::-1]:
-            reason = np.where(fails, code, reason)
-        reason = np.where(np.isnan(elbow) & reachable, Reason.LINKAGE_CANNOT_ASSEMBLE, reason)
-        reason = np.where(~reachable, Reason.OUT_OF_REACH, reason)
+        reason = _first_reason([(Reason.OUT_OF_REACH, ~reachable), (Reason.LINKAGE_CANNOT_ASSEMBLE, np.isnan(elbow)),
+                                *self._limit_failures(base, shoulder, psi, elbow)])
         joints = np.column_stack([base, shoulder, elbow])
         joints[~reachable] = np.nan
         psi = np.where(reachable, psi, np.nan)
-        return IKSolution(joints, psi, reason.astype(np.int8))
+        return IKSolution(joints, psi, reason)
 
     def _limit_failures(self, base, shoulder, psi, elbow):
         """(reason, mask) pairs in priority order, for the limit checks after geometry."""
         lo_i, hi_i = self.elbow_interior_rad
         interior = self.elbow_interior_angle_rad(shoulder, psi)
-        out = [(Reason.ELBOW_INTERIOR, ~((interior >= lo_i - _LIMIT_TOL_RAD) & (interior <= hi_i + _LIMIT_TOL_RAD)))]
-        for code, value, (lo, hi) in zip(_JOINT_LIMIT_REASONS, (base, shoulder, elbow), self.limits_rad):
-            with np.errstate(invalid="ignore"):
+        with np.errstate(invalid="ignore"):
+            out = [(Reason.ELBOW_INTERIOR, ~((interior >= lo_i - _LIMIT_TOL_RAD) & (interior <= hi_i + _LIMIT_TOL_RAD)))]
+            for code, value, (lo, hi) in zip(_JOINT_LIMIT_REASONS, (base, shoulder, elbow), self.limits_rad):
                 out.append((code, ~((value >= lo - _LIMIT_TOL_RAD) & (value <= hi + _LIMIT_TOL_RAD))))
         return out
 
@@ -310,10 +315,8 @@ class Arm:
         """Reason codes for joint-space poses (limits, interior stop, assembly), shape (N,)."""
         q = _as_points(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
-        reason = np.zeros(len(q), dtype=np.int8)
-        for code, fails in self._limit_failures(q[:, 0], q[:, 1], psi, q[:, 2])[::-1]:
-            reason = np.where(fails, code, reason)
-        return np.where(np.isnan(psi), Reason.LINKAGE_CANNOT_ASSEMBLE, reason).astype(np.int8)
+        return _first_reason([(Reason.LINKAGE_CANNOT_ASSEMBLE, np.isnan(psi)),
+                              *self._limit_failures(q[:, 0], q[:, 1], psi, q[:, 2])])
 
     # ------------------------------------------------------------ servos
     def pulses_us(self, joints_rad, check: bool = True) -> np.ndarray:

@@ -237,9 +237,12 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
                 p = [c[i, k] + enter[i, k] * (c[i, k + 1] - c[i, k]) for c in pts]
                 found.append((int(i), 2, lambda zone=zone, n=_LINK_NAMES[k], p=p: Rejection(
                     f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
-    if m > 1:
+    # separate points (the planner's probes: no time between them, any branch allowed) skip both
+    timed = m > 1 and (dt_steps is None or bool(np.any(np.asarray(dt_steps) > 0)))
+    one_branch = m > 1 and (flip_allowed is None or not bool(np.all(flip_allowed)))
+    step_rad = np.diff(s.joints_rad, axis=0) if timed or one_branch else None
+    if timed:
         step = ctx.dt_s if dt_steps is None else np.where(np.asarray(dt_steps) > 0, dt_steps, np.inf)[:, None]
-        step_rad = np.diff(s.joints_rad, axis=0)
         dq = np.abs(step_rad) / step                                            # (M-1, 3) rad/s
         over = (dq > arm.max_speed_rad_s[None, :] * (1 + 1e-9)) & valid[1:, None] & valid[:-1, None]
         if over.any():
@@ -248,6 +251,7 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             found.append((int(i) + 1, 3, lambda j=j, v=v, lim=lim: Rejection(
                 f"joint_speed:{JOINT_NAMES[j]}", f"{JOINT_NAMES[j]} {v:.1f} deg/s > {lim:g} deg/s",
                 value=v, limit=lim, unit="deg/s")))
+    if one_branch:
         psi = arm.forearm_rad(s.joints_rad[:, 1], s.joints_rad[:, 2])
         bend = np.sign(wrap_angle(psi - s.joints_rad[:, 1]))
         # a step over 90 deg once wrapped is one over 90 deg before: wrap only those

@@ -112,6 +112,7 @@ class Planner:
         self.scaling = TimeScaling(m.time_scaling)
         self.ctx = CheckContext(self.arm, m.floor_clearance_mm, tuple(cell.keep_out), self.dt_s)
         self.home_rad = np.radians([m.home_deg.base, m.home_deg.shoulder, m.home_deg.elbow])
+        self.home_mm = self.arm.forward(self.home_rad[None])[0]
         self._ik_poses: dict[tuple, bool] = {}
         self._check_cell()
 
@@ -310,7 +311,7 @@ class Planner:
     def _home_segments(self, here) -> list[Segment]:
         """From tool point ``here`` back to the home pose: to safe height, an arc to above home, straight
         to home; or, if Cartesian moves cannot end in the home pose, a joint-space swing to it."""
-        home_mm = self.arm.forward(self.home_rad[None])[0]
+        home_mm = self.home_mm
         segs, p = self._to_safe(here, None, False)
         if not self._ik_pose(self.home_rad):
             q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]

@@ -145,7 +145,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     table = [p[::4, ::4][valid_small[::4, ::4]] for p in planes]   # the table: parts cover a few % of it
     background = None
     if len(table[0]):
-        median = np.array([np.median(p) for p in table], np.float32)
+        median = np.median(np.stack(table), axis=1).astype(np.float32)
         background = (median, 1.4826 * float(np.sqrt(np.median(_distance2(table, median)))))
     candidate = _candidates(planes, classes, background) & valid_small
     near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
