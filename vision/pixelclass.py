@@ -79,7 +79,10 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     refs = np.array([c.lab for c in classes.values()], np.float32)
     tolerances = np.array([c.tolerance for c in classes.values()], np.float32)
     fg, unlike_table = _table_masks(planes, background)
-    pairs = [np.flatnonzero((_distance2(planes, ref) < (_NEAR * tol) ** 2) & fg) for ref, tol in zip(refs, tolerances)]
+    # only pixels unlike the table can be a part's: the classes' distances on those alone
+    part = np.flatnonzero(fg)
+    part_planes = [p[part] for p in planes]
+    pairs = [part[_distance2(part_planes, ref) < (_NEAR * tol) ** 2] for ref, tol in zip(refs, tolerances)]
     pixel = np.concatenate(pairs)
     which = np.repeat(np.arange(len(refs)), [len(p) for p in pairs])
     d00 = delta_e_2000(lab[pixel], refs[which]).astype(np.float32)
