@@ -337,3 +337,19 @@ def test_small_parts_are_found_with_smaller_blocks():
     assert _search_region(r.image_bgr.shape[:2], cal.mapping, cell, dets).block_px == 4
     assert total.recall >= 0.98 and total.false_parts == 0
     assert total.rms_mm <= 0.5 and total.max_mm <= 1.5
+
+
+@pytest.mark.parametrize("terms", [1, 3, 4])
+def test_white_balance_field_is_its_fitted_polynomial(terms):
+    # the fit uses the polynomial as features, the evaluation as a separable sum (the fast form for a
+    # grid): the two must be the same function
+    from vision.whitebalance import Illumination
+
+    rng = np.random.default_rng(terms)
+    ill = Illumination(rng.uniform(-0.3, 0.8, (3, terms)), 1280, 960, 8)
+    u, v = rng.uniform(0, 1280, 500), rng.uniform(0, 960, 500)
+    by_features = np.column_stack(ill._features(u, v)) @ ill.coeffs.T                 # (500, 3)
+    np.testing.assert_allclose(ill.field(u, v), by_features, atol=1e-5)
+    grid = ill.field(u[None, :40], v[:30, None])                                       # a row and a column
+    at = np.column_stack(ill._features(np.array([u[11]]), np.array([v[7]]))) @ ill.coeffs.T
+    np.testing.assert_allclose(grid[7, 11], at[0], atol=1e-5)
