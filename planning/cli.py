@@ -85,6 +85,17 @@ def command(*args, **kwargs):
     return lambda fn: app.command(*args, **kwargs)(_guarded(fn))
 
 
+# ------------------------------------------------------------------ options shared by the commands
+def cell_option(where: str):
+    """``--cell``, defaulting to cell.yaml ``where`` (e.g. 'beside the photo or in its parent')."""
+    return typer.Option(None, "--cell", help=f"Cell file (default: cell.yaml {where}).")
+
+
+def calibration_option():
+    """``--calibration``, defaulting to calibration.yaml beside the cell."""
+    return typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell).")
+
+
 # ------------------------------------------------------------------ helpers shared by the commands
 def _find_cell(cell: Optional[Path], near: Path) -> Path:
     """--cell, or cell.yaml in the input's folder or its parent."""

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+from planning.cli import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
 
 
 @command()
@@ -110,7 +110,7 @@ def _default_calibration(cell_path: Path) -> Path:
 @command()
 def calibrate(
     photo: Path = typer.Argument(..., help="A photo of the table with the markers in view."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
+    cell: Optional[Path] = cell_option("beside the photo or in its parent"),
     out: Optional[Path] = typer.Option(None, "--out", "-o", help="Calibration file (default: calibration.yaml beside the cell file)."),
     overlay: Optional[Path] = typer.Option(None, "--overlay", help="Overlay PNG (default: <calibration>_overlay.png)."),
     as_json: bool = typer.Option(False, "--json", help="Print the calibration record as JSON and nothing else."),
@@ -176,8 +176,8 @@ def _print_calibration(cal, out, overlay, moved) -> None:
 @command()
 def check(
     photo: Path = typer.Argument(..., help="A new photo from the calibrated camera."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
-    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    cell: Optional[Path] = cell_option("beside the photo or in its parent"),
+    calibration: Optional[Path] = calibration_option(),
     overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write an overlay PNG of old and new work area."),
     as_json: bool = typer.Option(False, "--json", help="Print the drift report as JSON and nothing else."),
 ):

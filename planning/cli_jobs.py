@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+from planning.cli import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
 
 
 def _note(text: str) -> None:
@@ -18,8 +18,8 @@ def _note(text: str) -> None:
 @command()
 def detect(
     photo: Path = typer.Argument(..., help="A photo from the calibrated camera."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the photo or in its parent)."),
-    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    cell: Optional[Path] = cell_option("beside the photo or in its parent"),
+    calibration: Optional[Path] = calibration_option(),
     overlay: Optional[Path] = typer.Option(None, "--overlay", help="Write a PNG with outlines, classes, pick points and reasons."),
     as_json: bool = typer.Option(False, "--json", help="Print the parts as JSON and nothing else."),
     sample: Optional[str] = typer.Option(None, "--sample", help="U,V: print the white-balanced CIELAB colour around that pixel."),
@@ -108,8 +108,8 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
 def plan(
     photo: Optional[Path] = typer.Argument(None, help="A photo from the calibrated camera (or give --parts)."),
     parts: Optional[Path] = typer.Option(None, "--parts", help="Parts in table coordinates instead of a photo (YAML list of {class, x_mm, y_mm, ...})."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml beside the input or in its parent)."),
-    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    cell: Optional[Path] = cell_option("beside the input or in its parent"),
+    calibration: Optional[Path] = calibration_option(),
     out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the pictures."),
     order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
     as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
@@ -186,8 +186,8 @@ def _print_plan_summary(data: dict, out: Path) -> None:
 @command()
 def run(
     folder: Path = typer.Argument(..., help="Folder of photos, taken in name order by the cell."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
-    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    cell: Optional[Path] = cell_option("in the folder or its parent"),
+    calibration: Optional[Path] = calibration_option(),
     out: Path = typer.Option(Path("out/run"), "--out", "-o", help="Folder for run.csv and one folder per photo."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted or stopped run in --out."),
     emptied: list[str] = typer.Option([], "--emptied", help="With --resume: this bin was emptied (repeatable)."),
@@ -247,8 +247,8 @@ def run(
 @command()
 def batch(
     folder: Path = typer.Argument(..., help="Folder of photos to test, each on its own."),
-    cell: Optional[Path] = typer.Option(None, "--cell", help="Cell file (default: cell.yaml in the folder or its parent)."),
-    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Calibration file (default: calibration.yaml beside the cell)."),
+    cell: Optional[Path] = cell_option("in the folder or its parent"),
+    calibration: Optional[Path] = calibration_option(),
     out: Path = typer.Option(Path("out/batch"), "--out", "-o", help="Folder for batch.csv, batch.json, report.html."),
     workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Parallel worker processes."),
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Dask scheduler address (tcp://host:port) instead of local workers."),
