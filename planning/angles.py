@@ -6,6 +6,9 @@ import numpy as np
 
 __all__ = ["wrap_angle"]
 
+_TWO_PI = 2.0 * np.pi
+_BELOW_PI = np.nextafter(np.pi, 0.0)       # the largest float below pi
+
 
 def wrap_angle(angle_rad):
     """Wrap angles to [-pi, pi).
@@ -25,4 +28,7 @@ def wrap_angle(angle_rad):
     >>> float(wrap_angle(3 * np.pi / 2))
     -1.5707963267948966
     """
-    return (np.asarray(angle_rad, dtype=float) + np.pi) % (2.0 * np.pi) - np.pi
+    a = np.asarray(angle_rad, dtype=float)
+    # floor, not %: numpy's % is several times slower; the clamps keep rounding inside [-pi, pi)
+    wrapped = a - _TWO_PI * np.floor((a + np.pi) / _TWO_PI)
+    return np.minimum(np.maximum(wrapped, -np.pi), _BELOW_PI)

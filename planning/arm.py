@@ -272,8 +272,8 @@ class Arm:
         p = _as_points(xyz_mm)
         branch = self.branch if branch is None else Branch(branch)
         x, y, z = p[:, 0], p[:, 1], p[:, 2]
-        r = np.hypot(x, y)
-        base = np.where(r > 1e-9, np.arctan2(y, x), 0.0)
+        r = np.sqrt(x * x + y * y)                       # (np.hypot is several times slower)
+        base = np.arctan2(y, x) * (r > 1e-9)
         l2 = self.upper_arm_mm
         if self.tool_level:
             wx = r - self.shoulder_offset_mm - self.tool_reach_mm
@@ -283,9 +283,10 @@ class Arm:
             along = self.forearm_mm + self.tool_reach_mm
             wx, wz = r - self.shoulder_offset_mm, z - self.base_height_mm
             l3, beta = float(np.hypot(along, self.tool_drop_mm)), float(np.arctan2(-self.tool_drop_mm, along))
-        d = np.hypot(wx, wz)
+        d2 = wx * wx + wz * wz
+        d = np.sqrt(d2)
         with np.errstate(divide="ignore", invalid="ignore"):
-            cos_a = (l2 * l2 + d * d - l3 * l3) / (2.0 * l2 * d)
+            cos_a = (l2 * l2 + d2 - l3 * l3) / (2.0 * l2 * d)
         reachable = (np.abs(cos_a) <= 1.0 + 1e-12) & (d > 1e-9)
         alpha = np.arccos(np.clip(cos_a, -1.0, 1.0))
         sign = 1.0 if branch is Branch.UP else -1.0
@@ -296,7 +297,8 @@ class Arm:
 
         reason = _first_reason([(Reason.OUT_OF_REACH, ~reachable), (Reason.LINKAGE_CANNOT_ASSEMBLE, np.isnan(elbow)),
                                 *self._limit_failures(base, shoulder, psi, elbow)])
-        joints = np.column_stack([base, shoulder, elbow])
+        joints = np.empty((len(p), 3))
+        joints[:, 0], joints[:, 1], joints[:, 2] = base, shoulder, elbow
         joints[~reachable] = np.nan
         psi = np.where(reachable, psi, np.nan)
         return IKSolution(joints, psi, reason)
