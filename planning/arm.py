@@ -300,7 +300,7 @@ class Arm:
         joints = np.empty((len(p), 3))
         joints[:, 0], joints[:, 1], joints[:, 2] = base, shoulder, elbow
         joints[~reachable] = np.nan
-        psi = np.where(reachable, psi, np.nan)
+        psi[~reachable] = np.nan
         return IKSolution(joints, psi, reason)
 
     def _limit_failures(self, base, shoulder, psi, elbow):

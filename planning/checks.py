@@ -215,13 +215,19 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
         i = int(bad_ik[0])
         found.append((i, 0, lambda i=i: _ik_rejection(ctx, s, i, int(s.reason[i]))))
     valid = s.reason == Reason.OK
+    all_valid = not bad_ik.size
     if valid.any():
         # samples IK refused take a harmless pose (no NaN may reach the bounds of _may_enter)
-        q = np.where(valid[:, None], s.joints_rad, 0.0)
-        pts = _arm_points(arm, q, np.where(valid[:, None], s.xyz_mm, 0.0))
+        if all_valid:
+            pts = _arm_points(arm, s.joints_rad, s.xyz_mm)
+        else:
+            q = np.where(valid[:, None], s.joints_rad, 0.0)
+            pts = _arm_points(arm, q, np.where(valid[:, None], s.xyz_mm, 0.0))
         # a straight link's lowest point is one of its ends
         z = pts[2]
-        low = np.where(valid[:, None], np.minimum(z[:, :-1], z[:, 1:]), np.inf)
+        low = np.minimum(z[:, :-1], z[:, 1:])
+        if not all_valid:
+            low[~valid] = np.inf
         floor = low < ctx.floor_clearance_mm - 1e-9
         if floor.any():
             i, k = np.argwhere(floor)[0]
@@ -231,7 +237,8 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
                 value=z, limit=ctx.floor_clearance_mm, unit="mm")))
         for zone in (z for z in ctx.keep_out if _may_enter(z, pts)):
             inside, enter = _zone_entry(zone, pts)
-            inside &= valid[:, None]
+            if not all_valid:
+                inside &= valid[:, None]
             if inside.any():
                 i, k = np.argwhere(inside)[0]
                 p = [c[i, k] + enter[i, k] * (c[i, k + 1] - c[i, k]) for c in pts]
