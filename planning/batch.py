@@ -142,6 +142,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
 
     out = output_dir(out)
     photos = photos_in(folder)
+    pool_context = _start_workers_early() if workers > 1 and not scheduler else None
     _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
             for p in photos]
@@ -165,11 +166,9 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             if progress:
                 progress(row)
     else:
-        import multiprocessing
         from concurrent.futures import ProcessPoolExecutor, as_completed
 
-        ctx = multiprocessing.get_context("forkserver" if os.name == "posix" else "spawn")
-        with ProcessPoolExecutor(max_workers=workers, mp_context=ctx) as pool:
+        with ProcessPoolExecutor(max_workers=workers, mp_context=pool_context) as pool:
             futures = [pool.submit(process_photo, job) for job in jobs]
             for fut in as_completed(futures):
                 row = fut.result()
@@ -177,6 +176,27 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
                 if progress:
                     progress(row)
     return [rows[p.name] for p in photos]
+
+
+# what every worker imports: the fork server imports them once, while the main process reads the cell
+_WORKER_MODULES = ["planning.cell", "planning.photo_outputs", "planning.plan_plot", "vision.parts", "vision.markers",
+                   "matplotlib.pyplot"]
+
+
+def _start_workers_early():
+    """The worker processes' start method; on POSIX a fork server, started now with the workers' modules
+    imported in it, so that work overlaps the main process loading the cell (each worker then starts
+    with them imported instead of importing them itself)."""
+    import multiprocessing
+
+    if os.name != "posix":
+        return multiprocessing.get_context("spawn")
+    ctx = multiprocessing.get_context("forkserver")
+    ctx.set_forkserver_preload(_WORKER_MODULES)
+    from multiprocessing import forkserver
+
+    forkserver.ensure_running()
+    return ctx
 
 
 def _run_dask(jobs, scheduler: str, progress) -> dict:
