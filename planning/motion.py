@@ -9,7 +9,6 @@ then stretched by that ratio and sampled again.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
 from enum import Enum
 
@@ -57,8 +56,9 @@ class SampledSegment:
     reason: np.ndarray         # (M,) Reason codes from IK
 
 
-def _round_up(duration_s: float, dt_s: float) -> float:
-    return max(1, math.ceil(duration_s / dt_s - 1e-9)) * dt_s
+def _round_up(duration_s, dt_s: float) -> np.ndarray:
+    """Durations rounded up to whole sample periods, at least one (elementwise)."""
+    return np.maximum(1, np.ceil(np.asarray(duration_s, float) / dt_s - 1e-9)) * dt_s
 
 
 def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_mm_s: float, dwell_s: float,
@@ -73,8 +73,7 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     need = np.array([_swing_s(seg, arm, speed_scale) * rate * _SPEED_MARGIN if seg.joints_rad is not None
                      else dwell_s if seg.path is None else seg.path.length_mm * rate / speed for seg in segments])
     moving = np.array([seg.path is not None or seg.joints_rad is not None for seg in segments], bool)
-    need = np.where(moving, np.maximum(need, dt_s), need)
-    return (np.maximum(1, np.ceil(need / dt_s - 1e-9)) * dt_s).tolist()
+    return _round_up(np.where(moving, np.maximum(need, dt_s), need), dt_s).tolist()
 
 
 def _swing_s(seg: Segment, arm: Arm, speed_scale: float) -> float:
@@ -122,8 +121,7 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
         over = moving & (stretch > 1.0)
         if not over.any():
             return chain
-        durations = [_round_up(d * float(r) * _SPEED_MARGIN, dt_s) if o else d
-                     for d, r, o in zip(durations, stretch, over)]
+        durations = np.where(over, _round_up(np.asarray(durations) * stretch * _SPEED_MARGIN, dt_s), durations).tolist()
     return chain
 
 
@@ -162,16 +160,16 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
     xyz = path_points((c, d, e1, e2, w), s)
     xyz[first] = [e[0] for e in ends]                 # the ends exact (last wins for one-sample segments)
     xyz[last] = [e[1] for e in ends]
+    swung = []
     for k in swings:                                   # joint space: the tool goes where the joints put it
         q0, q1 = (np.asarray(q, float) for q in segments[k].joints_rad)
         rows = slice(first[k], last[k] + 1)
-        xyz[rows] = arm.forward(q0 + s[rows, None] * (q1 - q0))
+        swung.append((rows, q0 + s[rows, None] * (q1 - q0)))
+        xyz[rows] = arm.forward(swung[-1][1])
     sol = arm.inverse(xyz)
     joints, reason = sol.joints_rad, sol.reason
-    for k in swings:                                   # the joints are given; check them as they are
-        q0, q1 = (np.asarray(q, float) for q in segments[k].joints_rad)
-        rows = slice(first[k], last[k] + 1)
-        joints[rows] = q0 + s[rows, None] * (q1 - q0)
-        reason[rows] = arm.check_joints(joints[rows])
+    for rows, q in swung:                      # the joints are given; check them as they are
+        joints[rows] = q
+        reason[rows] = arm.check_joints(q)
     return SampledChain(list(segments), list(durations), bounds, local * dt_s, xyz, joints, reason)
 

@@ -41,9 +41,14 @@ class Illumination:
     n_markers: int
     white: float = REFERENCE_WHITE   # linear value the paper is normalised to
 
+    def _normalised(self, u, v):
+        """Pixel coordinates about the photo's centre, in half-widths (float32)."""
+        half = np.float32(self.width_px / 2)
+        return ((np.asarray(u, np.float32) - half) / half,
+                (np.asarray(v, np.float32) - np.float32(self.height_px / 2)) / half)
+
     def _features(self, u, v):
-        un = (np.asarray(u, np.float32) - self.width_px / 2) / (self.width_px / 2)
-        vn = (np.asarray(v, np.float32) - self.height_px / 2) / (self.width_px / 2)
+        un, vn = self._normalised(u, v)
         feats = [np.ones_like(un), un, vn, un * un + vn * vn]
         return feats[: self.coeffs.shape[1]]
 
@@ -52,8 +57,7 @@ class Illumination:
         give the grid). The polynomial is a sum of a part in u and a part in v, so a grid costs one add."""
         c = np.zeros((3, 4), np.float32)
         c[:, : self.coeffs.shape[1]] = self.coeffs
-        un = (np.asarray(u, np.float32) - np.float32(self.width_px / 2)) / np.float32(self.width_px / 2)
-        vn = (np.asarray(v, np.float32) - np.float32(self.height_px / 2)) / np.float32(self.width_px / 2)
+        un, vn = self._normalised(u, v)
         # channel by channel: numpy broadcasts slowly over a last axis of three
         return np.stack([(ch[0] + un * (ch[1] + un * ch[3])) + vn * (ch[2] + vn * ch[3]) for ch in c], axis=-1)
 
