@@ -1,1 +1,5 @@
-"""gripsight planning: cell file, arm kinematics, motion, checks and outputs (no images, no OpenCV)."""
+"""gripsight.planning: arm kinematics, motion, every-sample checks and pick planning.
+
+A library: numpy only (no images, no OpenCV, no files, no command line). It takes the cell's settings
+as plain objects and hands back plans; its errors are :class:`gripsight.planning.errors.PlanningError`.
+"""

@@ -28,9 +28,9 @@ from enum import Enum, IntEnum
 
 import numpy as np
 
-from planning.angles import wrap_angle
-from planning.linkage import FourBar, grashof_class
-from planning.servo import ServoMap
+from gripsight.planning.angles import wrap_angle
+from gripsight.planning.linkage import FourBar, grashof_class
+from gripsight.planning.servo import ServoMap
 
 __all__ = ["Arm", "Branch", "IKSolution", "Linkage", "Reason", "JOINT_NAMES"]
 

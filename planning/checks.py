@@ -12,9 +12,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from planning.angles import wrap_angle
-from planning.arm import JOINT_NAMES, Arm, Reason
-from planning.motion import SampledChain, SampledSegment
+from gripsight.planning.angles import wrap_angle
+from gripsight.planning.arm import JOINT_NAMES, Arm, Reason
+from gripsight.planning.motion import SampledChain, SampledSegment
 
 __all__ = ["CheckContext", "Rejection", "first_failure", "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
 
@@ -130,7 +130,7 @@ def _reach_at(ctx: CheckContext, z_mm: float):
     """The reachable radii at one height (for the out-of-reach report), remembered per check context:
     the parts of one class are all gripped at one height."""
     if z_mm not in ctx.reach_spans:
-        from planning.reach import radial_reach
+        from gripsight.planning.reach import radial_reach
 
         ctx.reach_spans[z_mm] = radial_reach(ctx.arm, z_mm, step_mm=0.5)
     return ctx.reach_spans[z_mm]

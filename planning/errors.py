@@ -1,31 +1,22 @@
-"""Typed errors that the command line turns into one line on stderr and an exit code.
+"""The planning library's typed errors: one base, each with a one-line message for the user.
 
-Every error the tool can print is listed in DEVELOPERS.md ("Error messages"); a test checks that the
-message templates used in the code appear there.
+The library never picks an exit code; the application layer (:mod:`gripsight.app.errors`) does.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["GripsightError", "CellFileError", "Problem", "ServoRangeError"]
+__all__ = ["PlanningError", "Problem", "CellProblems", "ServoRangeError"]
 
 
-class GripsightError(Exception):
-    """An expected failure with a one-line message for the user.
-
-    Attributes
-    ----------
-    exit_code : int
-        The process exit code the command line uses for it.
-    """
-
-    exit_code = 1
+class PlanningError(Exception):
+    """An expected failure of the planning library, with a one-line message."""
 
 
 @dataclass(frozen=True)
 class Problem:
-    """One thing wrong in an input file: where (a dotted key path or ``line N``) and what."""
+    """One thing wrong in an input (a cell, a parts list): where (a dotted key path or ``line N``) and what."""
 
     where: str
     message: str
@@ -35,25 +26,23 @@ class Problem:
         return text.replace("\r", "\\r").replace("\n", "\\n")      # always one line
 
 
-class CellFileError(GripsightError):
-    """A cell file (or another YAML input: parts file, calibration) cannot be used.
+class CellProblems(PlanningError):
+    """The cell's settings cannot be planned with (a bin or the home pose out of reach, ...).
 
-    Carries every problem found, each with its key path or YAML line.
+    Carries every problem found, each with its key path in the cell file; ``source`` names the file.
     """
 
-    exit_code = 2
-
-    def __init__(self, path: str, problems: list[Problem]):
-        self.path = str(path)
+    def __init__(self, source: str, problems: list[Problem]):
+        self.source = str(source)
         self.problems = list(problems)
         first = self.problems[0] if self.problems else Problem("", "invalid")
         more = f" (and {len(self.problems) - 1} more)" if len(self.problems) > 1 else ""
-        super().__init__(f"{self.path}: {first}{more}")
+        super().__init__(f"{self.source}: {first}{more}")
 
     def lines(self) -> list[str]:
         """One line per problem, each prefixed with the file name."""
-        return [f"{self.path}: {p}" for p in self.problems]
+        return [f"{self.source}: {p}" for p in self.problems]
 
 
-class ServoRangeError(GripsightError):
+class ServoRangeError(PlanningError):
     """A joint angle maps to a servo pulse outside the servo's accepted range."""

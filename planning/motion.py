@@ -14,8 +14,8 @@ from enum import Enum
 
 import numpy as np
 
-from planning.arm import Arm
-from planning.paths import ArcPath, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
+from gripsight.planning.arm import Arm
+from gripsight.planning.paths import ArcPath, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
 
 __all__ = ["SampledChain", "SampledSegment", "Segment", "SegmentKind", "durations_s", "sample_segments", "timed_samples"]
 

@@ -19,12 +19,12 @@ from enum import Enum
 
 import numpy as np
 
-from planning.errors import GripsightError
+from gripsight.planning.errors import PlanningError
 
 __all__ = ["ArcPath", "PathGeometryError", "StraightPath", "TimeScaling", "path_points", "peak_rate", "time_scaling"]
 
 
-class PathGeometryError(GripsightError, ValueError):
+class PathGeometryError(PlanningError, ValueError):
     """Points that do not define the requested path (coincident or collinear)."""
 
 

@@ -20,13 +20,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from planning.arm import Arm
-from planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
-from planning.errors import CellFileError, Problem
-from planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
-from planning.ordering import order_nearest_two_opt
-from planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
-from planning.targets import PartTarget
+from gripsight.planning.arm import Arm
+from gripsight.planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
+from gripsight.planning.errors import CellProblems, Problem
+from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
+from gripsight.planning.ordering import order_nearest_two_opt
+from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
+from gripsight.planning.targets import PartTarget
 
 __all__ = ["Planner", "Plan", "PartOutcome", "PlannedPick", "JointSamples"]
 
@@ -95,7 +95,7 @@ class Planner:
 
     Raises
     ------
-    CellFileError
+    CellProblems
         At construction, if a bin cannot be reached at drop or safe height, or the home pose is not
         the pose IK gives for its own tool point (the sequence would jump at the start).
     """
@@ -129,7 +129,7 @@ class Planner:
             problems.append(Problem("motion.home_deg", "the home pose breaks the arm's own limits "
                                                        "(joint limits, elbow stop or linkage); choose another"))
         if problems:
-            raise CellFileError(self.cell.source_path or "<cell>", problems)
+            raise CellProblems(self.cell.source_path or "<cell>", problems)
 
     # ------------------------------------------------------------ segment builders
     def _straight(self, kind, p0, p1, part_id, closed) -> list[Segment]:

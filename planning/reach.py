@@ -9,7 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from planning.arm import Arm, Reason
+from gripsight.planning.arm import Arm, Reason
 
 __all__ = ["RadialReach", "Unreachable", "radial_reach", "reachable_xy", "reachable_rz",
            "lowest_grip_z_mm", "unreachable_places"]

@@ -6,7 +6,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from planning.errors import ServoRangeError
+from gripsight.planning.errors import ServoRangeError
 
 __all__ = ["ServoMap"]
 

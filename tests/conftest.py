@@ -43,6 +43,6 @@ def cell_data_with_linkage(kind: str, level: bool = True) -> dict:
 
 @pytest.fixture
 def sample_cell():
-    from planning.config import load_cell
+    from gripsight.app.cellfile import load_cell
 
     return load_cell(SAMPLE_CELL)

@@ -23,11 +23,11 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy.optimize import least_squares
 
-from planning.errors import GripsightError
-from vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
-from vision.lens import DivisionLens, NoLens
-from vision.markers import MarkerDetection
-from vision.scene import marker_paper_corners_mm
+from gripsight.vision.errors import CalibrationError
+from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
+from gripsight.vision.lens import DivisionLens, NoLens
+from gripsight.vision.markers import MarkerDetection
+from gripsight.vision.markergeom import marker_paper_corners_mm
 
 __all__ = ["Calibration", "CalibrationError", "MarkerFit", "calibrate", "camera_centre_from_raised", "VERDICTS"]
 
@@ -38,10 +38,6 @@ _CENTRE_MIN_MARKERS = 6     # markers needed to fit the distortion centre as wel
 _CENTRE_GAIN = 0.85         # ... kept if it brings the RMS below 85 % of the centred model's
 _DEFAULT_HEIGHT_MM = 750.0
 VERDICTS = ("good", "fair", "poor")
-
-
-class CalibrationError(GripsightError):
-    """No usable calibration can be made from this photo (the message says why and what to do)."""
 
 
 @dataclass

@@ -17,9 +17,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from vision.calibration import Calibration, CalibrationError, calibrate
-from vision.markers import MarkerDetection
-from vision.polygon import points_in_polygon
+from gripsight.vision.calibration import Calibration, CalibrationError, calibrate
+from gripsight.vision.markers import MarkerDetection
+from gripsight.vision.polygon import points_in_polygon
 
 _STILL_PX = 0.3            # markers closer than this to their calibrated corners have not moved
 
@@ -124,7 +124,7 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
 
 
 def _fixed_lens(lens):
-    from vision.lens import NoLens
+    from gripsight.vision.lens import NoLens
 
     return None if isinstance(lens, NoLens) else lens
 

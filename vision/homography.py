@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from vision.lens import NoLens
+from gripsight.vision.lens import NoLens
 
 __all__ = ["apply_homography", "fit_homography_dlt", "normalising_transform", "TableMapping", "FitFailure"]
 

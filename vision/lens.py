@@ -118,20 +118,20 @@ def load_opencv_lens(path) -> OpenCVLens:
     and ``distortion_coefficients`` (list or {data}); also accepts ``K`` and ``dist``."""
     import yaml
 
-    from planning.errors import GripsightError
+    from gripsight.vision.errors import LensFileError
 
     try:
         with open(path, encoding="utf-8") as fh:
             text = fh.read()
     except OSError as exc:
-        raise GripsightError(f"{path}: cannot read the lens file ({exc.strerror})") from None
+        raise LensFileError(f"{path}: cannot read the lens file ({exc.strerror})") from None
     if text.startswith("%YAML"):
         text = "\n".join(line for line in text.splitlines() if not line.startswith("%YAML"))
         text = text.replace("!!opencv-matrix", "")
     try:
         data = yaml.safe_load(text) or {}
     except yaml.YAMLError as exc:
-        raise GripsightError(f"{path}: not a YAML lens file ({exc})") from None
+        raise LensFileError(f"{path}: not a YAML lens file ({exc})") from None
 
     def matrix(value, shape):
         if isinstance(value, dict) and "data" in value:
@@ -143,8 +143,8 @@ def load_opencv_lens(path) -> OpenCVLens:
         K = matrix(data.get("camera_matrix", data.get("K")), (3, 3))
         dist = matrix(data.get("distortion_coefficients", data.get("dist")), None)
     except (TypeError, ValueError):
-        raise GripsightError(f"{path}: needs camera_matrix (3x3) and distortion_coefficients") from None
+        raise LensFileError(f"{path}: needs camera_matrix (3x3) and distortion_coefficients") from None
     if dist.size not in (4, 5, 8, 12, 14) or not np.isfinite(K).all() or K[0, 0] <= 0 or K[1, 1] <= 0:
-        raise GripsightError(f"{path}: camera_matrix must be 3x3 with positive focal lengths and "
+        raise LensFileError(f"{path}: camera_matrix must be 3x3 with positive focal lengths and "
                              f"distortion_coefficients 4, 5, 8, 12 or 14 numbers")
     return OpenCVLens(K, dist)

@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from vision.colour import linear_from_srgb
+from gripsight.vision.colour import linear_from_srgb
 
 __all__ = ["MarkerDetection", "detect_markers", "aruco_dictionary", "linearised_gray"]
 

@@ -95,7 +95,7 @@ def drift_overlay(image_bgr, report, stored, cell) -> np.ndarray:
 
 
 def _class_bgr(cell, name) -> tuple[int, int, int]:
-    from vision.colour import srgb_from_lab
+    from gripsight.vision.colour import srgb_from_lab
 
     cls = cell.parts.get(name)
     if cls is None:

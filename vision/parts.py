@@ -29,10 +29,10 @@ from dataclasses import dataclass, field, replace
 import cv2
 import numpy as np
 
-from vision.pixelclass import block_size_px, classify_region, coarse_mask
-from vision.polygon import points_in_polygon
-from vision.scene import marker_paper_corners_mm
-from vision.topface import (
+from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
+from gripsight.vision.polygon import points_in_polygon
+from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.topface import (
     TopFaceProblem,
     expected_area_mm2,
     fit_row_of_tops,
@@ -42,7 +42,7 @@ from vision.topface import (
     outlines_geometry,
     top_face_guess,
 )
-from vision.whitebalance import Illumination, fit_illumination
+from gripsight.vision.whitebalance import Illumination, fit_illumination
 
 __all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
 

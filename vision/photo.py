@@ -11,7 +11,7 @@ from pathlib import Path
 import cv2
 import numpy as np
 
-from planning.errors import GripsightError
+from gripsight.vision.errors import PhotoError
 
 __all__ = ["PhotoError", "read_photo", "DEFAULT_MAX_PIXELS"]
 
@@ -23,10 +23,6 @@ def _max_pixels_default() -> int:
 
     value = os.environ.get("GRIPSIGHT_MAX_PIXELS", "")
     return int(value) if value.isdigit() and int(value) > 0 else DEFAULT_MAX_PIXELS
-
-
-class PhotoError(GripsightError):
-    """A file that cannot be used as a photo."""
 
 
 def _header_size(data: bytes):

@@ -27,8 +27,8 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from vision.colour import delta_e_2000
-from vision.whitebalance import balanced_lab, white_gain
+from gripsight.vision.colour import delta_e_2000
+from gripsight.vision.whitebalance import balanced_lab, white_gain
 
 __all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "coarse_mask"]
 

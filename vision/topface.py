@@ -17,7 +17,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from vision.robust import masked_median, robust_lm, soft_l1
+from gripsight.vision.robust import masked_median, robust_lm, soft_l1
 
 __all__ = ["outlines_geometry", "expected_area_mm2", "footprint_centre", "outward_normals",
            "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_row_of_tops", "min_rect"]

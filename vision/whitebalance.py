@@ -21,8 +21,8 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from vision.colour import linear_from_srgb
-from vision.robust import masked_median
+from gripsight.vision.colour import linear_from_srgb
+from gripsight.vision.robust import masked_median
 
 __all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels", "balanced_lab", "lab_of_linear", "linear_of",
            "white_gain"]

@@ -23,7 +23,7 @@ SAMPLES = ROOT / "sample_images"
 
 def _batch(folder: Path, out: Path, workers: int) -> float:
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, "-c", "from planning.cli import entry; entry()", "batch", str(folder),
+    subprocess.run([sys.executable, "-c", "from gripsight.app.cli import entry; entry()", "batch", str(folder),
                     "--cell", str(SAMPLE_CELL), "--workers", str(workers), "--out", str(out)],
                    check=False, capture_output=True)
     return time.perf_counter() - t0
@@ -32,7 +32,7 @@ def _batch(folder: Path, out: Path, workers: int) -> float:
 def _peak_rss_mb(folder: Path, out: Path) -> float:
     """Peak resident memory (MB) of the batch's processes, from a child that runs the batch."""
     code = ("import resource, subprocess, sys;"
-            f"subprocess.run([sys.executable, '-c', 'from planning.cli import entry; entry()', 'batch', '{folder}',"
+            f"subprocess.run([sys.executable, '-c', 'from gripsight.app.cli import entry; entry()', 'batch', '{folder}',"
             f" '--cell', '{SAMPLE_CELL}', '--workers', '2', '--out', '{out}'], capture_output=True);"
             "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
@@ -42,9 +42,9 @@ def _peak_rss_mb(folder: Path, out: Path) -> float:
 def _pipeline_vs_decode() -> tuple[float, float, float]:
     """Median decode and pipeline times (ms) over 10 interleaved rounds of the demo photos, and the ratio
     of their best-of-rounds times per photo (the machine's drift slows whole rounds)."""
-    from planning.cell import load_or_make_calibration, plan_photo
-    from planning.config import load_cell
-    from planning.picks import Planner
+    from gripsight.app.pipeline import load_or_make_calibration, plan_photo
+    from gripsight.app.cellfile import load_cell
+    from gripsight.planning.picks import Planner
 
     cell = load_cell(SAMPLE_CELL)
     stored = load_or_make_calibration(cell, None)

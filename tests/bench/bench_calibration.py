@@ -10,12 +10,12 @@ import time
 import cv2
 import numpy as np
 
-from planning.config import load_cell
+from gripsight.app.cellfile import load_cell
 from tests.conftest import ROOT, SAMPLE_CELL
-from vision.calfile import read_calibration, write_calibration
-from vision.calibration import calibrate
-from vision.drift import check_drift
-from vision.markers import detect_markers
+from gripsight.app.calfile import read_calibration, write_calibration
+from gripsight.vision.calibration import calibrate
+from gripsight.vision.drift import check_drift
+from gripsight.vision.markers import detect_markers
 
 
 def _best(fn, repeats=7):

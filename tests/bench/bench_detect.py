@@ -10,11 +10,11 @@ import time
 import cv2
 import numpy as np
 
-from planning.config import load_cell
+from gripsight.app.cellfile import load_cell
 from tests.conftest import ROOT, SAMPLE_CELL
-from vision.calibration import calibrate
-from vision.markers import detect_markers
-from vision.parts import detect_parts
+from gripsight.vision.calibration import calibrate
+from gripsight.vision.markers import detect_markers
+from gripsight.vision.parts import detect_parts
 
 
 def main(repeats: int = 15) -> None:

@@ -9,8 +9,8 @@ import time
 
 import numpy as np
 
-from planning.arm import Arm, Reason
-from planning.config import parse_cell
+from gripsight.planning.arm import Arm, Reason
+from gripsight.app.cellfile import parse_cell
 from tests.conftest import cell_data_with_linkage
 
 

@@ -9,9 +9,9 @@ import time
 
 import numpy as np
 
-from planning.config import load_cell
-from planning.picks import Planner
-from planning.targets import parse_parts
+from gripsight.app.cellfile import load_cell
+from gripsight.planning.picks import Planner
+from gripsight.app.partsfile import parse_parts
 from tests.conftest import SAMPLE_CELL
 
 

@@ -9,10 +9,10 @@ import time
 
 import numpy as np
 
-from planning.config import load_cell
+from gripsight.app.cellfile import load_cell
 from tests.conftest import SAMPLE_CELL
-from vision.render import encode_photo, render_scene
-from vision.scene import CameraSpec, random_scene
+from gripsight.vision.synth.render import encode_photo, render_scene
+from gripsight.vision.synth.scene import CameraSpec, random_scene
 
 
 def main(repeats: int = 8) -> None:

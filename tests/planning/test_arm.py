@@ -7,10 +7,10 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from planning.angles import wrap_angle
-from planning.arm import Arm, Branch, Linkage, Reason
-from planning.config import parse_cell
-from planning.linkage import FourBar, grashof_class
+from gripsight.planning.angles import wrap_angle
+from gripsight.planning.arm import Arm, Branch, Linkage, Reason
+from gripsight.app.cellfile import parse_cell
+from gripsight.planning.linkage import FourBar, grashof_class
 from tests.conftest import cell_data_with_linkage
 
 LINKAGES = ["serial", "parallel", "four_bar"]

@@ -10,10 +10,10 @@ import numpy as np
 import pytest
 import yaml
 
-from planning.checks import _zone_entry
-from planning.config import parse_cell
-from planning.picks import Planner
-from planning.targets import parse_parts
+from gripsight.planning.checks import _zone_entry
+from gripsight.app.cellfile import parse_cell
+from gripsight.planning.picks import Planner
+from gripsight.app.partsfile import parse_parts
 from tests.conftest import SAMPLE_CELL
 
 ZONES = [SimpleNamespace(shape="cylinder", x=10.0, y=-5.0, radius_mm=30.0, top_mm=20.0, name="post"),
@@ -69,9 +69,9 @@ def test_a_thin_wall_between_link_test_points_is_found():
 def test_a_zone_is_still_tested_when_a_later_sample_cannot_be_reached(sample_cell):
     # an unreachable sample carries NaN joints and tool point; it must not hide the zone the sample
     # before it enters (zones far from every link are skipped by their bounds)
-    from planning.arm import Arm, Reason
-    from planning.checks import CheckContext, first_failure
-    from planning.motion import SampledSegment, Segment, SegmentKind
+    from gripsight.planning.arm import Arm, Reason
+    from gripsight.planning.checks import CheckContext, first_failure
+    from gripsight.planning.motion import SampledSegment, Segment, SegmentKind
 
     arm = Arm.from_config(sample_cell.arm)
     zone = SimpleNamespace(shape="box", min_mm=(190.0, -10.0, 10.0), max_mm=(230.0, 10.0, 40.0), name="jig")

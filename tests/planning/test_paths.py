@@ -7,7 +7,7 @@ import modern_robotics as mr
 import numpy as np
 import pytest
 
-from planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling, peak_rate, time_scaling
+from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling, peak_rate, time_scaling
 
 MR_FUNCTIONS = {"cubic": mr.CubicTimeScaling, "quintic": mr.QuinticTimeScaling}
 

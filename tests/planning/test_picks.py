@@ -12,16 +12,16 @@ import numpy as np
 import pytest
 import yaml
 
-from planning.arm import Arm, Reason
-from planning.checks import CheckContext, first_failure
-from planning.cli import main
-from planning.config import load_cell, parse_cell
-from planning.errors import CellFileError
-from planning.motion import SampledSegment, Segment, SegmentKind
-from planning.ordering import order_cost_mm, order_nearest_two_opt
-from planning.picks import Planner
-from planning.safety import SAFETY_LINES
-from planning.targets import parse_parts
+from gripsight.planning.arm import Arm, Reason
+from gripsight.planning.checks import CheckContext, first_failure
+from gripsight.app.cli import main
+from gripsight.app.cellfile import load_cell, parse_cell
+from gripsight.planning.errors import CellProblems
+from gripsight.planning.motion import SampledSegment, Segment, SegmentKind
+from gripsight.planning.ordering import order_cost_mm, order_nearest_two_opt
+from gripsight.planning.picks import Planner
+from gripsight.planning.safety import SAFETY_LINES
+from gripsight.app.partsfile import parse_parts
 from tests.conftest import SAMPLE_CELL, cell_data_with_linkage
 
 SIX_REACHABLE_TWO_NOT = [
@@ -214,7 +214,7 @@ def test_joint_speed_check_names_joint_and_value(sample_cell):
 def test_unreachable_bin_is_a_cell_error_before_planning():
     data = yaml.safe_load(SAMPLE_CELL.read_text())
     data["bins"]["red"] = {"x": 110, "y": 400}
-    with pytest.raises(CellFileError, match=r"bins.red: cannot be reached at drop height \(z=50 mm\): out_of_reach"):
+    with pytest.raises(CellProblems, match=r"bins.red: cannot be reached at drop height \(z=50 mm\): out_of_reach"):
         Planner(parse_cell(data, "cell.yaml"))
 
 
@@ -304,7 +304,7 @@ def test_a_home_pose_outside_the_elbow_stop_is_a_cell_error():
 
     data = cell_data_with_linkage("serial")
     data["motion"]["home_deg"] = {"base": 0, "shoulder": 90, "elbow": 0}          # a straight arm: 180 deg
-    with pytest.raises(CellFileError, match="motion.home_deg: the home pose breaks the arm's own limits"):
+    with pytest.raises(CellProblems, match="motion.home_deg: the home pose breaks the arm's own limits"):
         Planner(parse_cell(data, "cell.yaml"))
 
 

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from planning.errors import ServoRangeError
-from planning.servo import ServoMap
+from gripsight.planning.errors import ServoRangeError
+from gripsight.planning.servo import ServoMap
 
 
 def test_common_practice_map_centre_and_ends():

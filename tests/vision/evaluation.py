@@ -5,11 +5,11 @@ from __future__ import annotations
 
 import cv2
 
-from planning.truthcheck import TruthComparison as Score
-from planning.truthcheck import compare_with_truth
-from vision.calibration import calibrate
-from vision.markers import detect_markers
-from vision.parts import detect_parts
+from gripsight.app.truthcheck import TruthComparison as Score
+from gripsight.app.truthcheck import compare_with_truth
+from gripsight.vision.calibration import calibrate
+from gripsight.vision.markers import detect_markers
+from gripsight.vision.parts import detect_parts
 
 __all__ = ["Score", "score", "detect_with_own_calibration", "score_photo"]
 

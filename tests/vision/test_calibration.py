@@ -10,18 +10,18 @@ import numpy as np
 import pytest
 import yaml
 
-from planning.cli import main
-from planning.config import parse_cell
-from vision.calfile import read_calibration, write_calibration
-from vision.calibration import CalibrationError, calibrate
-from vision.camera import Camera
-from vision.drift import check_drift, register, work_area_grid_mm
-from vision.homography import FitFailure, apply_homography, fit_homography_dlt
-from vision.lens import DivisionLens, OpenCVLens, load_opencv_lens
-from vision.markers import MarkerDetection, detect_markers
-from vision.photoset import read_truth
-from vision.render import encode_photo, render_scene
-from vision.scene import CameraSpec, Scene, SensorSpec
+from gripsight.app.cli import main
+from gripsight.app.cellfile import parse_cell
+from gripsight.app.calfile import read_calibration, write_calibration
+from gripsight.vision.calibration import CalibrationError, calibrate
+from gripsight.vision.camera import Camera
+from gripsight.vision.drift import check_drift, register, work_area_grid_mm
+from gripsight.vision.homography import FitFailure, apply_homography, fit_homography_dlt
+from gripsight.vision.lens import DivisionLens, OpenCVLens, load_opencv_lens
+from gripsight.vision.markers import MarkerDetection, detect_markers
+from gripsight.app.photoset import read_truth
+from gripsight.vision.synth.render import encode_photo, render_scene
+from gripsight.vision.synth.scene import CameraSpec, Scene, SensorSpec
 from tests.conftest import ROOT, SAMPLE_CELL, sample_cell_data
 
 SAMPLES = ROOT / "sample_images"

@@ -10,15 +10,15 @@ import cv2
 import numpy as np
 import pytest
 
-from planning.cli import main
-from planning.config import parse_cell
+from gripsight.app.cli import main
+from gripsight.app.cellfile import parse_cell
 from tests.conftest import ROOT, SAMPLE_CELL, sample_cell_data
 from tests.vision.evaluation import Score, detect_with_own_calibration, score, score_photo
-from vision.colour import delta_e_2000, lab_from_srgb
-from vision.photoset import UNKNOWN_LAB, read_truth
-from vision.render import encode_photo, render_scene
-from vision.scene import CameraSpec, LightingSpec, SensorSpec, random_scene
-from vision.whitebalance import lab_of_pixels
+from gripsight.vision.colour import delta_e_2000, lab_from_srgb
+from gripsight.app.photoset import UNKNOWN_LAB, read_truth
+from gripsight.vision.synth.render import encode_photo, render_scene
+from gripsight.vision.synth.scene import CameraSpec, LightingSpec, SensorSpec, random_scene
+from gripsight.vision.whitebalance import lab_of_pixels
 
 SAMPLES = ROOT / "sample_images"
 
@@ -181,9 +181,9 @@ def test_touching_pair_is_split_and_unknown_colour_is_flagged(sample_cell):
 
 @pytest.mark.parametrize("kind", ["black", "white", "grey", "no parts"])
 def test_bad_photos_give_a_status_and_no_parts(sample_cell, kind):
-    from vision.calibration import calibrate
-    from vision.markers import detect_markers
-    from vision.parts import detect_parts
+    from gripsight.vision.calibration import calibrate
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.parts import detect_parts
 
     base = cv2.imread(str(SAMPLES / "calibration.jpg"))
     dets = detect_markers(base, sample_cell.markers.dictionary)
@@ -313,15 +313,15 @@ def test_hard_photos(condition):
 def test_block_size_follows_the_smallest_part():
     """The coarse pass's block is the largest of 8, 4, 2 px across which the smallest part spans four
     blocks: the demo's 22 mm tokens (~44 px) get 8 px blocks, a 9 mm class 4 px."""
-    from vision.pixelclass import block_size_px
+    from gripsight.vision.pixelclass import block_size_px
     assert [block_size_px(px) for px in (44, 32, 31.9, 16, 15, 8, 3)] == [8, 8, 4, 4, 2, 2, 2]
 
 
 def test_small_parts_are_found_with_smaller_blocks():
     """A 9 mm, 10 mm tall class (~18 px across in the demo camera: 4 px blocks) beside the tokens:
     every part found, centres within the sample bounds."""
-    from vision.markers import detect_markers
-    from vision.parts import _search_region
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.parts import _search_region
     data = sample_cell_data()
     data["parts"]["bead"] = {"lab": [60, -35, -20], "tolerance": 18, "height_mm": 10, "shape": "cylinder",
                              "footprint_mm": [9]}
@@ -343,7 +343,7 @@ def test_small_parts_are_found_with_smaller_blocks():
 def test_white_balance_field_is_its_fitted_polynomial(terms):
     # the fit uses the polynomial as features, the evaluation as a separable sum (the fast form for a
     # grid): the two must be the same function
-    from vision.whitebalance import Illumination
+    from gripsight.vision.whitebalance import Illumination
 
     rng = np.random.default_rng(terms)
     ill = Illumination(rng.uniform(-0.3, 0.8, (3, terms)), 1280, 960, 8)

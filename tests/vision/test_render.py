@@ -9,13 +9,14 @@ import numpy as np
 import pytest
 import yaml
 
-from planning.cli import main
-from vision.camera import Camera
-from vision.colour import lab_from_srgb
-from vision.markers import aruco_dictionary, detect_markers
-from vision.photoset import UNKNOWN_LAB, read_truth
-from vision.render import _lens_map, encode_photo, render_scene
-from vision.scene import CameraSpec, LightingSpec, Scene, SensorSpec, marker_paper_corners_mm, random_scene
+from gripsight.app.cli import main
+from gripsight.vision.camera import Camera
+from gripsight.vision.colour import lab_from_srgb
+from gripsight.vision.markers import aruco_dictionary, detect_markers
+from gripsight.app.photoset import UNKNOWN_LAB, read_truth
+from gripsight.vision.synth.render import _lens_map, encode_photo, render_scene
+from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, SensorSpec, random_scene
 from tests.conftest import ROOT, SAMPLE_CELL
 
 SAMPLES = ROOT / "sample_images"

@@ -6,8 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from vision.robust import masked_median
-from vision.topface import TopFaceProblem, fit_top_faces, outward_normals
+from gripsight.vision.robust import masked_median
+from gripsight.vision.topface import TopFaceProblem, fit_top_faces, outward_normals
 
 
 def _circle(centre, radius, n=240):

@@ -6,7 +6,7 @@ from __future__ import annotations
 import html
 from pathlib import Path
 
-from planning.fileio import write_text_atomic
+from gripsight.app.fileio import write_text_atomic
 
 __all__ = ["write_report"]
 

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from vision.polygon import points_in_polygon
+from gripsight.vision.polygon import points_in_polygon
 
 __all__ = ["TruthComparison", "compare_with_truth", "MATCH_MM"]
 

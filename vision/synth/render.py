@@ -26,10 +26,11 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-from vision.camera import Camera
-from vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
-from vision.markers import aruco_dictionary
-from vision.scene import ResolvedPart, Scene, make_camera, marker_paper_corners_mm, resolve_parts
+from gripsight.vision.camera import Camera
+from gripsight.vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
+from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.synth.scene import ResolvedPart, Scene, make_camera, resolve_parts
 
 __all__ = ["Rendered", "render_scene", "encode_photo"]
 

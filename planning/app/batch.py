@@ -12,7 +12,7 @@ import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from planning.fileio import child_folder, output_dir, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
 
 __all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
 
@@ -32,10 +32,10 @@ def _context(cell_path: str, calibration_path: str | None):
     """Cell, arm, planner and calibration, loaded once per worker process."""
     key = (cell_path, calibration_path)
     if key not in _CACHE:
-        from planning.arm import Arm
-        from planning.cell import load_or_make_calibration
-        from planning.config import load_cell
-        from planning.picks import Planner
+        from gripsight.planning.arm import Arm
+        from gripsight.app.pipeline import load_or_make_calibration
+        from gripsight.app.cellfile import load_cell
+        from gripsight.planning.picks import Planner
 
         cell = load_cell(cell_path)
         arm = Arm.from_config(cell.arm)
@@ -47,14 +47,14 @@ def _context(cell_path: str, calibration_path: str | None):
 
 def process_photo(job: BatchJob) -> dict:
     """Analyse, plan and write one photo; return its row (``error`` set if it failed)."""
-    from planning.errors import GripsightError
+    from gripsight.app.errors import EXPECTED_ERRORS
 
     name = Path(job.photo).name
     row = {"photo": name, "status": "error", "error": "", "registration": "", "drift": "", "parts": 0,
            "found": {}, "planned": 0, "rejected": {}, "cycle_s": 0.0, "truth": None, "thumbnail": ""}
     try:
-        from planning.cell import plan_photo
-        from planning.photo_outputs import write_photo_outputs
+        from gripsight.app.pipeline import plan_photo
+        from gripsight.app.photo_outputs import write_photo_outputs
 
         cell, arm, planner, stored = _context(job.cell_path, job.calibration_path)
         pp = plan_photo(job.photo, cell, stored, planner)
@@ -76,7 +76,7 @@ def process_photo(job: BatchJob) -> dict:
             row["cycle_s"] = round(pp.plan.cycle_s, 3)
             row["truth"] = _truth_stats(job.photo, pp, cell)
         row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
-    except GripsightError as exc:
+    except EXPECTED_ERRORS as exc:
         row["error"] = str(exc)
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
         row["error"] = f"internal error ({type(exc).__name__}: {exc})"
@@ -110,7 +110,7 @@ def _finished_row(job: BatchJob) -> dict | None:
 def _truth_stats(photo: str, pp, cell) -> dict | None:
     import yaml
 
-    from planning.truthcheck import compare_with_truth
+    from gripsight.app.truthcheck import compare_with_truth
 
     truth_file = Path(photo).with_name(Path(photo).stem + ".truth.yaml")
     if not truth_file.is_file():
@@ -138,7 +138,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
               progress=None, resume: bool = False) -> list[dict]:
     """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order.
     With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone."""
-    from planning.run import photos_in
+    from gripsight.app.run import photos_in
 
     out = output_dir(out)
     photos = photos_in(folder)
@@ -179,7 +179,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
 
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell
-_WORKER_MODULES = ["planning.cell", "planning.photo_outputs", "planning.plan_plot", "vision.parts", "vision.markers",
+_WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot", "gripsight.vision.parts", "gripsight.vision.markers",
                    "matplotlib.pyplot"]
 
 
@@ -200,7 +200,7 @@ def _start_workers_early():
 
 
 def _run_dask(jobs, scheduler: str, progress) -> dict:
-    from planning.errors import GripsightError
+    from gripsight.app.errors import GripsightError
 
     try:
         from dask.distributed import Client, as_completed
@@ -228,7 +228,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     import csv
     import io
 
-    from planning.report import write_report
+    from gripsight.app.report import write_report
 
     classes = list(cell.parts) + ["unknown"]
     reasons = sorted({r for row in rows for r in row["rejected"]})

@@ -17,9 +17,9 @@ from pathlib import Path
 
 import numpy as np
 
-from planning.errors import GripsightError
-from planning.export import CSV_COLUMNS, joints_csv_text, utc_now
-from planning.fileio import child_folder, output_dir, write_text_atomic
+from gripsight.app.errors import EXPECTED_ERRORS, GripsightError
+from gripsight.app.export import CSV_COLUMNS, joints_csv_text, utc_now
+from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
 
@@ -92,10 +92,10 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
                progress=None, speed_scale: float = 1.0) -> RunResult:
     """Plan every photo of ``folder`` in order, carrying the arm and the tray counts (see the module)."""
-    from planning.arm import Arm
-    from planning.cell import plan_photo
-    from planning.photo_outputs import write_photo_outputs
-    from planning.picks import Planner
+    from gripsight.planning.arm import Arm
+    from gripsight.app.pipeline import plan_photo
+    from gripsight.app.photo_outputs import write_photo_outputs
+    from gripsight.planning.picks import Planner
 
     folder = Path(folder)
     out = output_dir(out)
@@ -128,7 +128,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             try:
                 pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
                                 t0_s=state["t_s"], end_at_home=False, order=order, bin_room=room if room else None)
-            except GripsightError as exc:       # an unusable photo: said, skipped, the run goes on
+            except EXPECTED_ERRORS as exc:      # an unusable photo: said, skipped, the run goes on
                 summary = {"photo": photo.name, "status": "error", "registration": "", "message": str(exc),
                            "picked": {}, "rejected": {}, "cycle_s": 0.0}
                 state["done"].append(photo.name)

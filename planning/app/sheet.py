@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from vision.markers import aruco_dictionary
+from gripsight.vision.markers import aruco_dictionary
 
 __all__ = ["PAPER_MM", "write_marker_sheet", "page_layout"]
 
@@ -26,7 +26,7 @@ def page_layout(cell, paper: str) -> list[list[tuple[int, float, float]]]:
     cols = max(1, int((width - 2 * _PAGE_MARGIN_MM + _GAP_MM) // (cell_mm + _GAP_MM)))
     rows = max(1, int((height - 2 * _PAGE_MARGIN_MM - _FOOTER_MM + _GAP_MM) // (cell_mm + _LABEL_MM + _GAP_MM)))
     if cell_mm > width - 2 * _PAGE_MARGIN_MM or cell_mm + _LABEL_MM > height - 2 * _PAGE_MARGIN_MM - _FOOTER_MM:
-        from planning.errors import GripsightError
+        from gripsight.app.errors import GripsightError
 
         raise GripsightError(f"markers.size_mm: a {cell_mm:g} mm marker with its margin does not fit on {paper} paper")
     ids = sorted(cell.markers.layout)
@@ -100,7 +100,7 @@ def write_marker_sheet(cell, out_path, paper: str = "a4", dpi: int = 300) -> lis
     import matplotlib.pyplot as plt
     from matplotlib.backends.backend_pdf import PdfPages
 
-    from planning.fileio import atomic_output
+    from gripsight.app.fileio import atomic_output
 
     out_path = Path(out_path)
     width, height = PAPER_MM[paper]

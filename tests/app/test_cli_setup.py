@@ -8,10 +8,10 @@ import sys
 
 import numpy as np
 
-from planning.arm import Arm
-from planning.cli import main
-from planning.config import load_cell
-from planning.reach import radial_reach, unreachable_places
+from gripsight.planning.arm import Arm
+from gripsight.app.cli import main
+from gripsight.app.cellfile import load_cell
+from gripsight.planning.reach import radial_reach, unreachable_places
 from tests.conftest import SAMPLE_CELL
 
 
@@ -57,7 +57,7 @@ def test_unreachable_bin_is_flagged(tmp_path):
 
 
 def test_console_script_help_and_error_exit_codes(tmp_path):
-    exe = [sys.executable, "-c", "from planning.cli import entry; entry()"]
+    exe = [sys.executable, "-c", "from gripsight.app.cli import entry; entry()"]
     done = subprocess.run(exe + ["--help"], capture_output=True, text=True)
     assert done.returncode == 0 and "reach" in done.stdout
     done = subprocess.run(exe + ["validate", str(tmp_path / "missing.yaml")], capture_output=True, text=True)

@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from planning.cli import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
+from gripsight.app.commands.common import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
 
 
 def _note(text: str) -> None:
@@ -27,9 +27,9 @@ def detect(
     """Find the parts in a photo: class, table position (mm, parallax corrected), size, status."""
     import json
 
-    from planning.cell import analyse_photo, load_or_make_calibration
-    from planning.config import load_cell
-    from planning.errors import GripsightError
+    from gripsight.app.pipeline import analyse_photo, load_or_make_calibration
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.errors import GripsightError
 
     cfg = load_cell(_find_cell(cell, photo))
     if sample is not None:
@@ -43,8 +43,8 @@ def detect(
     if overlay is not None:
         import cv2
 
-        from planning.fileio import write_bytes_atomic
-        from vision.overlay import detection_overlay
+        from gripsight.app.fileio import write_bytes_atomic
+        from gripsight.vision.overlay import detection_overlay
 
         image = detection_overlay(result.image, det, result.registration.mapping,
                                   result.registration.camera_centre_mm, cfg)
@@ -81,17 +81,17 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
     import numpy as np
 
-    from vision.colour import delta_e_2000
-    from vision.markers import detect_markers
-    from vision.photo import read_photo
-    from vision.whitebalance import fit_illumination, lab_image
+    from gripsight.vision.colour import delta_e_2000
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.photo import read_photo
+    from gripsight.vision.whitebalance import fit_illumination, lab_image
 
     uv = _floats(text, "--sample", (2, 2))
     image = read_photo(photo)
     u, v = int(round(uv[0])), int(round(uv[1]))
     h, w = image.shape[:2]
     if not (3 <= u < w - 3 and 3 <= v < h - 3):
-        from planning.errors import GripsightError
+        from gripsight.app.errors import GripsightError
 
         raise GripsightError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
     ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary), cfg)
@@ -120,10 +120,10 @@ def plan(
     """Plan checked pick-and-place moves for the parts in a photo (or a parts file); write the joint sequence."""
     import json
 
-    from planning.arm import Arm
-    from planning.config import load_cell
-    from planning.errors import GripsightError
-    from planning.picks import Planner
+    from gripsight.planning.arm import Arm
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.errors import GripsightError
+    from gripsight.planning.picks import Planner
 
     if order not in ("nearest", "detected"):
         raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
@@ -133,14 +133,14 @@ def plan(
     arm = Arm.from_config(cfg.arm)
     planner = Planner(cfg, arm, speed_scale=speed_scale)
     if parts is not None:
-        from planning.export import write_plan_outputs
-        from planning.targets import load_parts_file
+        from gripsight.app.export import write_plan_outputs
+        from gripsight.app.partsfile import load_parts_file
 
         result = planner.plan(load_parts_file(parts, cfg), order=order)
         data = write_plan_outputs(out, result, cfg, arm, plots=plots)
     else:
-        from planning.cell import load_or_make_calibration, plan_photo
-        from planning.photo_outputs import write_photo_outputs
+        from gripsight.app.pipeline import load_or_make_calibration, plan_photo
+        from gripsight.app.photo_outputs import write_photo_outputs
 
         stored = load_or_make_calibration(cfg, calibration, say=_note)
         photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
@@ -199,9 +199,9 @@ def run(
     from rich.console import Console
     from rich.table import Table
 
-    from planning.cell import load_or_make_calibration
-    from planning.config import load_cell
-    from planning.run import photos_in, run_folder
+    from gripsight.app.pipeline import load_or_make_calibration
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.run import photos_in, run_folder
 
     cfg = load_cell(_find_cell(cell, folder))
     stored = load_or_make_calibration(cfg, calibration, say=_note)
@@ -220,8 +220,8 @@ def run(
         console.print(line)
 
     result_rows: list = []
-    from planning.fileio import output_dir
-    from planning.lock import output_lock
+    from gripsight.app.fileio import output_dir
+    from gripsight.app.lock import output_lock
 
     with output_lock(output_dir(out), "run"):
         result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order,
@@ -255,12 +255,12 @@ def batch(
     resume: bool = typer.Option(False, "--resume", help="Keep the photos an interrupted batch in --out finished."),
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
-    from planning.batch import run_batch, write_batch_tables
-    from planning.config import load_cell
-    from planning.run import photos_in
+    from gripsight.app.batch import run_batch, write_batch_tables
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.run import photos_in
 
-    from planning.fileio import output_dir
-    from planning.lock import output_lock
+    from gripsight.app.fileio import output_dir
+    from gripsight.app.lock import output_lock
 
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)

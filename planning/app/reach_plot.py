@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from planning.arm import Arm
-from planning.reach import lowest_grip_z_mm, reachable_rz, reachable_xy, unreachable_places
+from gripsight.planning.arm import Arm
+from gripsight.planning.reach import lowest_grip_z_mm, reachable_rz, reachable_xy, unreachable_places
 
 __all__ = ["draw_reach"]
 

@@ -10,7 +10,7 @@ import contextlib
 import os
 from pathlib import Path
 
-from planning.errors import GripsightError
+from gripsight.app.errors import GripsightError
 
 __all__ = ["output_lock", "LOCK_NAME"]
 

@@ -1,4 +1,4 @@
-"""The ``gripsight`` command line: parse, load the cell, call the library, print.
+"""What every command shares: the typer ``app``, error handling, shared options and helpers.
 
 Heavy modules (numpy, OpenCV, matplotlib, pydantic) are imported inside the commands so that
 ``gripsight --help`` starts fast. Every expected error is one line on stderr and a non-zero exit code;
@@ -49,17 +49,16 @@ def _guarded(fn):
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
-        from planning.errors import CellFileError, GripsightError
+        from gripsight.app.errors import EXPECTED_ERRORS, exit_code_for, message_lines
 
         try:
             return fn(*args, **kwargs)
-        except GripsightError as exc:
-            lines = exc.lines() if isinstance(exc, CellFileError) else [str(exc)]
-            for line in lines:
+        except EXPECTED_ERRORS as exc:
+            for line in message_lines(exc):
                 _echo_err(f"error: {line}")
             if _state["verbose"]:
                 traceback.print_exc()
-            raise typer.Exit(exc.exit_code) from None
+            raise typer.Exit(exit_code_for(exc)) from None
         except KeyboardInterrupt:
             _echo_err("interrupted")
             raise typer.Exit(130) from None
@@ -99,7 +98,7 @@ def calibration_option():
 # ------------------------------------------------------------------ helpers shared by the commands
 def _find_cell(cell: Optional[Path], near: Path) -> Path:
     """--cell, or cell.yaml in the input's folder or its parent."""
-    from planning.errors import GripsightError
+    from gripsight.app.errors import GripsightError
 
     if cell is not None:
         return cell
@@ -111,7 +110,7 @@ def _find_cell(cell: Optional[Path], near: Path) -> Path:
 
 
 def _floats(text: Optional[str], name: str, count: tuple[int, int]) -> Optional[list[float]]:
-    from planning.errors import GripsightError
+    from gripsight.app.errors import GripsightError
 
     if text is None:
         return None
@@ -129,33 +128,3 @@ def _progress():
 
     return Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), TimeRemainingColumn(),
                     transient=False)
-
-
-# the commands register themselves on `app` (in --help order)
-from planning import cli_cell, cli_camera, cli_jobs  # noqa: E402,F401
-
-
-# ------------------------------------------------------------------ entry point
-def main(argv: Optional[list[str]] = None) -> int:
-    """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""
-    try:
-        result = app(args=argv, prog_name="gripsight", standalone_mode=False)
-    except typer.Exit as exc:
-        return exc.exit_code
-    except typer.Abort:
-        _echo_err("interrupted")
-        return 130
-    except typer.exceptions.TyperException as exc:  # usage errors: bad option, missing argument
-        show = getattr(exc, "show", None)
-        _echo_err(f"error: {exc}") if show is None else show()
-        return int(getattr(exc, "exit_code", 2))
-    return result if isinstance(result, int) else 0
-
-
-def entry() -> None:
-    """The ``gripsight`` console script."""
-    sys.exit(main())
-
-
-if __name__ == "__main__":
-    entry()

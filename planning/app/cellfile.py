@@ -21,7 +21,7 @@ from typing import Annotated, Literal
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
-from planning.errors import CellFileError, Problem
+from gripsight.app.errors import CellFileError, Problem
 
 __all__ = [
     "ARUCO_DICTIONARY_SIZES",
@@ -490,4 +490,4 @@ def starter_cell_text() -> str:
     """The commented starter cell file written by ``gripsight init``."""
     from importlib.resources import files
 
-    return files("planning").joinpath("templates/cell.yaml").read_text(encoding="utf-8")
+    return files("gripsight.app").joinpath("templates/cell.yaml").read_text(encoding="utf-8")

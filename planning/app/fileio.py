@@ -28,7 +28,7 @@ def child_folder(out, name: str) -> Path:
 
 def output_dir(path) -> Path:
     """Create an output folder (and parents); a clear error if a file stands in the way."""
-    from planning.errors import GripsightError
+    from gripsight.app.errors import GripsightError
 
     p = Path(path)
     if p.exists() and not p.is_dir():

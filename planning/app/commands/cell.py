@@ -6,7 +6,7 @@ from pathlib import Path
 
 import typer
 
-from planning.cli import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
+from gripsight.app.commands.common import _find_cell, _floats, _progress, command  # noqa: F401  (shared helpers)
 
 
 # ------------------------------------------------------------------ init / validate
@@ -16,9 +16,9 @@ def init(
     force: bool = typer.Option(False, "--force", help="Overwrite an existing file."),
 ):
     """Write a commented starter cell file to fill in with your cell's measurements."""
-    from planning.config import starter_cell_text
-    from planning.errors import GripsightError
-    from planning.fileio import write_text_atomic
+    from gripsight.app.cellfile import starter_cell_text
+    from gripsight.app.errors import GripsightError
+    from gripsight.app.fileio import write_text_atomic
 
     if path.is_dir():
         raise GripsightError(f"{path}: is a directory; give a file name such as {path / 'cell.yaml'}")
@@ -31,9 +31,9 @@ def init(
 @command()
 def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
     """Check a cell file; print a summary, or every problem with its key path (exit 2)."""
-    from planning.arm import Arm
-    from planning.config import load_cell
-    from planning.reach import lowest_grip_z_mm, radial_reach
+    from gripsight.planning.arm import Arm
+    from gripsight.app.cellfile import load_cell
+    from gripsight.planning.reach import lowest_grip_z_mm, radial_reach
 
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
@@ -54,11 +54,11 @@ def reach(
     resolution_mm: float = typer.Option(2.0, "--resolution-mm", min=0.5, max=20.0, help="Grid step of the drawing."),
 ):
     """Draw the reachable region (top and side view) and flag bins or corners the arm cannot reach."""
-    from planning.arm import Arm
-    from planning.config import load_cell
-    from planning.fileio import atomic_output
-    from planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
-    from planning.reach_plot import draw_reach
+    from gripsight.planning.arm import Arm
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.fileio import atomic_output
+    from gripsight.planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
+    from gripsight.app.reach_plot import draw_reach
 
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
@@ -82,9 +82,9 @@ def markers(
     dpi: int = typer.Option(300, "--dpi", min=72, max=1200, help="Resolution of PNG pages."),
 ):
     """Write a printable sheet of the layout's markers at true size, with a 100 mm scale bar."""
-    from planning.config import load_cell
-    from planning.errors import GripsightError
-    from vision.sheet import PAPER_MM, write_marker_sheet
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.errors import GripsightError
+    from gripsight.app.sheet import PAPER_MM, write_marker_sheet
 
     if paper not in PAPER_MM:
         raise GripsightError(f"--paper: expected a4 or letter, got '{paper}'")

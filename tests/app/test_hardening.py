@@ -22,17 +22,18 @@ import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from planning.arm import Reason
-from planning.cli import main
-from planning.config import load_cell, parse_cell
-from planning.errors import CellFileError
-from planning.fileio import child_folder
-from planning.picks import Planner
-from planning.targets import parse_parts
+from gripsight.planning.arm import Reason
+from gripsight.app.cli import main
+from gripsight.app.cellfile import load_cell, parse_cell
+from gripsight.app.errors import CellFileError
+from gripsight.planning.errors import CellProblems
+from gripsight.app.fileio import child_folder
+from gripsight.planning.picks import Planner
+from gripsight.app.partsfile import parse_parts
 from tests.conftest import ROOT, SAMPLE_CELL, sample_cell_data
 
 SAMPLES = ROOT / "sample_images"
-CLI = [sys.executable, "-c", "from planning.cli import entry; entry()"]
+CLI = [sys.executable, "-c", "from gripsight.app.cli import entry; entry()"]
 
 
 # ------------------------------------------------------------------ bad photos, every command
@@ -185,7 +186,7 @@ def test_fuzzed_cell_files_load_or_fail_with_a_key(tmp_path, data):
     file.write_text(yaml.safe_dump(mutated, sort_keys=False))
     try:
         load_cell(file)
-    except CellFileError as exc:
+    except (CellFileError, CellProblems) as exc:
         assert exc.problems and all(isinstance(p.where, str) and p.message for p in exc.problems)
         assert "\n" not in str(exc)
 
@@ -205,7 +206,7 @@ def test_yaml_tags_and_odd_text_never_run_code(tmp_path, text):
 @settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(st.data())
 def test_fuzzed_calibration_files(tmp_path, calibrated, data):
-    from vision.calfile import read_calibration
+    from gripsight.app.calfile import read_calibration
 
     record = yaml.safe_load(calibrated.read_text())
     path = data.draw(st.sampled_from(list(_paths(record))))
@@ -215,7 +216,7 @@ def test_fuzzed_calibration_files(tmp_path, calibrated, data):
     try:
         stored = read_calibration(file)
         assert np.isfinite(stored.mapping.H_table_from_pixel).all()
-    except CellFileError as exc:
+    except (CellFileError, CellProblems) as exc:
         assert exc.problems
 
 
@@ -233,7 +234,7 @@ def test_random_cells_emit_only_checked_samples(linkage, upper, fore, base_h, se
     cell = parse_cell(data)
     try:
         planner = Planner(cell)
-    except CellFileError as exc:            # a bin or the home pose out of reach: said before planning
+    except (CellFileError, CellProblems) as exc:            # a bin or the home pose out of reach: said before planning
         assert all(p.where.startswith(("bins.", "motion.home_deg")) for p in exc.problems)
         return
     rng = np.random.default_rng(seed)
@@ -259,7 +260,7 @@ def test_random_cells_emit_only_checked_samples(linkage, upper, fore, base_h, se
 # ------------------------------------------------------------------ nothing lost
 _WRITER = """
 import sys
-from planning.fileio import write_text_atomic
+from gripsight.app.fileio import write_text_atomic
 target, n = sys.argv[1], int(sys.argv[2])
 i = 0
 while True:
@@ -374,7 +375,8 @@ def test_photo_names_cannot_leave_the_output_folder(tmp_path, name):
 
 # ------------------------------------------------------------------ the table of error messages
 _ERROR_TYPES = {"GripsightError", "CellFileError", "PhotoError", "CalibrationError", "ServoRangeError",
-                "PathGeometryError", "Problem"}
+                "PathGeometryError", "Problem", "CellProblems", "LensFileError", "SheetError", "PlanningError",
+                "VisionError"}
 
 
 def _literal_fragments(node) -> list[str]:
@@ -389,7 +391,7 @@ def _messages_in_code():
     """The longest literal fragment of every message given to an error type or a Problem."""
     found = []
     for pkg in ("planning", "vision"):
-        for path in sorted((ROOT / pkg).glob("*.py")):
+        for path in sorted((ROOT / pkg).rglob("*.py")):
             tree = ast.parse(path.read_text())
             for node in ast.walk(tree):
                 if isinstance(node, ast.Call) and getattr(node.func, "id", getattr(node.func, "attr", "")) in _ERROR_TYPES:

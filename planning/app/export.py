@@ -16,9 +16,9 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from planning.fileio import output_dir, write_text_atomic
-from planning.picks import Plan
-from planning.safety import SAFETY_LINES
+from gripsight.app.fileio import output_dir, write_text_atomic
+from gripsight.planning.picks import Plan
+from gripsight.planning.safety import SAFETY_LINES
 
 __all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs", "utc_now"]
 
@@ -117,7 +117,7 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
     write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))
     write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
     if plots:
-        from planning.plan_plot import draw_joint_plot, draw_path_plot
+        from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 
         draw_joint_plot(plan, cell, arm, out / "joints.png")
         draw_path_plot(plan, cell, arm, out / "path.png")

@@ -17,11 +17,11 @@ import numpy as np
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from planning.errors import CellFileError, Problem
-from planning.fileio import write_text_atomic
-from vision.calibration import Calibration, MarkerFit
-from vision.homography import TableMapping
-from vision.lens import lens_from_dict
+from gripsight.app.errors import CellFileError, Problem
+from gripsight.app.fileio import write_text_atomic
+from gripsight.vision.calibration import Calibration, MarkerFit
+from gripsight.vision.homography import TableMapping
+from gripsight.vision.lens import lens_from_dict
 
 __all__ = ["write_calibration", "read_calibration", "StoredCalibration", "history_path", "file_sha256"]
 
@@ -155,7 +155,7 @@ def read_calibration(path) -> StoredCalibration:
     CellFileError
         Missing file, YAML errors, or invalid content (each problem with its key path).
     """
-    from planning.config import _pydantic_problems, read_yaml
+    from gripsight.app.cellfile import _pydantic_problems, read_yaml
 
     data, _ = read_yaml(path, "calibration file")
     if not isinstance(data, dict):

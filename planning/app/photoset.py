@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 import yaml
 
-from planning.fileio import write_bytes_atomic, write_text_atomic
-from vision.render import Rendered, encode_photo, render_scene
-from vision.scene import CameraSpec, LightingSpec, Scene, ScenePart, SensorSpec, make_camera, random_scene
+from gripsight.app.fileio import write_bytes_atomic, write_text_atomic
+from gripsight.vision.synth.render import Rendered, encode_photo, render_scene
+from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, ScenePart, SensorSpec, make_camera, random_scene
 
 __all__ = ["write_photo", "read_truth", "truth_path", "demo_camera_spec", "write_sample_set", "UNKNOWN_LAB"]
 

@@ -21,8 +21,9 @@ from typing import Annotated, Literal
 import numpy as np
 from pydantic import BaseModel, ConfigDict, Field
 
-from vision.camera import Camera
-from vision.polygon import points_in_polygon
+from gripsight.vision.camera import Camera
+from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.polygon import points_in_polygon
 
 __all__ = ["Scene", "ScenePart", "ResolvedPart", "resolve_parts", "make_camera", "random_scene",
            "marker_paper_corners_mm"]
@@ -141,17 +142,6 @@ def resolve_parts(scene: Scene, cell) -> list[ResolvedPart]:
             length_mm=float(size[0]), width_mm=float(size[1]),
             height_mm=float(p.height_mm or cls.height_mm), x_mm=p.x_mm, y_mm=p.y_mm, yaw_deg=p.yaw_deg))
     return out
-
-
-def marker_paper_corners_mm(placement, size_mm: float, margin_mm: float = 0.0) -> np.ndarray:
-    """Corners (4, 3) in table mm of a marker's black square (margin 0) or its paper, in OpenCV's order
-    (top-left, top-right, bottom-right, bottom-left of the marker image; yaw 0: image top toward +x)."""
-    h = size_mm / 2 + margin_mm
-    local = np.array([[h, h], [h, -h], [-h, -h], [-h, h]])       # (x, y): top edge toward +x, right toward -y
-    yaw = np.radians(placement.yaw_deg)
-    rot = np.array([[np.cos(yaw), -np.sin(yaw)], [np.sin(yaw), np.cos(yaw)]])
-    xy = local @ rot.T + [placement.x, placement.y]
-    return np.column_stack([xy, np.full(4, float(placement.z))])
 
 
 def make_camera(spec: CameraSpec, cell) -> Camera:

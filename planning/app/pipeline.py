@@ -10,8 +10,8 @@ from pathlib import Path
 
 import numpy as np
 
-from planning.errors import GripsightError
-from planning.targets import PartTarget
+from gripsight.app.errors import GripsightError
+from gripsight.planning.targets import PartTarget
 
 __all__ = ["PhotoAnalysis", "PhotoPlan", "analyse_photo", "plan_photo", "photo_record", "targets_from_detection",
            "default_calibration_path", "load_or_make_calibration"]
@@ -40,10 +40,10 @@ def default_calibration_path(cell) -> Path:
 def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
     """Read the calibration; if there is none at the default place but ``calibration.jpg`` lies beside
     the cell file, calibrate from it first (the demo cell's first run) and tell ``say`` (a callable)."""
-    from vision.calfile import read_calibration, write_calibration
-    from vision.calibration import calibrate
-    from vision.markers import detect_markers
-    from vision.photo import read_photo
+    from gripsight.app.calfile import read_calibration, write_calibration
+    from gripsight.vision.calibration import calibrate
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.photo import read_photo
 
     path = Path(calibration_path) if calibration_path else default_calibration_path(cell)
     if not path.exists() and calibration_path is None and cell.source_path:
@@ -64,10 +64,10 @@ def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
 
 def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     """Read (unless given), register against the calibration per ``camera.on_move``, find the parts."""
-    from vision.drift import register
-    from vision.markers import detect_markers
-    from vision.parts import detect_parts
-    from vision.photo import read_photo
+    from gripsight.vision.drift import register
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.parts import detect_parts
+    from gripsight.vision.photo import read_photo
 
     image = read_photo(photo) if image is None else image
     expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None

@@ -7,8 +7,8 @@ import json
 
 import numpy as np
 
-from planning.export import utc_now, write_plan_outputs
-from planning.fileio import output_dir, write_bytes_atomic, write_text_atomic
+from gripsight.app.export import utc_now, write_plan_outputs
+from gripsight.app.fileio import output_dir, write_bytes_atomic, write_text_atomic
 
 __all__ = ["write_photo_outputs", "plan_overlay"]
 
@@ -20,7 +20,7 @@ _REACH_BGR = (120, 220, 120)
 def _reach_outline_mm(cell, arm, z_mm: float, step_mm: float = 4.0) -> list[np.ndarray]:
     import cv2
 
-    from planning.reach import reachable_xy
+    from gripsight.planning.reach import reachable_xy
 
     wa = np.asarray(cell.work_area, float)
     x = np.arange(wa[:, 0].min() - 60, wa[:, 0].max() + 60, step_mm)
@@ -33,8 +33,8 @@ def _reach_outline_mm(cell, arm, z_mm: float, step_mm: float = 4.0) -> list[np.n
 def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
     import cv2
 
-    from planning.reach import lowest_grip_z_mm
-    from vision.overlay import detection_overlay, draw_panel, draw_path_3d, draw_polyline_mm, table_point_px
+    from gripsight.planning.reach import lowest_grip_z_mm
+    from gripsight.vision.overlay import detection_overlay, draw_panel, draw_path_3d, draw_polyline_mm, table_point_px
 
     reg = analysis.registration
     out = detection_overlay(analysis.image, analysis.detection, reg.mapping, reg.camera_centre_mm, cell)
@@ -84,7 +84,7 @@ def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = 
     """
     import cv2
 
-    from planning.cell import photo_record
+    from gripsight.app.pipeline import photo_record
 
     out = output_dir(out_dir)
     photo, calibration = photo_record(photo_plan.analysis, stored)

@@ -14,11 +14,11 @@ import numpy as np
 import pytest
 import yaml
 
-from planning.arm import Arm
-from planning.cli import main
-from planning.config import parse_cell
+from gripsight.planning.arm import Arm
+from gripsight.app.cli import main
+from gripsight.app.cellfile import parse_cell
 from tests.conftest import ROOT, sample_cell_data
-from vision.photoset import read_truth
+from gripsight.app.photoset import read_truth
 
 SAMPLES = ROOT / "sample_images"
 
@@ -141,7 +141,7 @@ def test_interrupted_run_resumes_to_the_same_sequence(tmp_path, monkeypatch, dem
     _, _, full_out = demo_run
     folder = _cell_folder(tmp_path, "demo")
     out = tmp_path / "out"
-    import planning.cell as cell_module
+    import gripsight.app.pipeline as cell_module
 
     real = cell_module.plan_photo
     calls = {"n": 0}

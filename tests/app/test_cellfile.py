@@ -8,9 +8,9 @@ import copy
 import pytest
 import yaml
 
-from planning.cli import main
-from planning.config import load_cell, parse_cell, starter_cell_text
-from planning.errors import CellFileError
+from gripsight.app.cli import main
+from gripsight.app.cellfile import load_cell, parse_cell, starter_cell_text
+from gripsight.app.errors import CellFileError
 from tests.conftest import SAMPLE_CELL, sample_cell_data
 
 

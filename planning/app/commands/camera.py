@@ -7,7 +7,7 @@ from typing import Optional
 
 import typer
 
-from planning.cli import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
+from gripsight.app.commands.common import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
 
 
 @command()
@@ -33,11 +33,11 @@ def render(
     """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
     import numpy as np
 
-    from planning.config import load_cell, read_yaml
-    from planning.errors import GripsightError
-    from vision.photoset import UNKNOWN_LAB, _varied_conditions, write_photo, write_sample_set
-    from vision.render import render_scene
-    from vision.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
+    from gripsight.app.cellfile import load_cell, read_yaml
+    from gripsight.app.errors import GripsightError
+    from gripsight.app.photoset import UNKNOWN_LAB, _varied_conditions, write_photo, write_sample_set
+    from gripsight.vision.synth.render import render_scene
+    from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
 
     if fmt not in ("jpg", "png"):
         raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
@@ -52,8 +52,8 @@ def render(
     if scene is not None:
         from pydantic import ValidationError
 
-        from planning.config import _pydantic_problems
-        from planning.errors import CellFileError
+        from gripsight.app.cellfile import _pydantic_problems
+        from gripsight.app.errors import CellFileError
 
         data, _ = read_yaml(scene, "scene file")
         if isinstance(data, dict) and data.get("gripsight") == "render-truth":
@@ -95,7 +95,7 @@ def render(
 def _lens_for(cfg):
     if cfg.camera.lens != "file":
         return None
-    from vision.lens import load_opencv_lens
+    from gripsight.vision.lens import load_opencv_lens
 
     path = Path(cfg.camera.lens_file)
     if not path.is_absolute() and cfg.source_path:
@@ -120,13 +120,13 @@ def calibrate(
 
     import cv2
 
-    from planning.config import load_cell
-    from planning.fileio import write_bytes_atomic
-    from vision.calfile import calibration_record, write_calibration
-    from vision.calibration import calibrate as fit
-    from vision.markers import detect_markers
-    from vision.overlay import calibration_overlay
-    from vision.photo import read_photo
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.fileio import write_bytes_atomic
+    from gripsight.app.calfile import calibration_record, write_calibration
+    from gripsight.vision.calibration import calibrate as fit
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.overlay import calibration_overlay
+    from gripsight.vision.photo import read_photo
 
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
@@ -184,11 +184,11 @@ def check(
     """Has the camera moved since calibration? Exit 0 if ok, 3 if moved."""
     import json
 
-    from planning.config import load_cell
-    from vision.calfile import read_calibration
-    from vision.drift import check_drift
-    from vision.markers import detect_markers
-    from vision.photo import read_photo
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.calfile import read_calibration
+    from gripsight.vision.drift import check_drift
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.photo import read_photo
 
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
@@ -199,8 +199,8 @@ def check(
     if overlay is not None:
         import cv2
 
-        from planning.fileio import write_bytes_atomic
-        from vision.overlay import drift_overlay
+        from gripsight.app.fileio import write_bytes_atomic
+        from gripsight.vision.overlay import drift_overlay
 
         write_bytes_atomic(overlay, cv2.imencode(".png", drift_overlay(image, report, stored, cfg))[1].tobytes())
     if as_json:

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from planning.arm import JOINT_NAMES
-from planning.fileio import atomic_output
+from gripsight.planning.arm import JOINT_NAMES
+from gripsight.app.fileio import atomic_output
 
 __all__ = ["draw_joint_plot", "draw_path_plot"]
 

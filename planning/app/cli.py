@@ -1,0 +1,43 @@
+"""The ``gripsight`` command line: parse, load the cell, call the library, print.
+
+The commands live in :mod:`gripsight.app.commands` and register on the one typer ``app`` of
+:mod:`gripsight.app.commands.common`; this module adds them in ``--help`` order and is the entry point.
+"""
+
+from __future__ import annotations
+
+import sys
+from typing import Optional
+
+import typer
+
+from gripsight.app.commands import camera, cell, jobs  # noqa: F401 - the commands register on `app`
+from gripsight.app.commands.common import _echo_err, app
+
+__all__ = ["app", "main", "entry"]
+
+
+# ------------------------------------------------------------------ entry point
+def main(argv: Optional[list[str]] = None) -> int:
+    """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""
+    try:
+        result = app(args=argv, prog_name="gripsight", standalone_mode=False)
+    except typer.Exit as exc:
+        return exc.exit_code
+    except typer.Abort:
+        _echo_err("interrupted")
+        return 130
+    except typer.exceptions.TyperException as exc:  # usage errors: bad option, missing argument
+        show = getattr(exc, "show", None)
+        _echo_err(f"error: {exc}") if show is None else show()
+        return int(getattr(exc, "exit_code", 2))
+    return result if isinstance(result, int) else 0
+
+
+def entry() -> None:
+    """The ``gripsight`` console script."""
+    sys.exit(main())
+
+
+if __name__ == "__main__":
+    entry()
