@@ -21,7 +21,6 @@ from __future__ import annotations
 from dataclasses import dataclass, field, replace
 
 import numpy as np
-from scipy.optimize import least_squares
 
 from gripsight.vision.errors import CalibrationError
 from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
@@ -148,6 +147,8 @@ def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None, start=None):
     x0 = Hn0.ravel()[:8]
     if free_lens:
         x0 = np.append(x0, [base.lam if start is not None else 0.0] + ([0.0, 0.0] if free_centre else []))
+    from scipy.optimize import least_squares     # 0.5 s to import: only when fitting
+
     sol = least_squares(residual, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=3000)
     Hn = np.append(sol.x[:8], 1.0).reshape(3, 3)
     H = np.linalg.inv(T_mm) @ Hn @ T_px
@@ -216,6 +217,8 @@ def camera_centre_from_raised(mapping: TableMapping, raised: list[MarkerFit]) ->
     def residual(c):
         kk = c[2] / (c[2] - z)
         return (c[:2] + (P[:, :2] - c[:2]) * kk[:, None] - q).ravel()
+
+    from scipy.optimize import least_squares
 
     return least_squares(residual, c0, method="lm").x
 

@@ -3,6 +3,11 @@
 Each photo is one job (:func:`process_photo`, a plain function of plain arguments, so it runs the same
 in a local process pool or on a Dask cluster) that writes ``OUT/<photo name>/`` and returns a row.
 A photo that cannot be read or fails becomes a row with its error; the batch goes on.
+
+Every photo gets plan.json, joints.csv and a thumbnail in the report. The pictures (overlay.png,
+joints.png, path.png) cost several times the photo's pipeline, so by default (:class:`Pictures`
+``SOME``) they are drawn for the photos worth a look (a rejected part, a refused or failed photo)
+and for every ``SAMPLE_EVERY``-th photo; ``ALL`` draws them for every photo, ``NONE`` for none.
 """
 
 from __future__ import annotations
@@ -10,13 +15,23 @@ from __future__ import annotations
 import json
 import os
 from dataclasses import dataclass
+from enum import Enum
 from pathlib import Path
 
 from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
 
-__all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
+__all__ = ["BatchJob", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch", "write_batch_tables"]
 
 _CACHE: dict = {}
+SAMPLE_EVERY = 10           # with Pictures.SOME, photos 1, 11, 21, ... (name order) get pictures too
+
+
+class Pictures(str, Enum):
+    """Which photos of a batch get overlay.png, joints.png and path.png."""
+
+    ALL = "all"
+    SOME = "some"           # photos with a rejection or a refusal, and a sample
+    NONE = "none"
 
 
 @dataclass(frozen=True)
@@ -26,6 +41,8 @@ class BatchJob:
     calibration_path: str | None
     out_dir: str
     thumbnail_px: int = 240
+    pictures: Pictures = Pictures.SOME
+    index: int = 0                  # the photo's place in name order (for the sample)
 
 
 def _context(cell_path: str, calibration_path: str | None):
@@ -46,7 +63,16 @@ def _context(cell_path: str, calibration_path: str | None):
 
 
 def process_photo(job: BatchJob) -> dict:
-    """Analyse, plan and write one photo; return its row (``error`` set if it failed)."""
+    """Analyse, plan and write one photo; return its row (``error`` set if it failed). The photo's files
+    are written whole (atomic renames) but not flushed to the disk one by one: they are re-made from
+    the photo by ``--resume`` (see :func:`gripsight.app.fileio.without_fsync`)."""
+    from gripsight.app.fileio import without_fsync
+
+    with without_fsync():
+        return _process_photo(job)
+
+
+def _process_photo(job: BatchJob) -> dict:
     from gripsight.app.errors import EXPECTED_ERRORS
 
     name = Path(job.photo).name
@@ -59,7 +85,6 @@ def process_photo(job: BatchJob) -> dict:
         cell, arm, planner, stored = _context(job.cell_path, job.calibration_path)
         pp = plan_photo(job.photo, cell, stored, planner)
         out = child_folder(job.out_dir, name)
-        _, overlay = write_photo_outputs(out, pp, cell, arm, stored)
         reg = pp.analysis.registration
         row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict)
         if pp.plan is None:
@@ -75,6 +100,14 @@ def process_photo(job: BatchJob) -> dict:
                     row["rejected"][o.rejection.check] = row["rejected"].get(o.rejection.check, 0) + 1
             row["cycle_s"] = round(pp.plan.cycle_s, 3)
             row["truth"] = _truth_stats(job.photo, pp, cell)
+        pictures = _wants_pictures(job, row)
+        _, overlay = write_photo_outputs(out, pp, cell, arm, stored, pictures=pictures)
+        row["overlay"] = overlay is not None
+        if overlay is None and pp.analysis.detection is not None:
+            from gripsight.vision.overlay import detection_overlay
+
+            overlay = detection_overlay(pp.analysis.image, pp.analysis.detection, reg.mapping,
+                                        reg.camera_centre_mm, cell)
         row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
     except EXPECTED_ERRORS as exc:
         row["error"] = str(exc)
@@ -86,6 +119,16 @@ def process_photo(job: BatchJob) -> dict:
     except (OSError, ValueError):
         pass
     return row
+
+
+def _wants_pictures(job: BatchJob, row: dict) -> bool:
+    """Whether this photo's pictures are drawn (see :class:`Pictures`)."""
+    if job.pictures == Pictures.ALL:
+        return True
+    if job.pictures == Pictures.NONE:
+        return False
+    flagged = row["status"] != "ok" or bool(row["rejected"])
+    return flagged or job.index % SAMPLE_EVERY == 0
 
 
 def _sha256(path) -> str:
@@ -116,7 +159,8 @@ def _truth_stats(photo: str, pp, cell) -> dict | None:
     if not truth_file.is_file():
         return None
     try:
-        truth = yaml.safe_load(truth_file.read_text())
+        loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)     # libyaml: ten times faster
+        truth = yaml.load(truth_file.read_text(), Loader=loader)  # noqa: S506 - a safe loader
         return compare_with_truth(pp.analysis.detection.parts, truth, cell.work_area).as_dict()
     except (OSError, yaml.YAMLError, KeyError, TypeError, ValueError):
         return None
@@ -130,12 +174,16 @@ def _thumbnail(image, job: BatchJob) -> str:
 
     h, w = image.shape[:2]
     scale = job.thumbnail_px / max(w, 1)
-    small = cv2.resize(image, (job.thumbnail_px, max(1, int(h * scale))), interpolation=cv2.INTER_AREA)
+    size = (job.thumbnail_px, max(1, int(h * scale)))
+    # shrink by 4 with plain averaging first (a quarter of the pixels for INTER_AREA's exact weights)
+    if w >= 4 * job.thumbnail_px and h >= 8:
+        image = cv2.resize(image, (w // 4, h // 4), interpolation=cv2.INTER_AREA)
+    small = cv2.resize(image, size, interpolation=cv2.INTER_AREA)
     return base64.b64encode(cv2.imencode(".jpg", small, [cv2.IMWRITE_JPEG_QUALITY, 70])[1].tobytes()).decode()
 
 
 def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, scheduler: str | None = None,
-              progress=None, resume: bool = False) -> list[dict]:
+              progress=None, resume: bool = False, pictures: Pictures = Pictures.SOME) -> list[dict]:
     """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order.
     With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone."""
     from gripsight.app.run import photos_in
@@ -144,8 +192,8 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     photos = photos_in(folder)
     pool_context = _start_workers_early() if workers > 1 and not scheduler else None
     _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
-    jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
-            for p in photos]
+    jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out),
+                     pictures=Pictures(pictures), index=i) for i, p in enumerate(photos)]
     rows: dict[str, dict] = {}
     if resume:
         for job in list(jobs):
@@ -179,8 +227,9 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
 
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell
-_WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot", "gripsight.vision.parts", "gripsight.vision.markers",
-                   "matplotlib.pyplot"]
+_WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot",
+                   "gripsight.vision.parts", "gripsight.vision.markers", "gripsight.vision.drift",
+                   "gripsight.vision.overlay", "gripsight.app.truthcheck", "yaml"]
 
 
 def _start_workers_early():

@@ -75,15 +75,20 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
     return out
 
 
-def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = True):
+_PICTURES = ("overlay.png", "joints.png", "path.png")
+
+
+def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = True, pictures: bool = True,
+                        plots: bool = True):
     """Write everything for one photo under ``out_dir``; returns (the plan.json object, the overlay image
     or None).
 
+    joints.csv is written first, then plan.json; with ``pictures`` then overlay.png (unless not
+    ``overlay``), joints.png and path.png (unless not ``plots``) (:func:`write_photo_pictures`). Without ``pictures`` the
+    pictures of an earlier run in the folder are removed, so what is there always belongs together.
     A refused photo (camera moved with ``on_move: stop``, or no markers) gets a plan.json that says why
     and no joint sequence or overlay.
     """
-    import cv2
-
     from gripsight.app.pipeline import photo_record
 
     out = output_dir(out_dir)
@@ -94,12 +99,34 @@ def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = 
                 "parts": [], "picks": [], "totals": {"parts": 0, "planned": 0, "rejected": 0, "cycle_s": 0.0},
                 "warnings": [photo_plan.message]}
         write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
-        for stale in ("joints.csv", "joints.png", "path.png", "overlay.png"):
+        for stale in ("joints.csv",) + _PICTURES:
             (out / stale).unlink(missing_ok=True)
         return data, None
-    data = write_plan_outputs(out, photo_plan.plan, cell, arm, photo=photo, calibration=calibration)
+    data = write_plan_outputs(out, photo_plan.plan, cell, arm, photo=photo, calibration=calibration, plots=False)
+    if not pictures:
+        for stale in _PICTURES:
+            (out / stale).unlink(missing_ok=True)
+        return data, None
+    return data, write_photo_pictures(out, photo_plan, cell, arm, overlay=overlay, plots=plots)
+
+
+def write_photo_pictures(out_dir, photo_plan, cell, arm, overlay: bool = True, plots: bool = True):
+    """overlay.png, joints.png and path.png of a planned photo (the views of its plan); returns the
+    overlay image (None if not drawn). A refused photo has none."""
+    from gripsight.app.chart import png_bytes
+    from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
+
+    if photo_plan.plan is None:
+        return None
+    out = output_dir(out_dir)
     image = None
     if overlay:
         image = plan_overlay(photo_plan.analysis, photo_plan.plan, cell, arm)
-        write_bytes_atomic(out / "overlay.png", cv2.imencode(".png", image)[1].tobytes())
-    return data, image
+        write_bytes_atomic(out / "overlay.png", png_bytes(image))
+    if plots:
+        draw_joint_plot(photo_plan.plan, cell, arm, out / "joints.png")
+        draw_path_plot(photo_plan.plan, cell, arm, out / "path.png")
+    else:
+        for stale in _PICTURES[1:]:
+            (out / stale).unlink(missing_ok=True)
+    return image

@@ -43,6 +43,15 @@ def _bar_chart(counts: dict, width: int = 520) -> str:
             f'aria-label="reject reasons">{"".join(rows)}</svg>')
 
 
+def _pictures_note(rows: list[dict]) -> str:
+    without = sum(1 for r in rows if r.get("thumbnail") and not r.get("overlay", True))
+    if not without:
+        return "Click a thumbnail for the full overlay."
+    return (f"Click a thumbnail for the full overlay: drawn for photos with a rejected part or a refused photo, "
+            f"and for a sample of the rest; {without} photos have a thumbnail of the parts found only "
+            "(run the batch with --pictures all for every overlay).")
+
+
 def write_report(path, rows: list[dict], totals: dict, cell) -> None:
     """Write report.html beside the per-photo folders (links to ``<photo>/overlay.png`` are relative)."""
     e = html.escape
@@ -61,8 +70,14 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
     body = []
     for r in rows:
         link = f"{r['photo']}/overlay.png"
-        thumb = (f'<a href="{e(link)}"><img class="thumb" alt="overlay of {e(r["photo"])}" '
-                 f'src="data:image/jpeg;base64,{r["thumbnail"]}"></a>' if r.get("thumbnail") else "")
+        img = (f'<img class="thumb" alt="overlay of {e(r["photo"])}" src="data:image/jpeg;base64,{r["thumbnail"]}">'
+               if r.get("thumbnail") else "")
+        if img and r.get("overlay", True):
+            thumb = f'<a href="{e(link)}">{img}</a>'
+        elif img:
+            thumb = f'{img}<span class="muted">parts found; no overlay.png (see above)</span>'
+        else:
+            thumb = ""
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(r["rejected"].items()))
         status = r["status"] + (f": {r['error']}" if r["error"] else "")
         cells = [f"<td>{e(r['photo'])}</td>", f"<td>{thumb}</td>", f"<td>{e(status)}</td>"]
@@ -80,7 +95,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
 <html lang="en"><head><meta charset="utf-8"><title>gripsight batch report: {e(cell.cell)}</title>
 <style>{_STYLE}</style></head><body>
 <h1>Batch report: {e(cell.cell)}</h1>
-<p class="muted">Every photo planned on its own, arm starting at home. Click a thumbnail for the full overlay.</p>
+<p class="muted">Every photo planned on its own, arm starting at home. {e(_pictures_note(rows))}</p>
 <section id="summary"><h2>Summary</h2><div class="cards">{card_html}</div>{truth_note}</section>
 <section id="reasons"><h2>Why parts were rejected</h2>{_bar_chart(totals["rejected"])}</section>
 <section id="photos"><h2>Photos</h2><table id="photo-table"><thead><tr>{head}</tr></thead>

@@ -113,7 +113,7 @@ def plan(
     out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the pictures."),
     order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
     as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
-    plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png."),
+    plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png (overlay.png is always drawn for a photo)."),
     speed_scale: float = typer.Option(1.0, "--speed-scale", min=0.05, max=1.0,
                                       help="Move at this fraction of the cell's speeds (e.g. 0.25 for a first, careful run)."),
 ):
@@ -144,7 +144,7 @@ def plan(
 
         stored = load_or_make_calibration(cfg, calibration, say=_note)
         photo_plan = plan_photo(photo, cfg, stored, planner, order=order)
-        data, _ = write_photo_outputs(out, photo_plan, cfg, arm, stored)
+        data, _ = write_photo_outputs(out, photo_plan, cfg, arm, stored, plots=plots)
         if photo_plan.plan is None:
             raise GripsightError(photo_plan.message)
     if as_json:
@@ -253,11 +253,20 @@ def batch(
     workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Parallel worker processes."),
     scheduler: Optional[str] = typer.Option(None, "--scheduler", help="Dask scheduler address (tcp://host:port) instead of local workers."),
     resume: bool = typer.Option(False, "--resume", help="Keep the photos an interrupted batch in --out finished."),
+    pictures: str = typer.Option("some", "--pictures",
+                                 help="Which photos get overlay.png, joints.png and path.png: some (rejections, "
+                                      "refusals and every 10th photo), all, or none."),
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
-    from gripsight.app.batch import run_batch, write_batch_tables
+    from gripsight.app.batch import Pictures, run_batch, write_batch_tables
     from gripsight.app.cellfile import load_cell
+    from gripsight.app.errors import GripsightError
     from gripsight.app.run import photos_in
+
+    try:
+        chosen = Pictures(pictures)
+    except ValueError:
+        raise GripsightError(f"--pictures: expected some, all or none, got '{pictures}'") from None
 
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
@@ -268,7 +277,7 @@ def batch(
     with output_lock(output_dir(out), "batch"), _progress() as bar:
         task = bar.add_task("batch", total=n)
         rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task), resume=resume)
+                         progress=lambda row: bar.advance(task), resume=resume, pictures=chosen)
         totals = write_batch_tables(out, rows, cfg)
     _print_batch(rows, totals, out)
     if totals["errors"]:
