@@ -64,6 +64,21 @@ def test_ciede2000_and_cielab_agree_with_colour_science():
     np.testing.assert_allclose(fast, lab_from_srgb(codes / 255.0), atol=0.02)
 
 
+def test_lab_of_linear_is_opencvs_float_conversion():
+    # reference: OpenCV's own cv2.COLOR_LBGR2Lab on float32 (what the detector called before; written out
+    # in numpy to spare the 90-220 ms OpenCV takes to build its tables on the first call)
+    import cv2
+
+    from gripsight.vision.whitebalance import lab_of_linear
+
+    rng = np.random.default_rng(1)
+    lin = rng.random((3000, 3), dtype=np.float32)
+    lin[:500] *= 0.005                                   # the linear part of the curve near black
+    ref = cv2.cvtColor(lin.reshape(1, -1, 3), cv2.COLOR_LBGR2Lab).reshape(-1, 3)
+    np.testing.assert_allclose(lab_of_linear(lin), ref, atol=1e-3)
+    assert lab_of_linear(lin.reshape(30, 100, 3)).shape == (30, 100, 3)
+
+
 def _sample_scores(folder, **kwargs) -> Score:
     cell = parse_cell(sample_cell_data())
     total = Score()
