@@ -90,18 +90,25 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
 
 
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
-               progress=None, speed_scale: float = 1.0) -> RunResult:
-    """Plan every photo of ``folder`` in order, carrying the arm and the tray counts (see the module)."""
+               progress=None, speed_scale: float = 1.0, photos=None, pictures=None) -> RunResult:
+    """Plan every photo of ``folder`` in order, carrying the arm and the tray counts (see the module).
+
+    ``photos`` (an iterable of paths, e.g. a :class:`gripsight.app.live.PhotoWatcher`) replaces the
+    folder's photos in name order. ``pictures`` None draws each photo's pictures with its outputs; a
+    :class:`gripsight.app.live.PictureWriter` draws them in the background after its joint sequence
+    and the run state are written (the run waits for them before it returns); False draws none.
+    """
     from gripsight.planning.arm import Arm
     from gripsight.app.pipeline import plan_photo
-    from gripsight.app.photo_outputs import write_photo_outputs
+    from gripsight.app.photo_outputs import write_photo_outputs, write_photo_pictures
     from gripsight.planning.picks import Planner
 
     folder = Path(folder)
     out = output_dir(out)
-    photos = photos_in(folder)
-    if not photos:
-        raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
+    if photos is None:
+        photos = photos_in(folder)
+        if not photos:
+            raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
     arm = Arm.from_config(cell.arm)
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
@@ -137,7 +144,8 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 if progress is not None:
                     progress(photo, summary)
                 continue
-            data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
+            data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored,
+                                          pictures=pictures is None)     # else in the background, or none
             summary = _summary(photo.name, pp, data)
             if pp.plan is not None:
                 for pick in pp.plan.picks:
@@ -147,6 +155,8 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             state["done"].append(photo.name)
             state["summaries"].append(summary)
             write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+            if pictures and pp.plan is not None:
+                pictures.submit(write_photo_pictures, child_folder(out, photo.name), pp, cell, arm, label=photo.name)
             if progress is not None:
                 progress(photo, summary)
             full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check == "bin_full"]
@@ -157,6 +167,9 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 break
     except KeyboardInterrupt:
         result.interrupted = True
+    finally:
+        if pictures:
+            pictures.close()
     home_csv = None
     if not result.interrupted and not result.stopped:
         home = planner.plan([], start_joints_rad=np.radians(state["joints_deg"]), end_at_home=True, t0_s=state["t_s"])

@@ -194,6 +194,13 @@ def run(
     order: str = typer.Option("nearest", "--order", help="nearest or detected."),
     speed_scale: float = typer.Option(1.0, "--speed-scale", min=0.05, max=1.0,
                                       help="Move at this fraction of the cell's speeds (a first, careful run)."),
+    watch: bool = typer.Option(False, "--watch", help="Live cell: keep watching the folder and take each photo as "
+                                                      "soon as it is completely written, until Ctrl-C."),
+    idle_stop: Optional[float] = typer.Option(None, "--idle-stop", min=0.1, metavar="SECONDS",
+                                              help="With --watch: end the run (arm home) when no photo came for this long."),
+    pictures: bool = typer.Option(True, "--pictures/--no-pictures",
+                                  help="Draw each photo's overlay.png, joints.png and path.png (in the background, "
+                                       "after its joints.csv)."),
 ):
     """The sorting cell: plan photo after photo, the arm carried from one to the next; one run.csv."""
     from rich.console import Console
@@ -203,15 +210,35 @@ def run(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.run import photos_in, run_folder
 
+    from gripsight.app.errors import GripsightError
+    from gripsight.app.live import PhotoWatcher, PictureWriter
+    from gripsight.app.run import PHOTO_SUFFIXES
+
+    if idle_stop is not None and not watch:
+        raise GripsightError("--idle-stop: only with --watch")
     cfg = load_cell(_find_cell(cell, folder))
     stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
+    source = None
+    if watch:
+        import signal
+
+        from gripsight.app.live import warm_up
+
+        def _stop(signum, frame):                   # a service manager's stop: like Ctrl-C
+            raise KeyboardInterrupt
+
+        signal.signal(signal.SIGTERM, _stop)
+        warm_up()
+        source = PhotoWatcher(folder, PHOTO_SUFFIXES, idle_stop_s=idle_stop)
+        how = "file events" if source.use_watchdog else "polling"
+        _note(f"watching {folder} for photos ({how}); Ctrl-C stops, and --resume goes on from there")
 
     def report(photo, summary):
         picked = sum(summary["picked"].values())
         rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
-        line = f"[{len(result_rows) + 1}/{total}] {photo.name}: "
+        line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}: "
         line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
                  else f"{summary['status']}: {summary['message']}")
         if summary["registration"] == "refit":
@@ -223,9 +250,14 @@ def run(
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
 
+    writer = PictureWriter() if pictures else False
     with output_lock(output_dir(out), "run"):
         result = run_folder(folder, cfg, stored, out, resume=resume, emptied=tuple(emptied), order=order,
-                            progress=report, speed_scale=speed_scale)
+                            progress=report, speed_scale=speed_scale, photos=source, pictures=writer)
+    for problem in writer.errors if writer else []:
+        console.print(f"warning: {problem}")
+    if source is not None and source.out_of_order:
+        console.print(f"note: taken after photos with later names (they came late): {', '.join(source.out_of_order)}")
     table = Table(title=f"run of {folder}", title_justify="left")
     for col in ("photos", "picked", "by class", "rejected", "by reason", "cycle s"):
         table.add_column(col)
@@ -235,8 +267,10 @@ def run(
                   ", ".join(f"{k} {v}" for k, v in sorted(result.rejected.items())) or "-", f"{result.cycle_s:.1f}")
     console.print(table)
     if result.interrupted:
-        console.print(f"interrupted after {len(result.photos)} of {total} photos; every finished photo's outputs "
-                      f"are complete; resume with: gripsight run {folder} --out {out} --resume")
+        of = "" if watch else f" of {total}"
+        again = " --watch" if watch else ""
+        console.print(f"interrupted after {len(result.photos)}{of} photos; every finished photo's outputs "
+                      f"are complete; resume with: gripsight run {folder} --out {out} --resume{again}")
         raise typer.Exit(130)
     if result.stopped:
         console.print(f"stopped: {result.stopped}")

@@ -1,0 +1,199 @@
+"""The live cell: photos taken once completely written, in name order; a live run writes the same joint
+sequence as a run over the saved photos; Ctrl-C leaves a state --resume continues; joints.csv comes
+before any picture."""
+
+from __future__ import annotations
+
+import json
+import queue
+import shutil
+import threading
+import time
+from pathlib import Path
+
+import pytest
+import yaml
+
+from gripsight.app.cellfile import load_cell
+from gripsight.app.live import PhotoWatcher, PictureWriter, watchdog_available
+from gripsight.app.pipeline import load_or_make_calibration
+from gripsight.app.run import PHOTO_SUFFIXES, run_folder
+from tests.conftest import ROOT, sample_cell_data
+
+SAMPLES = ROOT / "sample_images"
+MODES = [pytest.param(True, id="file-events"), pytest.param(False, id="polling")]
+
+
+def _collect(watcher: PhotoWatcher) -> tuple[queue.Queue, threading.Thread]:
+    got: queue.Queue = queue.Queue()
+
+    def work():
+        for path in watcher:
+            got.put((path.name, path.stat().st_size, time.monotonic()))
+
+    thread = threading.Thread(target=work, daemon=True)
+    thread.start()
+    return got, thread
+
+
+@pytest.mark.parametrize("events", MODES)
+def test_a_photo_is_taken_once_closed_and_in_name_order(tmp_path, events):
+    if events and not watchdog_available():
+        pytest.skip("watchdog is not installed")
+    raw = (SAMPLES / "demo" / "demo_01.jpg").read_bytes()
+    (tmp_path / "b_there_before.jpg").write_bytes(raw)
+    stop = threading.Event()
+    # polling cannot see a close: a photo counts as written once unchanged for settle_s (longer than the
+    # writer's pause below); file events see the close, so settle_s only serves the photo already there
+    watcher = PhotoWatcher(tmp_path, PHOTO_SUFFIXES, settle_s=0.3 if events else 1.5, poll_s=0.02, stop=stop,
+                           use_watchdog=events)
+    got, thread = _collect(watcher)
+    try:
+        assert got.get(timeout=10)[:2] == ("b_there_before.jpg", len(raw))      # already there: taken once settled
+        (tmp_path / "notes.txt").write_text("not a photo")
+        (tmp_path / ".hidden.jpg").write_bytes(raw)
+        # two photos written at once: c finishes first but a (earlier name) is still being written
+        with open(tmp_path / "a_late.jpg", "wb") as a_file:
+            a_file.write(raw[:1000])
+            a_file.flush()
+            (tmp_path / "c.jpg").write_bytes(raw)
+            with pytest.raises(queue.Empty):
+                got.get(timeout=0.8)                   # neither: a is open, and c waits behind it
+            a_file.write(raw[1000:])
+        t_closed = time.monotonic()
+        first, second = got.get(timeout=10), got.get(timeout=10)
+        assert (first[0], first[1]) == ("a_late.jpg", len(raw)) and second[0] == "c.jpg"
+        if events:
+            assert first[2] - t_closed < 0.25            # the close itself, not a settling time (0.3 s)
+        (tmp_path / "c.jpg").write_bytes(raw)           # written again: each name is taken once
+        with pytest.raises(queue.Empty):
+            got.get(timeout=0.8)
+        assert watcher.out_of_order == ["a_late.jpg"]   # came after b_there_before.jpg had been taken
+    finally:
+        stop.set()
+        thread.join(timeout=5)
+    assert not thread.is_alive()
+
+
+def test_a_photo_renamed_into_the_folder_is_taken_at_once(tmp_path):
+    if not watchdog_available():
+        pytest.skip("watchdog is not installed")
+    stop = threading.Event()
+    watcher = PhotoWatcher(tmp_path, PHOTO_SUFFIXES, settle_s=5.0, poll_s=0.02, stop=stop)
+    got, thread = _collect(watcher)
+    try:
+        time.sleep(0.3)
+        (tmp_path / ".part").write_bytes((SAMPLES / "demo" / "demo_02.jpg").read_bytes())
+        (tmp_path / ".part").rename(tmp_path / "demo_02.jpg")
+        assert got.get(timeout=2)[0] == "demo_02.jpg"     # well before settle_s
+    finally:
+        stop.set()
+        thread.join(timeout=5)
+
+
+def _live_cell(tmp_path) -> tuple:
+    (tmp_path / "cell.yaml").write_text(yaml.safe_dump(sample_cell_data(), sort_keys=False))
+    shutil.copy(SAMPLES / "calibration.jpg", tmp_path / "calibration.jpg")
+    cell = load_cell(tmp_path / "cell.yaml")
+    return cell, load_or_make_calibration(cell, None)
+
+
+def _body(path: Path) -> list[str]:
+    return [line for line in path.read_text().splitlines() if not line.startswith("#")]
+
+
+class _Camera(threading.Thread):
+    """Copies photos into a folder one by one, each written in two halves."""
+
+    def __init__(self, photos, folder: Path, gap_s: float = 0.05):
+        super().__init__(daemon=True)
+        self.photos, self.folder, self.gap_s = photos, folder, gap_s
+
+    def run(self):
+        for photo in self.photos:
+            raw = photo.read_bytes()
+            with open(self.folder / photo.name, "wb") as fh:
+                fh.write(raw[:20000])
+                fh.flush()
+                time.sleep(self.gap_s)
+                fh.write(raw[20000:])
+            time.sleep(self.gap_s)
+
+
+@pytest.mark.slow
+def test_a_live_run_writes_the_sequence_a_run_over_saved_photos_writes(tmp_path, monkeypatch):
+    cell, stored = _live_cell(tmp_path)
+    photos = sorted((SAMPLES / "demo").glob("*.jpg"))[:5]
+    saved = tmp_path / "saved"
+    saved.mkdir()
+    for p in photos:
+        shutil.copy(p, saved / p.name)
+    ref = run_folder(saved, cell, stored, tmp_path / "ref")
+
+    import gripsight.app.photo_outputs as outputs
+
+    real = outputs.write_photo_pictures
+    order_seen = []
+
+    def spy(out_dir, pp, *args, **kwargs):            # joints.csv and the run state come first
+        state = json.loads((out_dir.parent / "run_state.json").read_text())
+        order_seen.append(((out_dir / "joints.csv").is_file(), out_dir.name in state["done"]))
+        return real(out_dir, pp, *args, **kwargs)
+
+    monkeypatch.setattr(outputs, "write_photo_pictures", spy)
+    cam = tmp_path / "cam"
+    cam.mkdir()
+    camera = _Camera(photos, cam)
+    watcher = PhotoWatcher(cam, PHOTO_SUFFIXES, poll_s=0.02, idle_stop_s=1.5)
+    camera.start()
+    live = run_folder(cam, cell, stored, tmp_path / "live", photos=watcher, pictures=PictureWriter())
+    camera.join()
+    assert [s["photo"] for s in live.photos] == [p.name for p in photos]
+    assert live.picked == ref.picked and live.rejected == ref.rejected and live.cycle_s == pytest.approx(ref.cycle_s)
+    assert _body(tmp_path / "live" / "run.csv") == _body(tmp_path / "ref" / "run.csv")
+    assert order_seen == [(True, True)] * sum(1 for s in live.photos if s["status"] == "planned")
+    for p in photos:                                   # every picture drawn by the end of the run
+        assert sorted(f.name for f in (tmp_path / "live" / p.name).glob("*.png")) == [
+            "joints.png", "overlay.png", "path.png"]
+
+
+class _InterruptAfter:
+    """Photos from a watcher, then Ctrl-C after ``n`` of them."""
+
+    def __init__(self, watcher, n):
+        self.watcher, self.n = watcher, n
+
+    def __iter__(self):
+        for i, photo in enumerate(self.watcher):
+            if i == self.n:
+                self.watcher.stop.set()
+                raise KeyboardInterrupt
+            yield photo
+
+
+@pytest.mark.slow
+def test_ctrl_c_in_a_live_run_leaves_a_state_resume_continues(tmp_path):
+    cell, stored = _live_cell(tmp_path)
+    photos = sorted((SAMPLES / "demo").glob("*.jpg"))[:4]
+    saved = tmp_path / "saved"
+    saved.mkdir()
+    for p in photos:
+        shutil.copy(p, saved / p.name)
+    run_folder(saved, cell, stored, tmp_path / "ref")
+    cam = tmp_path / "cam"
+    cam.mkdir()
+    camera = _Camera(photos[:3], cam)
+    camera.start()
+    first = run_folder(cam, cell, stored, tmp_path / "live", pictures=PictureWriter(),
+                       photos=_InterruptAfter(PhotoWatcher(cam, PHOTO_SUFFIXES, poll_s=0.02), 2))
+    camera.join()
+    assert first.interrupted and [s["photo"] for s in first.photos] == [p.name for p in photos[:2]]
+    state = json.loads((tmp_path / "live" / "run_state.json").read_text())
+    assert state["done"] == [p.name for p in photos[:2]]
+    camera = _Camera(photos[3:], cam)                  # the camera goes on while the cell is down
+    camera.start()
+    camera.join()
+    again = run_folder(cam, cell, stored, tmp_path / "live", resume=True, pictures=PictureWriter(),
+                       photos=PhotoWatcher(cam, PHOTO_SUFFIXES, poll_s=0.02, settle_s=0.2, idle_stop_s=1.0))
+    assert not again.interrupted and [s["photo"] for s in again.photos] == [p.name for p in photos]
+    assert _body(tmp_path / "live" / "run.csv") == _body(tmp_path / "ref" / "run.csv")
