@@ -28,7 +28,7 @@ import numpy as np
 
 from gripsight.vision.camera import Camera
 from gripsight.vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markerdict import aruco_dictionary
 from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.synth.scene import ResolvedPart, Scene, make_camera, resolve_parts
 
