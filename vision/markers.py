@@ -16,11 +16,14 @@ import numpy as np
 
 from gripsight.vision.colour import linear_from_srgb
 from gripsight.vision.markerdict import aruco_dictionary, cells_per_side
-from gripsight.vision.markeredges import refine_corners, sample_image
+from gripsight.vision.markercheck import marker_evidence
+from gripsight.vision.markeredges import refine_corners
 
 __all__ = ["MarkerDetection", "detect_markers", "aruco_dictionary", "linearised_gray"]   # aruco_dictionary: from markerdict
 
 _LIN_LUT = (linear_from_srgb(np.arange(256) / 255.0) * 255.0).astype(np.float32)
+
+
 @dataclass(frozen=True)
 class MarkerDetection:
     """One marker seen in a photo: its id and corners (4, 2) in pixels (OpenCV's order)."""
@@ -45,44 +48,6 @@ def _detector(dictionary_name: str):
     # sensor noise makes square outlines ragged; OpenCV's default 0.03 then misses clear markers
     params.polygonalApproxAccuracyRate = 0.05
     return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), params)
-
-
-@functools.lru_cache(maxsize=256)
-def _cells(dictionary_name: str, marker_id: int) -> np.ndarray:
-    """The marker's cells, border included ((n + 2) x (n + 2), True where ink), in its image's orientation."""
-    d = aruco_dictionary(dictionary_name)
-    return d.generateImageMarker(marker_id, d.markerSize + 2) < 128
-
-
-@functools.lru_cache(maxsize=8)
-def _cell_grid(n: int) -> tuple[np.ndarray, np.ndarray]:
-    """Where a marker of n x n cells (border included) is read, in cell units: every cell's centre, then a
-    ring just outside (float32, (n * n + 4 n, 2)); and which cells are border cells."""
-    centres = np.arange(n) + 0.5
-    gx, gy = np.meshgrid(centres, centres)
-    ring = np.concatenate([np.column_stack([centres, np.full(n, -0.5)]), np.column_stack([centres, np.full(n, n + 0.5)]),
-                           np.column_stack([np.full(n, -0.5), centres]), np.column_stack([np.full(n, n + 0.5), centres])])
-    border = np.zeros((n, n), bool)
-    border[[0, -1], :] = border[:, [0, -1]] = True
-    return np.concatenate([np.column_stack([gx.ravel(), gy.ravel()]), ring]).astype(np.float32), border.ravel()
-
-
-def _cells_match(lin: np.ndarray, corners: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> bool:
-    """Whether every marker's cells, read at their centres through its corners, are its id's pattern
-    (one cell in error allowed): the ink level from the border cells, the paper level from a ring just
-    outside, the threshold half way."""
-    n = aruco_dictionary(dictionary_name).markerSize + 2
-    local, border = _cell_grid(n)
-    square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
-    offsets = np.zeros((len(corners), 2), np.float32) if offsets_px is None else np.asarray(offsets_px, np.float32)
-    pts = np.concatenate([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0] + o
-                          for c, o in zip(corners, offsets)])
-    values = sample_image(lin, pts[:, 0], pts[:, 1]).reshape(len(corners), -1)
-    cells = values[:, : n * n]
-    threshold = 0.5 * (np.median(cells[:, border], axis=1) + np.median(values[:, n * n:], axis=1))
-    ink = cells < threshold[:, None]
-    expected = np.array([_cells(dictionary_name, int(i)).ravel() for i in ids])
-    return bool(((ink != expected).sum(axis=1) <= 1).all())
 
 
 _ATLAS_HEIGHT = 8192          # patches are stacked in columns at most this tall (remap takes < 32767)
@@ -127,7 +92,7 @@ def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection]
     if good.all() and np.abs(refined - rough).max() > 0.25:
         result = refine_corners(lin, refined, n, offsets)   # the camera shifted a little: again, from closer
         refined, good = result.corners_px, result.refined
-    if not good.all() or not _cells_match(lin, refined, ids, dictionary_name, offsets):
+    if not good.all() or not marker_evidence(lin, refined, ids, dictionary_name, offsets).accepted.all():
         return None
     return [MarkerDetection(int(i), refined[k], True) for k, i in enumerate(ids)]
 
@@ -156,8 +121,44 @@ def _detect_in_windows(gray, detector, expected: dict):
     return ids, corners
 
 
-def detect_markers(image, dictionary_name: str, expected: dict | None = None) -> list[MarkerDetection]:
-    """Markers in an 8-bit BGR or grey photo, sorted by id; duplicates are all returned.
+def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict | None) -> list[MarkerDetection]:
+    """Where an id was decoded more than once, keep the copy nearest its expected place (a calibrated
+    camera), else the one with clearly the best evidence; copies that tie are all kept (calibration sets
+    a duplicated id aside)."""
+    out = []
+    for marker_id in sorted({d.id for d in found}):
+        copies = [k for k, d in enumerate(found) if d.id == marker_id]
+        if len(copies) > 1 and expected and marker_id in expected:
+            where = np.asarray(expected[marker_id], float).reshape(4, 2).mean(axis=0)
+            copies = [min(copies, key=lambda k: np.linalg.norm(found[k].corners_px.mean(axis=0) - where))]
+        elif len(copies) > 1:
+            best = min(score[k] for k in copies)
+            copies = [k for k in copies if score[k] == best]
+        out.extend(found[k] for k in copies)
+    return out
+
+
+def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
+    """Whether each candidate's side is within a quarter of the side the calibration predicts for its id
+    (True where nothing is predicted)."""
+    side = np.linalg.norm(corners - np.roll(corners, -1, axis=1), axis=-1).mean(axis=1)
+    ok = np.ones(len(corners), bool)
+    for k, marker_id in enumerate(ids):
+        if expected and int(marker_id) in expected:
+            c = np.asarray(expected[int(marker_id)], float).reshape(4, 2)
+            predicted = np.linalg.norm(c - np.roll(c, -1, axis=0), axis=-1).mean()
+            ok[k] = 0.75 < side[k] / predicted < 1.33
+    return ok
+
+
+def detect_markers(image, dictionary_name: str, expected: dict | None = None,
+                   layout_ids=None) -> list[MarkerDetection]:
+    """Markers in an 8-bit BGR or grey photo, sorted by id.
+
+    OpenCV's candidates are kept only with the evidence of a printed marker
+    (:func:`gripsight.vision.markercheck.marker_evidence`: cells read back with a margin, an ink border,
+    a paper quiet zone), an id in ``layout_ids`` when given, the size a calibration predicts when
+    ``expected`` is given, and one copy per id where one copy is clearly the marker.
 
     Parameters
     ----------
@@ -168,6 +169,8 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None) ->
         Where the markers were at calibration. They are first refined from the edges right there and
         checked by their cells (a camera that has not moved); failing that, looked for in small windows
         there; if any is still missing, the whole photo is searched.
+    layout_ids : collection of int, optional
+        The ids the cell's layout holds; others are not returned.
     """
     if expected:
         tracked = _track(image, dictionary_name, expected)
@@ -183,8 +186,14 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None) ->
         corners, ids, _ = detector.detectMarkers(gray)
     if ids is None or len(ids) == 0:
         return []
+    ids = np.ravel(ids)
     rough = np.array([np.asarray(c).reshape(4, 2) for c in corners], dtype=float)
+    if layout_ids is not None:
+        keep = np.isin(ids, np.fromiter(layout_ids, int))
+        ids, rough = ids[keep], rough[keep]
     result = refine_corners(lin, rough, cells_per_side(dictionary_name))
-    refined, good = result.corners_px, result.refined
-    found = [MarkerDetection(int(i), refined[k], bool(good[k])) for k, i in enumerate(np.ravel(ids))]
-    return sorted(found, key=lambda d: d.id)
+    evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name)
+    keep = evidence.accepted & _size_fits(result.corners_px, ids, expected)
+    found = [MarkerDetection(int(ids[k]), result.corners_px[k], bool(result.refined[k])) for k in np.flatnonzero(keep)]
+    score = [(int(evidence.undecided_cells[k]), -float(evidence.ring_fraction[k])) for k in np.flatnonzero(keep)]
+    return _one_per_id(found, score, expected)
