@@ -373,7 +373,7 @@ def _truth(cell, scene: Scene, cam: Camera, parts: list[ResolvedPart]) -> dict:
             "scene": _record(scene)}
 
 
-_LATER_OPTIONS = ("surface", "blur_px", "spot_radius_mm", "spot_centre_mm")
+_LATER_OPTIONS = ("surface", "blur_px")
 
 
 def _record(model) -> dict:
