@@ -22,10 +22,10 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
+from gripsight.vision.markerdict import DICTIONARY_NAMES, dictionary_size
 from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
-    "ARUCO_DICTIONARY_SIZES",
     "Cell",
     "ArmConfig",
     "JointConfig",
@@ -41,20 +41,8 @@ NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
 Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
 
-# Published ArUco / AprilTag dictionaries and how many ids each holds (OpenCV's predefined set).
-ARUCO_DICTIONARY_SIZES = {
-    "aruco_4x4_50": 50, "aruco_4x4_100": 100, "aruco_4x4_250": 250, "aruco_4x4_1000": 1000,
-    "aruco_5x5_50": 50, "aruco_5x5_100": 100, "aruco_5x5_250": 250, "aruco_5x5_1000": 1000,
-    "aruco_6x6_50": 50, "aruco_6x6_100": 100, "aruco_6x6_250": 250, "aruco_6x6_1000": 1000,
-    "aruco_original": 1024, "apriltag_16h5": 30, "apriltag_25h9": 35, "apriltag_36h10": 2320,
-    "apriltag_36h11": 587,
-}
-DictionaryName = Literal[
-    "aruco_4x4_50", "aruco_4x4_100", "aruco_4x4_250", "aruco_4x4_1000",
-    "aruco_5x5_50", "aruco_5x5_100", "aruco_5x5_250", "aruco_5x5_1000",
-    "aruco_6x6_50", "aruco_6x6_100", "aruco_6x6_250", "aruco_6x6_1000",
-    "aruco_original", "apriltag_16h5", "apriltag_25h9", "apriltag_36h10", "apriltag_36h11",
-]
+# Every dictionary OpenCV predefines, by our name (the vision library owns the list).
+DictionaryName = Literal[DICTIONARY_NAMES]
 
 
 class _Model(BaseModel):
@@ -289,7 +277,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if joint.min_deg < joint.max_deg and not joint.min_deg <= value <= joint.max_deg:
             out.append(Problem(f"motion.home_deg.{name}", f"{value:g} is outside the joint limits [{joint.min_deg:g}, {joint.max_deg:g}]"))
 
-    size = ARUCO_DICTIONARY_SIZES[cell.markers.dictionary]
+    size = dictionary_size(cell.markers.dictionary)
     layout = cell.markers.layout
     for marker_id in layout:
         if marker_id >= size:
