@@ -133,6 +133,7 @@ class GripperConfig(_Model):
 
 class ArmConfig(_Model):
     base_height_mm: Number
+    base_xy_mm: Point2 = [0.0, 0.0]   # where the base axis stands in the markers' frame (written by arm-fit)
     shoulder_offset_mm: Number = 0.0
     upper_arm_mm: PositiveMm
     forearm_mm: PositiveMm
