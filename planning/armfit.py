@@ -43,7 +43,7 @@ PARAMETER_NAMES = ("base_offset_deg", "base_gain_pct", "shoulder_offset_deg", "s
                    "elbow_offset_deg", "elbow_gain_pct", "base_x_mm", "base_y_mm", "upper_arm_mm", "forearm_mm")
 _UNITS = ("deg", "%", "deg", "%", "deg", "%", "mm", "mm", "mm", "mm")
 # how well each parameter must be determined (1 sigma) at the assumed detector noise, or the fit refuses
-_SIGMA_LIMIT = np.array([0.3, 0.6, 0.3, 0.6, 0.3, 0.6, 1.0, 1.0, 1.0, 1.0])
+_SIGMA_LIMIT = np.array([0.5, 1.0, 0.5, 1.0, 0.5, 1.0, 2.0, 2.0, 2.0, 2.0])
 ASSUMED_NOISE_PX = 0.3        # marker-centre noise used to judge a set of stops before any photo
 _MIN_HEIGHT_SPREAD_MM = 40.0
 
