@@ -36,16 +36,34 @@ from gripsight.planning.errors import PlanningError
 from gripsight.planning.servo import ServoMap
 
 __all__ = ["ArmErrors", "ArmFit", "ArmFitRefused", "MarkerMount", "ParameterEstimate", "PixelModel",
-           "StopObservation", "PARAMETER_NAMES", "fit_arm", "marker_points_mm", "parameter_sigmas",
+           "StopObservation", "PARAMETER_NAMES", "fit_arm", "marker_points_mm", "parameter_names", "parameter_sigmas",
            "tool_errors_mm", "tool_sigma_mm", "grid_in_polygon"]
 
-PARAMETER_NAMES = ("base_offset_deg", "base_gain_pct", "shoulder_offset_deg", "shoulder_gain_pct",
-                   "elbow_offset_deg", "elbow_gain_pct", "base_x_mm", "base_y_mm", "upper_arm_mm", "forearm_mm")
-_UNITS = ("deg", "%", "deg", "%", "deg", "%", "mm", "mm", "mm", "mm")
+_SERVO_BASE = ("base_offset_deg", "base_gain_pct", "shoulder_offset_deg", "shoulder_gain_pct",
+               "elbow_offset_deg", "elbow_gain_pct", "base_x_mm", "base_y_mm")
+_LENGTHS = ("upper_arm_mm", "forearm_mm")
+_CAMERA = ("camera_x_mm", "camera_y_mm", "camera_z_mm")
+PARAMETER_NAMES = _SERVO_BASE + _LENGTHS + _CAMERA
 # how well each parameter must be determined (1 sigma) at the assumed detector noise, or the fit refuses
-_SIGMA_LIMIT = np.array([0.5, 1.0, 0.5, 1.0, 0.5, 1.0, 2.0, 2.0, 2.0, 2.0])
-ASSUMED_NOISE_PX = 0.3        # marker-centre noise used to judge a set of stops before any photo
+_SIGMA_LIMITS = {"deg": 0.5, "%": 1.0, "mm": 2.0}
+_CAMERA_SIGMA_LIMIT_MM = 10.0
+# marker-centre noise used to judge a set of stops before any photo: on our renders the centre from four
+# edge-refined corners is within 0.03-0.06 px; 0.1 px leaves room for real photos (a judgement)
+ASSUMED_NOISE_PX = 0.1
 _MIN_HEIGHT_SPREAD_MM = 40.0
+
+
+def _unit(name: str) -> str:
+    return {"deg": "deg", "pct": "%"}.get(name.rsplit("_", 1)[1], "mm")
+
+
+def parameter_names(with_lengths: bool, with_camera: bool = False) -> list[str]:
+    """The fitted parameters in order: servos and base, then link lengths and camera centre if fitted."""
+    return list(_SERVO_BASE) + (list(_LENGTHS) if with_lengths else []) + (list(_CAMERA) if with_camera else [])
+
+
+def _sigma_limit(name: str) -> float:
+    return _CAMERA_SIGMA_LIMIT_MM if name.startswith("camera") else _SIGMA_LIMITS[_unit(name)]
 
 
 class ArmFitRefused(PlanningError):
@@ -65,10 +83,40 @@ class MarkerMount:
 @dataclass(frozen=True)
 class PixelModel:
     """How table points are seen: ``project(xyz_mm (N, 3)) -> uv_px (N, 2)`` and its inverse at known
-    heights ``back_project(uv_px (N, 2), z_mm (N,)) -> xy_mm (N, 2)``."""
+    heights ``back_project(uv_px (N, 2), z_mm (N,)) -> xy_mm (N, 2)``.
+
+    Build it with :meth:`raised` from a table mapping and a camera centre (then the fit can refine the
+    centre), or give any projection."""
 
     project: Callable[[np.ndarray], np.ndarray]
     back_project: Callable[[np.ndarray, np.ndarray], np.ndarray] | None = None
+    pixel_from_table: Callable[[np.ndarray], np.ndarray] | None = None
+    camera_centre_mm: tuple[float, float, float] | None = None
+
+    @classmethod
+    def raised(cls, pixel_from_table, table_from_pixel, camera_centre_mm) -> "PixelModel":
+        """The raised-point model: P at height z is seen at table point ``q = C + (P - C) C_z / (C_z - z)``,
+        then ``pixel_from_table(q)``; back, ``P_xy = C + (q - C) (C_z - z) / C_z``."""
+        C = tuple(float(v) for v in camera_centre_mm)
+
+        def back_project(uv_px, z_mm):
+            q = table_from_pixel(np.asarray(uv_px, float).reshape(-1, 2))
+            k = C[2] / (C[2] - np.asarray(z_mm, float))
+            return np.asarray(C[:2]) + (q - np.asarray(C[:2])) / k[:, None]
+
+        return cls(_raised_projection(pixel_from_table, C), None if table_from_pixel is None else back_project,
+                   pixel_from_table, C)
+
+
+def _raised_projection(pixel_from_table, centre_mm):
+    C = np.asarray(centre_mm, float)
+
+    def project(xyz_mm):
+        p = np.asarray(xyz_mm, float).reshape(-1, 3)
+        k = C[2] / (C[2] - p[:, 2])
+        return pixel_from_table(C[:2] + (p[:, :2] - C[:2]) * k[:, None])
+
+    return project
 
 
 @dataclass(frozen=True)
@@ -91,19 +139,28 @@ class ArmErrors:
     base_xy_mm: tuple[float, float] = (0.0, 0.0)
     upper_arm_mm: float | None = None
     forearm_mm: float | None = None
+    camera_centre_mm: tuple[float, float, float] | None = None     # refined by the fit (None: not fitted)
 
-    def vector(self, arm: Arm, with_lengths: bool) -> np.ndarray:
+    def vector(self, arm: Arm, with_lengths: bool, camera_centre_mm=None) -> np.ndarray:
+        """The parameters in :func:`parameter_names` order (the camera centre appended if given here
+        or held)."""
         v = [self.offset_deg[0], self.gain_pct[0], self.offset_deg[1], self.gain_pct[1], self.offset_deg[2],
              self.gain_pct[2], *self.base_xy_mm]
         if with_lengths:
             v += [self.upper_arm_mm or arm.upper_arm_mm, self.forearm_mm or arm.forearm_mm]
+        centre = self.camera_centre_mm if self.camera_centre_mm is not None else camera_centre_mm
+        if centre is not None:
+            v += list(centre)
         return np.array(v, float)
 
     @classmethod
-    def from_vector(cls, p) -> "ArmErrors":
+    def from_vector(cls, p, with_lengths: bool | None = None, with_camera: bool = False) -> "ArmErrors":
         p = [float(v) for v in p]
-        lengths = (p[8], p[9]) if len(p) > 8 else (None, None)
-        return cls((p[0], p[2], p[4]), (p[1], p[3], p[5]), (p[6], p[7]), *lengths)
+        if with_lengths is None:
+            with_lengths = len(p) - (3 if with_camera else 0) > 8
+        lengths = (p[8], p[9]) if with_lengths else (None, None)
+        camera = tuple(p[-3:]) if with_camera else None
+        return cls((p[0], p[2], p[4]), (p[1], p[3], p[5]), (p[6], p[7]), *lengths, camera)
 
     def true_deg(self, commanded_deg) -> np.ndarray:
         """True joint angles (N, 3) deg for commanded ones (N, 3) deg."""
@@ -152,10 +209,16 @@ def marker_points_mm(nominal: Arm, errors: ArmErrors, commanded_deg, mount: Mark
     return tool + np.column_stack([radial * c - left * s, radial * s + left * c, z])
 
 
-def _residual_fn(nominal, mount, commanded, uv, project, with_lengths):
+def _residual_fn(nominal, mount, commanded, uv, project, with_lengths, pixel_from_table=None):
+    """Pixel residuals (2N,) as a function of the parameter vector; with ``pixel_from_table`` the last
+    three parameters are the camera centre of the raised-point model."""
+    with_camera = pixel_from_table is not None
+
     def residual(p):
-        pts = marker_points_mm(nominal, ArmErrors.from_vector(p), commanded, mount)
-        return (project(pts) - uv).ravel()
+        e = ArmErrors.from_vector(p, with_lengths, with_camera)
+        pts = marker_points_mm(nominal, e, commanded, mount)
+        proj = _raised_projection(pixel_from_table, e.camera_centre_mm) if with_camera else project
+        return (proj(pts) - uv).ravel()
     return residual
 
 
@@ -220,6 +283,7 @@ class ArmFit:
     residual_after_mm: np.ndarray
     rms_px: float
     with_lengths: bool
+    with_camera: bool = False
 
     def fitted_arm(self, nominal: Arm) -> Arm:
         return self.errors.fitted_arm(nominal)
@@ -243,7 +307,7 @@ def _refuse_if_undetermined(obs, c, z_mm, n_params, allow_missing):
 
 def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMount, pixels: PixelModel,
             fit_lengths: bool = False, allow_missing: bool = False,
-            noise_px: float = ASSUMED_NOISE_PX) -> ArmFit:
+            noise_px: float = ASSUMED_NOISE_PX, fit_camera_centre: bool = False) -> ArmFit:
     """Fit servo offsets and gains, base position (and optionally link lengths) to marker sightings.
 
     Parameters
@@ -261,6 +325,10 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
         Fit with the photos where the marker was found instead of refusing.
     noise_px : float
         Pixel noise assumed when judging whether the stops determine every parameter.
+    fit_camera_centre : bool
+        Also refine the camera centre of a :meth:`PixelModel.raised` model: the marker seen at many
+        heights measures it far better than a raised table marker does (an error of a few mm in the
+        centre's height biases the servo fit by tenths of a degree).
 
     Raises
     ------
@@ -268,20 +336,25 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
         Marker missing in some photos (named), too few photos, all at one height, or a parameter the
         stops cannot determine (named).
     """
-    n_params = 10 if fit_lengths else 8
+    if fit_camera_centre and pixels.camera_centre_mm is None:
+        raise ValueError("fit_camera_centre needs a PixelModel.raised model")
+    names = parameter_names(fit_lengths, fit_camera_centre)
+    n_params = len(names)
     seen = [o for o in observations if o.uv_px is not None]
     c = np.array([o.commanded_deg for o in seen], float).reshape(-1, 3)
     uv = np.array([o.uv_px for o in seen], float).reshape(-1, 2)
     start = ArmErrors()
     z_mm = marker_points_mm(nominal, start, c, mount)[:, 2] if len(c) else np.zeros(0)
-    _refuse_if_undetermined(observations, c, z_mm, n_params, allow_missing)
-    p0 = start.vector(nominal, fit_lengths)
-    fn = _residual_fn(nominal, mount, c, uv, pixels.project, fit_lengths)
-    model = _residual_fn(nominal, mount, c, 0.0, pixels.project, fit_lengths)
+    _refuse_if_undetermined(observations, c, z_mm, min(n_params, 8), allow_missing)
+    centre0 = pixels.camera_centre_mm if fit_camera_centre else None
+    p0 = start.vector(nominal, fit_lengths, centre0)
+    ptable = pixels.pixel_from_table if fit_camera_centre else None
+    fn = _residual_fn(nominal, mount, c, uv, pixels.project, fit_lengths, ptable)
+    model = _residual_fn(nominal, mount, c, 0.0, pixels.project, fit_lengths, ptable)
     sig0 = _sigmas(_jacobian(model, p0), noise_px)
-    bad = [(PARAMETER_NAMES[i], sig0[i]) for i in range(n_params) if not sig0[i] <= _SIGMA_LIMIT[i]]
+    bad = [(names[i], sig0[i]) for i in range(n_params) if not sig0[i] <= _sigma_limit(names[i])]
     if bad:
-        text = ", ".join(f"{n} (+-{s:.2g} {_UNITS[PARAMETER_NAMES.index(n)]})" if np.isfinite(s) else f"{n} (not at all)"
+        text = ", ".join(f"{n} (+-{s:.2g} {_unit(n)})" if np.isfinite(s) else f"{n} (not at all)"
                          for n, s in bad)
         raise ArmFitRefused(f"these stops cannot determine {text}; spread the stops over the work area and "
                             "heights (`gripsight arm-poses` chooses such stops)")
@@ -294,13 +367,27 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
     s2 = float(result.fun @ result.fun) / dof
     cov = s2 * np.linalg.inv(J.T @ J)
     sigma = np.sqrt(np.diag(cov))
-    errors = ArmErrors.from_vector(p)
-    params = [ParameterEstimate(PARAMETER_NAMES[i], _UNITS[i], float(p0[i]), float(p[i]), float(sigma[i]))
+    loose = [f"{names[i]} +-{sigma[i]:.2g} {_unit(names[i])}" for i in range(n_params) if not sigma[i] <= _sigma_limit(names[i])]
+    if loose:
+        raise ArmFitRefused(f"the photos leave {', '.join(loose)} (residual {np.sqrt(s2):.2f} px RMS): too uncertain "
+                            "to write; check that each photo shows its stop, sharp, and the calibration is current")
+    errors = ArmErrors.from_vector(p, fit_lengths, fit_camera_centre)
+    params = [ParameterEstimate(names[i], _unit(names[i]), float(p0[i]), float(p[i]), float(sigma[i]))
               for i in range(n_params)]
     mm_before = _mm_residuals(nominal, start, c, uv, mount, pixels, before)
-    mm_after = _mm_residuals(nominal, errors, c, uv, mount, pixels, after)
+    after_pixels = pixels if not fit_camera_centre else PixelModel.raised(
+        pixels.pixel_from_table, _table_from_pixel_of(pixels), errors.camera_centre_mm)
+    mm_after = _mm_residuals(nominal, errors, c, uv, mount, after_pixels, after)
     return ArmFit(errors, params, cov, [o.name for o in seen], np.linalg.norm(before, axis=1),
-                  np.linalg.norm(after, axis=1), mm_before, mm_after, float(np.sqrt(s2)), fit_lengths)
+                  np.linalg.norm(after, axis=1), mm_before, mm_after, float(np.sqrt(s2)), fit_lengths,
+                  fit_camera_centre)
+
+
+def _table_from_pixel_of(pixels: PixelModel):
+    """The table mapping of a raised model, recovered from its back projection at height 0."""
+    if pixels.back_project is None:
+        return None
+    return lambda uv: pixels.back_project(uv, np.zeros(len(np.asarray(uv).reshape(-1, 2))))
 
 
 def _mm_residuals(nominal, errors, c, uv, mount, pixels, res_px):
@@ -363,7 +450,7 @@ def tool_sigma_mm(fit: ArmFit, nominal: Arm, targets_mm) -> np.ndarray:
     commanded = np.column_stack([s.deg_from_pulse_us(pulses[:, j]) for j, s in enumerate(nominal.servos)])
 
     def where(pv):
-        e = ArmErrors.from_vector(pv)
+        e = ArmErrors.from_vector(pv, fit.with_lengths, fit.with_camera)
         return e.arm(nominal).forward(np.radians(e.true_deg(commanded))).ravel()
 
     J = _jacobian(where, p).reshape(len(t), 3, -1)

@@ -19,8 +19,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from gripsight.planning.armfit import (_SIGMA_LIMIT, ASSUMED_NOISE_PX, PARAMETER_NAMES, ArmErrors, MarkerMount,
-                                       _jacobian, _residual_fn, _sigmas, grid_in_polygon)
+from gripsight.planning.armfit import (ASSUMED_NOISE_PX, ArmErrors, MarkerMount, _jacobian, _residual_fn,
+                                       _sigma_limit, _sigmas, grid_in_polygon, parameter_names)
 from gripsight.planning.errors import PlanningError
 from gripsight.planning.motion import Segment, SegmentKind
 from gripsight.planning.picks import Plan, Planner
@@ -180,7 +180,8 @@ def plan_stops(planner: Planner, work_area, mount: MarkerMount, n: int = 16, hol
     commanded = np.array([s.joints_deg for s in stops])
     sigma = _sigmas(_jacobian(_residual_fn(planner.arm, mount, commanded, 0.0, _overhead_xy, fit_lengths),
                               ArmErrors().vector(planner.arm, fit_lengths)), ASSUMED_NOISE_PX * _TYPICAL_MM_PER_PX)
-    weak = [PARAMETER_NAMES[i] for i in range(len(sigma)) if not sigma[i] <= _SIGMA_LIMIT[i]]
+    names = parameter_names(fit_lengths)
+    weak = [names[i] for i in range(len(sigma)) if not sigma[i] <= _sigma_limit(names[i])]
     if weak:
         raise PlanningError(f"the stops that pass every check cannot determine {', '.join(weak)}; widen the work "
                             "area or the joint limits")

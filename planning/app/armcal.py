@@ -38,20 +38,7 @@ def mount_of(cell) -> MarkerMount | None:
 
 def pixel_model(stored) -> PixelModel:
     """The calibration as a :class:`PixelModel`: table mapping plus camera centre (raised-marker model)."""
-    mapping = stored.mapping
-    C = np.asarray(stored.camera_centre_mm, float)
-
-    def project(xyz_mm):
-        p = np.asarray(xyz_mm, float).reshape(-1, 3)
-        k = C[2] / (C[2] - p[:, 2])
-        return mapping.inverse(C[:2] + (p[:, :2] - C[:2]) * k[:, None])
-
-    def back_project(uv_px, z_mm):
-        q = mapping(np.asarray(uv_px, float).reshape(-1, 2))
-        k = C[2] / (C[2] - np.asarray(z_mm, float))
-        return C[:2] + (q - C[:2]) / k[:, None]
-
-    return PixelModel(project, back_project)
+    return PixelModel.raised(stored.mapping.inverse, stored.mapping, stored.camera_centre_mm)
 
 
 def marker_centre_px(corners_px, lens) -> np.ndarray:

@@ -154,6 +154,7 @@ def test_arm_fit_from_rendered_photos_brings_the_tool_within_a_millimetre(tmp_pa
     assert "already exists; a fitted cell is never written over" in capsys.readouterr().err
     # a photo without the marker is named
     photos[4].write_bytes((tmp_path / "calibration.png").read_bytes())
-    assert main(["arm-fit", *map(str, photos), "--cell", str(cell_path), "--out", str(tmp_path / "f2.yaml")]) == 1
+    assert main(["arm-fit", *map(str, photos), "--cell", str(cell_path), "--stops", str(poses / "stops.csv"),
+                 "--out", str(tmp_path / "f2.yaml")]) == 1
     assert "gripper marker not found in 1 photo(s): stop05.jpg" in capsys.readouterr().err
     assert not (tmp_path / "f2.yaml").exists()

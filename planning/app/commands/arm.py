@@ -68,6 +68,8 @@ def arm_fit(
     picture: Optional[Path] = typer.Option(None, "--picture", help="PNG of the tool-point error before and after (default: beside --out)."),
     fit_lengths: bool = typer.Option(False, "--with-lengths", help="Also fit the upper-arm and forearm lengths."),
     leave_out_missing: bool = typer.Option(False, "--leave-out-missing", help="Fit without the photos where the marker is not found."),
+    keep_camera_centre: bool = typer.Option(False, "--keep-camera-centre",
+                                            help="Take the calibration's camera centre as exact instead of refining it."),
 ):
     """Fit the servo maps (offset and gain per joint) and the base position from photos of the gripper
     marker at the stops; write a new cell file and a picture of the tool-point error before and after."""
@@ -100,7 +102,7 @@ def arm_fit(
     arm = Arm.from_config(cfg.arm)
     obs = armcal.observations(pairs, cfg, stored, arm, read_photo, detect_markers)
     fit = fit_arm(arm, obs, mount, armcal.pixel_model(stored), fit_lengths=fit_lengths,
-                  allow_missing=leave_out_missing)
+                  allow_missing=leave_out_missing, fit_camera_centre=not keep_camera_centre)
     text, notes = armcal.fitted_cell_text(cfg, fit, arm, fit.names, str(stored.path), created)
     write_text_atomic(out, text)
 
@@ -115,6 +117,11 @@ def arm_fit(
     for p in fit.parameters:
         typer.echo(f"  {p.name:<20} {p.value:+9.3f} +- {p.sigma:.3f} {p.unit}")
     typer.echo("  (base_offset_deg holds the base servo's zero and the base's yaw against the markers together)")
+    if fit.with_camera:
+        c = fit.errors.camera_centre_mm
+        typer.echo(f"  the camera centre, refined with the arm, is ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm (the "
+                   f"calibration had ({stored.camera_centre_mm[0]:.1f}, {stored.camera_centre_mm[1]:.1f}, "
+                   f"{stored.camera_centre_mm[2]:.1f})); to use it for parts too, set camera.centre_mm in the cell")
     typer.echo("per photo, marker seen vs predicted (mm): before -> after")
     for name, b, a in zip(fit.names, fit.residual_before_mm, fit.residual_after_mm):
         typer.echo(f"  {name:<24} {b:8.2f} -> {a:6.2f}")
