@@ -307,7 +307,8 @@ def _refuse_if_undetermined(obs, c, z_mm, n_params, allow_missing):
 
 def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMount, pixels: PixelModel,
             fit_lengths: bool = False, allow_missing: bool = False,
-            noise_px: float = ASSUMED_NOISE_PX, fit_camera_centre: bool = False) -> ArmFit:
+            noise_px: float = ASSUMED_NOISE_PX, fit_camera_centre: bool = False,
+            mapping_px: float = 0.0) -> ArmFit:
     """Fit servo offsets and gains, base position (and optionally link lengths) to marker sightings.
 
     Parameters
@@ -329,6 +330,10 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
         Also refine the camera centre of a :meth:`PixelModel.raised` model: the marker seen at many
         heights measures it far better than a raised table marker does (an error of a few mm in the
         centre's height biases the servo fit by tenths of a degree).
+    mapping_px : float
+        How far off the table mapping itself may put a point, px (the calibration's marker residual RMS):
+        an error that does not average out over the photos, added to the residual variance in the
+        reported uncertainties.
 
     Raises
     ------
@@ -364,7 +369,8 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
     after = result.fun.reshape(-1, 2)
     J = _jacobian(fn, p)
     dof = max(len(result.fun) - n_params, 1)
-    s2 = float(result.fun @ result.fun) / dof
+    s2_fit = float(result.fun @ result.fun) / dof
+    s2 = s2_fit + mapping_px ** 2
     cov = s2 * np.linalg.inv(J.T @ J)
     sigma = np.sqrt(np.diag(cov))
     loose = [f"{names[i]} +-{sigma[i]:.2g} {_unit(names[i])}" for i in range(n_params) if not sigma[i] <= _sigma_limit(names[i])]
@@ -379,7 +385,7 @@ def fit_arm(nominal: Arm, observations: list[StopObservation], mount: MarkerMoun
         pixels.pixel_from_table, _table_from_pixel_of(pixels), errors.camera_centre_mm)
     mm_after = _mm_residuals(nominal, errors, c, uv, mount, after_pixels, after)
     return ArmFit(errors, params, cov, [o.name for o in seen], np.linalg.norm(before, axis=1),
-                  np.linalg.norm(after, axis=1), mm_before, mm_after, float(np.sqrt(s2)), fit_lengths,
+                  np.linalg.norm(after, axis=1), mm_before, mm_after, float(np.sqrt(s2_fit)), fit_lengths,
                   fit_camera_centre)
 
 

@@ -102,7 +102,8 @@ def arm_fit(
     arm = Arm.from_config(cfg.arm)
     obs = armcal.observations(pairs, cfg, stored, arm, read_photo, detect_markers)
     fit = fit_arm(arm, obs, mount, armcal.pixel_model(stored), fit_lengths=fit_lengths,
-                  allow_missing=leave_out_missing, fit_camera_centre=not keep_camera_centre)
+                  allow_missing=leave_out_missing, fit_camera_centre=not keep_camera_centre,
+                  mapping_px=float(stored.data.residual.get("rms_px", 0.0)))
     text, notes = armcal.fitted_cell_text(cfg, fit, arm, fit.names, str(stored.path), created)
     write_text_atomic(out, text)
 
