@@ -84,6 +84,18 @@ class ScenePart(_Model):
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False, populate_by_name=True)
 
 
+class GripperMarkerSpec(_Model):
+    """A marker held by the gripper (drawn last, over everything): centre in table mm, yaw about z,
+    pitch of its top edge (see :mod:`vision.synth.gripper`)."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: Positive
+    margin_mm: Annotated[float, Field(ge=0, le=50)] = 5.0
+    centre_mm: Annotated[list[Number], Field(min_length=3, max_length=3)]
+    yaw_deg: Number = 0.0
+    pitch_deg: Annotated[float, Field(ge=-80, le=80)] = 0.0
+
+
 class Scene(_Model):
     camera: CameraSpec = CameraSpec()
     lighting: LightingSpec = LightingSpec()
@@ -93,6 +105,7 @@ class Scene(_Model):
     parts: list[ScenePart] = []
     base_disc: bool = True            # draw the arm's base as a dark cylinder at the table origin
     surface: Surface = Surface.PLYWOOD   # the bench under the markers (vision/synth/surfaces.py)
+    gripper_marker: GripperMarkerSpec | None = None
 
 
 @dataclass(frozen=True)
