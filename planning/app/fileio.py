@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+from datetime import datetime, timezone
 import os
 import tempfile
 from pathlib import Path
@@ -87,3 +88,8 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     """Write UTF-8 text to ``path`` atomically."""
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def utc_now() -> str:
+    """The time now in UTC, ISO 8601 to the second (``2026-12-02T15:30:00Z``): the one stamp of every output."""
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")

@@ -119,7 +119,7 @@ def path_plot_png(plan, cell, arm) -> bytes:
             top.text(y, x, o.part.id)
         else:
             top.markers(y, x, _REJECTED, "cross", 12, 3)
-            top.text(y, x, f"{o.part.id}: {o.rejection.check}", colour=_REJECTED)
+            top.text(y, x, f"{o.part.id}: {o.rejection.label}", colour=_REJECTED)
     top.markers(0.0, 0.0, (0, 0, 0), "plus", 16, 2)
     top.text(0.0, 0.0, "arm base", offset_px=(10, 16))
     top.axes(xlabel="y (mm, +y to the left)", ylabel="x (mm)", title="tool path from above")
