@@ -176,12 +176,28 @@ def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None, start=None):
         pred = apply_homography(np.linalg.inv(T_mm) @ Hn @ T_px, ideal)
         return (pred - xy).ravel()
 
+    A_mm = np.linalg.inv(T_mm)
+    q_px = np.column_stack([ideal0, np.ones(len(ideal0))]) @ T_px.T        # (N, 3) normalised pixels
+
+    def jacobian(params):
+        """d residual / d Hn[:8] for a fixed lens, in closed form: z = A Hn q, pred = z[:2] / z[2]."""
+        Hn = np.append(params[:8], 1.0).reshape(3, 3)
+        z = q_px @ (A_mm @ Hn).T                                           # (N, 3)
+        inv_w = 1.0 / z[:, 2]
+        d_pred_dz = np.zeros((len(z), 2, 3))
+        d_pred_dz[:, 0, 0] = d_pred_dz[:, 1, 1] = inv_w
+        d_pred_dz[:, :, 2] = -z[:, :2] * (inv_w ** 2)[:, None]
+        G = d_pred_dz @ A_mm                                               # (N, 2, 3): d pred / d (Hn q)
+        J = G[:, :, :, None] * q_px[:, None, None, :]                      # (N, 2, 3 rows of Hn, 3 columns)
+        return J.reshape(2 * len(z), 9)[:, :8]
+
     x0 = Hn0.ravel()[:8]
     if free_lens:
         x0 = np.append(x0, [base.lam if start is not None else 0.0] + ([0.0, 0.0] if free_centre else []))
     from scipy.optimize import least_squares     # 0.5 s to import: only when fitting
 
-    sol = least_squares(residual, x0, method="lm", xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=3000)
+    sol = least_squares(residual, x0, jac="2-point" if free_lens else jacobian, method="lm",
+                        xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=3000)
     Hn = np.append(sol.x[:8], 1.0).reshape(3, 3)
     H = np.linalg.inv(T_mm) @ Hn @ T_px
     lens = lens_of(sol.x) if free_lens else (fixed_lens or NoLens())

@@ -26,14 +26,22 @@ any number of markers can be refined at once.
 
 from __future__ import annotations
 
+import math
 import warnings
 from dataclasses import dataclass
 
 import cv2
 import numpy as np
-from scipy.special import ndtr
 
 __all__ = ["RefinedCorners", "refine_corners", "sample_image", "STRAIGHT_RMS_PX"]
+
+_ERFC = np.frompyfunc(math.erfc, 1, 1)
+
+
+def ndtr(x) -> np.ndarray:
+    """The standard normal CDF, Phi(x) = erfc(-x / sqrt 2) / 2, through the C library's erfc (one value per
+    marker here, so a ufunc over Python floats is cheap; scipy.special costs 60-500 ms to import)."""
+    return 0.5 * _ERFC(-np.asarray(x, float) / math.sqrt(2.0)).astype(float)
 
 STRAIGHT_RMS_PX = 0.35          # a half edge whose points scatter more than this about their line is not used
 _S = 10                         # profiles per half edge
