@@ -59,6 +59,9 @@ def _context(cell_path: str, calibration_path: str | None):
         stored = load_or_make_calibration(cell, Path(calibration_path) if calibration_path else None)
         _CACHE.clear()
         _CACHE[key] = (cell, arm, Planner(cell, arm), stored)
+        import cv2
+
+        cv2.setNumThreads(1)        # one process, one core: workers side by side do not fight over cores
     return _CACHE[key]
 
 
@@ -190,6 +193,9 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
 
     out = output_dir(out)
     photos = photos_in(folder)
+    if workers > 1 and not scheduler:       # numpy's BLAS threads would spin beside the other workers
+        for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+            os.environ.setdefault(name, "1")
     pool_context = _start_workers_early() if workers > 1 and not scheduler else None
     _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out),
