@@ -95,7 +95,7 @@ def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px):
     outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
     normal = normal * np.where(outward == 0, 1.0, outward)                 # from ink to paper
     # along each edge: S places on each half, from end_gap from the corner to 45 % of the edge
-    f0 = np.clip(end_gap_px[:, None] / length[..., 0], 0.05, 0.3)          # (M, 4)
+    f0 = np.clip(end_gap_px[:, None] / length[..., 0], 0.08, 0.3)          # (M, 4)
     half = np.linspace(0.0, 1.0, _S)
     first = f0[..., None] + (0.45 - f0[..., None]) * half                   # (M, 4, S)
     along = np.concatenate([first, 1.0 - first[..., ::-1]], axis=-1)        # (M, 4, 2S)
@@ -248,8 +248,7 @@ def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, of
     side_px = np.linalg.norm(rough - np.roll(rough, -1, axis=1), axis=-1).mean(axis=1)
     cell_px = side_px / cells_per_side
     first, _, _, blur, ok1 = _pass(lin, rough, side_px, cell_px, np.full(m, 1.0), offsets_px)
-    start = np.where(ok1.all(axis=1)[:, None, None], first, rough)
-    out, sig, rms, _, ok = _pass(lin, start, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
+    out, sig, rms, _, ok = _pass(lin, rough, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
     limit = 0.3 + cell_px[:, None] / 3.0 + blur[:, None] + 3.0 * sig
     moved_ok = np.linalg.norm(out - rough, axis=-1) <= limit
     good = (ok & moved_ok).all(axis=1)
