@@ -23,6 +23,7 @@ from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
 from gripsight.vision.markerdict import DICTIONARY_NAMES, dictionary_size
+from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
     "Cell",
@@ -56,21 +57,33 @@ class MarkerPlacement(_Model):
     yaw_deg: Number = 0.0
 
 
+class GripperMarker(_Model):
+    """A marker fixed to the gripper, for fitting the servo maps and base placement from photos
+    (``gripsight arm-poses`` / ``arm-fit``). Same dictionary as the table markers."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: PositiveMm
+    margin_mm: NonNegativeMm = 5.0
+    offset_mm: Point3 = [0.0, 0.0, 0.0]     # its centre from the tool point: forward, left, up (tool frame)
+    level: bool | None = None              # faces up; false: tilts with the forearm; default: as arm.tool.level
+
+
 class MarkersConfig(_Model):
     dictionary: DictionaryName = "aruco_4x4_50"
     size_mm: PositiveMm
     margin_mm: NonNegativeMm = 10.0
     paper_srgb: Annotated[float, Field(ge=100, le=255, allow_inf_nan=False)] = 232.0   # paper's grey level in a well-lit photo
     layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1)
+    on_gripper: GripperMarker | None = None
 
 
 class CameraConfig(_Model):
-    lens: Literal["none", "estimate", "file"] = "estimate"
+    lens: Annotated[LensMode, Field(strict=False)] = LensMode.ESTIMATE
     lens_file: str | None = None
     centre_mm: Point3 | None = None
     height_mm: PositiveMm | None = None
     drift_tolerance_mm: PositiveMm = 1.0
-    on_move: Literal["refit", "stop"] = "refit"
+    on_move: Annotated[OnMove, Field(strict=False)] = OnMove.REFIT
 
 
 # ---------------------------------------------------------------- arm
@@ -121,6 +134,7 @@ class GripperConfig(_Model):
 
 class ArmConfig(_Model):
     base_height_mm: Number
+    base_xy_mm: Point2 = [0.0, 0.0]   # where the base axis stands in the markers' frame (written by arm-fit)
     shoulder_offset_mm: Number = 0.0
     upper_arm_mm: PositiveMm
     forearm_mm: PositiveMm
@@ -140,6 +154,12 @@ class PartClass(_Model):
     shape: Literal["box", "cylinder"] = "box"
     footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
     seen_as: Literal["auto", "top", "silhouette"] = "auto"
+
+    @property
+    def length_width_mm(self) -> tuple[float, float]:
+        """The footprint as (length, width): one value (a cylinder's diameter, a square) is both."""
+        fp = self.footprint_mm
+        return (float(fp[0]), float(fp[-1]))
 
 
 class BinConfig(_Model):
@@ -282,6 +302,17 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
             if math.hypot(pa.x - pb.x, pa.y - pb.y) < cell.markers.size_mm:
                 out.append(Problem(f"markers.layout.{b}", f"overlaps marker {a} (centres closer than size_mm)"))
 
+    grip_marker = cell.markers.on_gripper
+    if grip_marker is not None:
+        if grip_marker.id >= size:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} does not exist in {cell.markers.dictionary} (ids 0-{size - 1})"))
+        if grip_marker.id in layout:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} is already a table marker (markers.layout); "
+                                                        "give the gripper its own id"))
+        if grip_marker.level and not cell.arm.tool.level:
+            out.append(Problem("markers.on_gripper.level", "the tool is fixed to the forearm (arm.tool.level: false), "
+                                                           "so a marker on it tilts with it; remove the key or set false"))
+
     if abs(_polygon_area(cell.work_area)) < 1.0:
         out.append(Problem("work_area", "the polygon has no area (points collinear or repeated)"))
 
@@ -318,7 +349,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
                 out.append(Problem(f"{where}", "a box zone needs min_mm and max_mm"))
             elif any(a >= b for a, b in zip(zone.min_mm, zone.max_mm)):
                 out.append(Problem(f"{where}.min_mm", "every coordinate must be less than max_mm's"))
-    if cell.camera.lens == "file" and not cell.camera.lens_file:
+    if cell.camera.lens == LensMode.FILE and not cell.camera.lens_file:
         out.append(Problem("camera.lens_file", "required when camera.lens is 'file'"))
     return out
 

@@ -310,6 +310,8 @@ def render_scene(cell, scene: Scene) -> Rendered:
         canvas *= (1.0 - scene.lighting.shadow * mask)[..., None]
     for s in sorted(solids, key=lambda s: -np.linalg.norm(s.centre - cam.centre_mm)):
         _draw_solid(canvas, cam, K_canvas, s, light, scene.lighting.ambient, cell)
+    if scene.gripper_marker is not None:
+        _draw_gripper(canvas, cam, K_canvas, cell, scene.gripper_marker, light, scene.lighting.ambient)
     gains = np.array(scene.lighting.white_balance, np.float32)[::-1] * scene.lighting.brightness   # BGR order below
     canvas = canvas[..., ::-1] * _illumination_field((hc, wc), scene.lighting, cam, K_canvas)[..., None] * gains
     fine = cv2.remap(np.ascontiguousarray(canvas, dtype=np.float32), map_x, map_y, cv2.INTER_LINEAR,
@@ -318,7 +320,27 @@ def render_scene(cell, scene: Scene) -> Rendered:
     if scene.sensor.blur_px > 0:
         linear = cv2.GaussianBlur(linear, (0, 0), scene.sensor.blur_px)
     image = _sensor(linear, scene.sensor, rng)
-    return Rendered(image, cam, _truth(cell, scene, cam, parts))
+    truth = _truth(cell, scene, cam, parts)
+    if scene.gripper_marker is not None:
+        truth["gripper_marker"] = _gripper_truth(cam, scene.gripper_marker)
+    return Rendered(image, cam, truth)
+
+
+def _draw_gripper(canvas, cam, K_canvas, cell, spec, light, ambient):
+    from gripsight.vision.synth.gripper import draw_gripper_marker, marker_axes
+
+    ex, ey = marker_axes(spec.yaw_deg, spec.pitch_deg)
+    draw_gripper_marker(canvas, cam, K_canvas, cell.markers.dictionary, spec, _warp_into,
+                        _shade(np.cross(ex, ey), light, ambient))
+
+
+def _gripper_truth(cam, spec) -> dict:
+    from gripsight.vision.synth.gripper import gripper_marker_corners_mm
+
+    corners = gripper_marker_corners_mm(spec)
+    return {"id": spec.id, "centre_mm": [float(v) for v in spec.centre_mm],
+            "centre_px": cam.project(np.asarray(spec.centre_mm, float)[None])[0].round(4).tolist(),
+            "corners_px": cam.project(corners).round(4).tolist(), "in_view": bool(cam.in_view(corners).all())}
 
 
 def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB, surface: Surface = Surface.PLYWOOD) -> np.ndarray:

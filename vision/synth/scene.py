@@ -87,6 +87,18 @@ class ScenePart(_Model):
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False, populate_by_name=True)
 
 
+class GripperMarkerSpec(_Model):
+    """A marker held by the gripper (drawn last, over everything): centre in table mm, yaw about z,
+    pitch of its top edge (see :mod:`vision.synth.gripper`)."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: Positive
+    margin_mm: Annotated[float, Field(ge=0, le=50)] = 5.0
+    centre_mm: Annotated[list[Number], Field(min_length=3, max_length=3)]
+    yaw_deg: Number = 0.0
+    pitch_deg: Annotated[float, Field(ge=-80, le=80)] = 0.0
+
+
 class Scene(_Model):
     camera: CameraSpec = CameraSpec()
     lighting: LightingSpec = LightingSpec()
@@ -96,6 +108,7 @@ class Scene(_Model):
     parts: list[ScenePart] = []
     base_disc: bool = True            # draw the arm's base as a dark cylinder at the table origin
     surface: Surface = Surface.PLYWOOD   # the bench under the markers (vision/synth/surfaces.py)
+    gripper_marker: GripperMarkerSpec | None = None
 
 
 @dataclass(frozen=True)
@@ -193,7 +206,7 @@ def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 
     if touching:
         box_classes = [c for c in classes if cell.parts[c].shape == "box"] or classes
         cls = str(rng.choice(box_classes))
-        fp = list(cell.parts[cls].footprint_mm) * (2 if len(cell.parts[cls].footprint_mm) == 1 else 1)
+        fp = list(cell.parts[cls].length_width_mm)
         for _ in range(200):
             x, y = rng.uniform(min(xs), max(xs)), rng.uniform(min(ys), max(ys))
             yaw = float(rng.uniform(-90, 90))
