@@ -412,7 +412,7 @@ def _truth(cell, scene: Scene, cam: Camera, parts: list[ResolvedPart]) -> dict:
             "scene": _record(scene)}
 
 
-_LATER_OPTIONS = ("surface", "blur_px", "spot_radius_mm", "spot_centre_mm", "spot_floor")
+_LATER_OPTIONS = ("surface", "blur_px", "spot_radius_mm", "spot_centre_mm", "spot_floor", "gripper_marker")
 
 
 def _record(model) -> dict:
