@@ -22,9 +22,10 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
+from gripsight.vision.markerdict import DICTIONARY_NAMES, dictionary_size
+from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
-    "ARUCO_DICTIONARY_SIZES",
     "Cell",
     "ArmConfig",
     "JointConfig",
@@ -40,20 +41,8 @@ NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
 Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
 
-# Published ArUco / AprilTag dictionaries and how many ids each holds (OpenCV's predefined set).
-ARUCO_DICTIONARY_SIZES = {
-    "aruco_4x4_50": 50, "aruco_4x4_100": 100, "aruco_4x4_250": 250, "aruco_4x4_1000": 1000,
-    "aruco_5x5_50": 50, "aruco_5x5_100": 100, "aruco_5x5_250": 250, "aruco_5x5_1000": 1000,
-    "aruco_6x6_50": 50, "aruco_6x6_100": 100, "aruco_6x6_250": 250, "aruco_6x6_1000": 1000,
-    "aruco_original": 1024, "apriltag_16h5": 30, "apriltag_25h9": 35, "apriltag_36h10": 2320,
-    "apriltag_36h11": 587,
-}
-DictionaryName = Literal[
-    "aruco_4x4_50", "aruco_4x4_100", "aruco_4x4_250", "aruco_4x4_1000",
-    "aruco_5x5_50", "aruco_5x5_100", "aruco_5x5_250", "aruco_5x5_1000",
-    "aruco_6x6_50", "aruco_6x6_100", "aruco_6x6_250", "aruco_6x6_1000",
-    "aruco_original", "apriltag_16h5", "apriltag_25h9", "apriltag_36h10", "apriltag_36h11",
-]
+# Every dictionary OpenCV predefines, by our name (the vision library owns the list).
+DictionaryName = Literal[DICTIONARY_NAMES]
 
 
 class _Model(BaseModel):
@@ -89,12 +78,12 @@ class MarkersConfig(_Model):
 
 
 class CameraConfig(_Model):
-    lens: Literal["none", "estimate", "file"] = "estimate"
+    lens: Annotated[LensMode, Field(strict=False)] = LensMode.ESTIMATE
     lens_file: str | None = None
     centre_mm: Point3 | None = None
     height_mm: PositiveMm | None = None
     drift_tolerance_mm: PositiveMm = 1.0
-    on_move: Literal["refit", "stop"] = "refit"
+    on_move: Annotated[OnMove, Field(strict=False)] = OnMove.REFIT
 
 
 # ---------------------------------------------------------------- arm
@@ -165,6 +154,12 @@ class PartClass(_Model):
     shape: Literal["box", "cylinder"] = "box"
     footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
     seen_as: Literal["auto", "top", "silhouette"] = "auto"
+
+    @property
+    def length_width_mm(self) -> tuple[float, float]:
+        """The footprint as (length, width): one value (a cylinder's diameter, a square) is both."""
+        fp = self.footprint_mm
+        return (float(fp[0]), float(fp[-1]))
 
 
 class BinConfig(_Model):
@@ -295,7 +290,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if joint.min_deg < joint.max_deg and not joint.min_deg <= value <= joint.max_deg:
             out.append(Problem(f"motion.home_deg.{name}", f"{value:g} is outside the joint limits [{joint.min_deg:g}, {joint.max_deg:g}]"))
 
-    size = ARUCO_DICTIONARY_SIZES[cell.markers.dictionary]
+    size = dictionary_size(cell.markers.dictionary)
     layout = cell.markers.layout
     for marker_id in layout:
         if marker_id >= size:
@@ -354,7 +349,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
                 out.append(Problem(f"{where}", "a box zone needs min_mm and max_mm"))
             elif any(a >= b for a, b in zip(zone.min_mm, zone.max_mm)):
                 out.append(Problem(f"{where}.min_mm", "every coordinate must be less than max_mm's"))
-    if cell.camera.lens == "file" and not cell.camera.lens_file:
+    if cell.camera.lens == LensMode.FILE and not cell.camera.lens_file:
         out.append(Problem("camera.lens_file", "required when camera.lens is 'file'"))
     return out
 

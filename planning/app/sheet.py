@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markerdict import aruco_dictionary
 
 __all__ = ["PAPER_MM", "write_marker_sheet", "page_layout"]
 

@@ -25,12 +25,14 @@ from dataclasses import dataclass
 
 import cv2
 import numpy as np
+from pydantic import BaseModel
 
 from gripsight.vision.camera import Camera
 from gripsight.vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markerdict import aruco_dictionary
 from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.synth.scene import ResolvedPart, Scene, make_camera, resolve_parts
+from gripsight.vision.synth.surfaces import BUSY_PX_PER_MM, Surface, busy_texture
 
 __all__ = ["Rendered", "render_scene", "encode_photo"]
 
@@ -275,7 +277,7 @@ def render_scene(cell, scene: Scene) -> Rendered:
     rng = np.random.default_rng(scene.table_seed)
     parts = resolve_parts(scene, cell)
     K_canvas, (wc, hc), map_x, map_y = _lens_map(cam)
-    canvas = _table(cam, K_canvas, (hc, wc), rng, scene.table_lab or _TABLE_LAB)
+    canvas = _table(cam, K_canvas, (hc, wc), rng, scene.table_lab or _TABLE_LAB, Surface(scene.surface))
     for marker_id, m in cell.markers.layout.items():
         if m.z == 0:
             _draw_marker(canvas, cam, K_canvas, cell, marker_id, m)
@@ -298,6 +300,8 @@ def render_scene(cell, scene: Scene) -> Rendered:
     fine = cv2.remap(np.ascontiguousarray(canvas, dtype=np.float32), map_x, map_y, cv2.INTER_LINEAR,
                      borderMode=cv2.BORDER_REPLICATE)
     linear = cv2.resize(fine, (cam.width_px, cam.height_px), interpolation=cv2.INTER_AREA)
+    if scene.sensor.blur_px > 0:
+        linear = cv2.GaussianBlur(linear, (0, 0), scene.sensor.blur_px)
     image = _sensor(linear, scene.sensor, rng)
     truth = _truth(cell, scene, cam, parts)
     if scene.gripper_marker is not None:
@@ -322,7 +326,7 @@ def _gripper_truth(cam, spec) -> dict:
             "corners_px": cam.project(corners).round(4).tolist(), "in_view": bool(cam.in_view(corners).all())}
 
 
-def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB) -> np.ndarray:
+def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB, surface: Surface = Surface.PLYWOOD) -> np.ndarray:
     hc, wc = shape
     H0 = _plane_homography(cam, K_canvas, 0.0)
     corners = np.array([[0, 0], [wc, 0], [wc, hc], [0, hc]], float)
@@ -332,6 +336,12 @@ def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB) -> np.ndarray:
     res = _TEXTURE_PX_PER_MM
     th, tw = int((x1 - x0) * res) + 1, int((y1 - y0) * res) + 1
     texture = _table_texture(rng, (th, tw), base_lab)
+    if surface != Surface.PLYWOOD:
+        # finer, on its own random stream (drawn from the photo's)
+        res = BUSY_PX_PER_MM
+        th, tw = int((x1 - x0) * res) + 1, int((y1 - y0) * res) + 1
+        plain = cv2.resize(texture, (tw, th), interpolation=cv2.INTER_LINEAR)
+        texture = busy_texture(surface, np.random.default_rng(rng.integers(0, 2**63)), (th, tw), plain)
     A = np.array([[0, 1 / res, x0], [1 / res, 0, y0], [0, 0, 1.0]])    # texture (col, row) -> table (x, y)
     return cv2.warpPerspective(texture, H0 @ A, (wc, hc), flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_REFLECT)
 
@@ -380,6 +390,23 @@ def _truth(cell, scene: Scene, cam: Camera, parts: list[ResolvedPart]) -> dict:
     return {"gripsight": "render-truth", "cell": cell.cell,
             "image": {"width_px": cam.width_px, "height_px": cam.height_px},
             "camera": cam.as_dict(),
-            "lighting": scene.lighting.model_dump(), "sensor": scene.sensor.model_dump(),
+            "lighting": _record(scene.lighting), "sensor": _record(scene.sensor),
             "table_seed": scene.table_seed, "markers": markers, "parts": truth_parts,
-            "scene": scene.model_dump(by_alias=True)}
+            "scene": _record(scene)}
+
+
+_LATER_OPTIONS = ("surface", "blur_px")
+
+
+def _record(model) -> dict:
+    """A scene or its part as plain data for the truth file; options added later are written only when
+    they are not at their defaults, so the truth of a scene that does not use them reads as it always
+    did (and the committed sample set stays byte for byte)."""
+    record = model.model_dump(by_alias=True, mode="json")
+    for key in _LATER_OPTIONS:
+        if key in record and getattr(model, key) == type(model).model_fields[key].default:
+            record.pop(key)
+    for key, value in record.items():
+        if isinstance(getattr(model, key, None), BaseModel):
+            record[key] = _record(getattr(model, key))
+    return record
