@@ -111,10 +111,14 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
                        calibration: dict | None = None, plots: bool = True) -> dict:
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
 
+    from gripsight.app.jointcheck import check_joint_file_text
+
     out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
-    write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))
+    text = joints_csv_text(plan, cell, arm, created)
+    check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
+    write_text_atomic(out / "joints.csv", text)
     write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot

@@ -4,12 +4,14 @@ Per photo, a folder ``OUT/<photo name>/`` with plan.json, joints.csv, overlay.pn
 each photo the run's state (photos done, where the arm stopped, the clock, tray counts) is saved
 atomically in ``OUT/run_state.json``, so an interrupted run resumes where it stopped (``--resume``).
 ``OUT/run.csv`` is the whole run's joint sequence on one clock, ending with the move home; it is
-rebuilt from the finished photos whenever the run stops.
+rebuilt whenever the run stops from the joints.csv files this run wrote (known by their hashes in the
+run state), never from older files in the folder, and checked as a whole before it is written.
 """
 
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 from dataclasses import dataclass, field
@@ -64,15 +66,31 @@ def _csv_rows(text: str) -> list[list[str]]:
     return list(csv.reader(lines))[1:]
 
 
+def _sha256(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
 def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
-    """run.csv from the finished photos' joints.csv (each photo's first row repeats the last one's end)."""
+    """run.csv from this run's checked plans only: the joints.csv each photo of this run wrote, known
+    by the hash recorded in the run state when it was written (each photo's first row repeats the last
+    one's end); a photo without one (an error, an old file) adds nothing. The whole file is checked
+    before it is written (:func:`gripsight.app.jointcheck.check_joint_file_text`)."""
+    from gripsight.app.jointcheck import _refuse, check_joint_file_text
+
     buf = io.StringIO()
     header_done = False
+    written = state.get("joints_sha256", {})
     for name in state["done"]:
-        path = child_folder(out, name) / "joints.csv"
-        if not path.is_file():
+        if name not in written:
             continue
-        text = path.read_text()
+        path = child_folder(out, name) / "joints.csv"
+        try:
+            raw = path.read_bytes()
+        except OSError:
+            raw = b""
+        if _sha256(raw) != written[name]:
+            raise _refuse(str(out / "run.csv"), f"{path} changed since this run wrote it")
+        text = raw.decode("utf-8")
         comments = [line for line in text.splitlines() if line.startswith("#")]
         rows = _csv_rows(text)
         if not header_done:
@@ -86,7 +104,9 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
     if home_csv and header_done:
         csv.writer(buf, lineterminator="\n").writerows(_csv_rows(home_csv)[1:])
     if header_done:
-        write_text_atomic(out / "run.csv", buf.getvalue())
+        text = buf.getvalue()
+        check_joint_file_text(text, cell, str(out / "run.csv"))
+        write_text_atomic(out / "run.csv", text)
 
 
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
@@ -139,6 +159,9 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 continue
             data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
             summary = _summary(photo.name, pp, data)
+            joints = child_folder(out, photo.name) / "joints.csv"
+            if pp.plan is not None and joints.is_file():       # written (and checked) just now by this run
+                state.setdefault("joints_sha256", {})[photo.name] = _sha256(joints.read_bytes())
             if pp.plan is not None:
                 for pick in pp.plan.picks:
                     state["bins"][pick.bin_name] = state["bins"].get(pick.bin_name, 0) + 1
