@@ -362,7 +362,7 @@ def test_a_second_batch_on_the_same_folder_refuses(tmp_path, capsys):
     first.wait()
     assert code == 1
     assert re.search(r"another gripsight command \(pid \d+\) is writing here", err)
-    assert first.returncode == 0 and not (out / ".gripsight.lock").exists()
+    assert first.returncode == 0      # the lock file stays; the kernel's lock on it ended with the process
 
 
 @pytest.mark.parametrize("name", ["../../etc/passwd", "/abs/photo.jpg", "..", ".", "a/../../b.jpg", "x\\..\\..\\y.jpg"])
