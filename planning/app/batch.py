@@ -7,12 +7,13 @@ A photo that cannot be read or fails becomes a row with its error; the batch goe
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
 
-from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, write_text_atomic
 
 __all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
 
@@ -81,6 +82,9 @@ def process_photo(job: BatchJob) -> dict:
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
         row["error"] = f"internal error ({type(exc).__name__}: {exc})"
     row["photo_sha256"] = _sha256(job.photo)
+    with contextlib.suppress(Exception):        # what the row was made with, for --resume
+        cell, _, _, stored = _context(job.cell_path, job.calibration_path)
+        row["cell_sha256"], row["calibration_sha256"] = cell.sha256, stored.sha256
     try:
         write_text_atomic(child_folder(job.out_dir, name) / "row.json", json.dumps(row))   # what --resume reads
     except (OSError, ValueError):
@@ -97,14 +101,19 @@ def _sha256(path) -> str:
         return ""
 
 
-def _finished_row(job: BatchJob) -> dict | None:
-    """The row a previous (interrupted) batch wrote for this photo, if the photo is unchanged."""
+def _finished_row(job: BatchJob, cell_sha256: str | None, calibration_sha256: str | None) -> dict | None:
+    """The row a previous (interrupted) batch wrote for this photo, if the photo, the cell file and the
+    calibration file are byte for byte the ones it was made with (their SHA-256)."""
     path = child_folder(job.out_dir, Path(job.photo).name) / "row.json"
     try:
         row = json.loads(path.read_text())
     except (OSError, ValueError):
         return None
-    return row if row.get("photo_sha256") == _sha256(job.photo) else None
+    if not isinstance(row, dict):
+        return None
+    same = (row.get("photo_sha256") == _sha256(job.photo) and row.get("cell_sha256") == cell_sha256
+            and row.get("calibration_sha256") == calibration_sha256 and cell_sha256 is not None)
+    return row if same else None
 
 
 def _truth_stats(photo: str, pp, cell) -> dict | None:
@@ -143,13 +152,14 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     out = output_dir(out)
     photos = photos_in(folder)
     pool_context = _start_workers_early() if workers > 1 and not scheduler else None
-    _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
+    cell, _, _, stored = _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early
+    remove_leftover_temps(out)
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
             for p in photos]
     rows: dict[str, dict] = {}
     if resume:
         for job in list(jobs):
-            row = _finished_row(job)
+            row = _finished_row(job, cell.sha256, stored.sha256)
             if row is not None:
                 rows[row["photo"]] = row
                 jobs.remove(job)
@@ -247,7 +257,8 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
                       t.get("pick_error_max_mm", "")])
     totals = _totals(rows)
     write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
-    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256")} for r in rows]
+    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256", "cell_sha256", "calibration_sha256")}
+             for r in rows]
     write_text_atomic(Path(out) / "batch.json", json.dumps({"cell": cell.cell, "totals": totals, "photos": clean},
                                                            indent=1) + "\n")
     write_report(Path(out) / "report.html", rows, totals, cell)

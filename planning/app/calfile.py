@@ -88,6 +88,7 @@ class StoredCalibration:
         self.image_size = (data.photo.width_px, data.photo.height_px)
         self.marker_corners_px = {m.id: np.array(m.corners_px, float) for m in data.markers if m.used}
         self.verdict = data.verdict
+        self.sha256: str | None = None           # SHA-256 of the file's bytes, set by read_calibration
 
 
 def history_path(path: Path, when: datetime) -> Path:
@@ -157,7 +158,7 @@ def read_calibration(path) -> StoredCalibration:
     """
     from gripsight.app.cellfile import _pydantic_problems, read_yaml
 
-    data, _ = read_yaml(path, "calibration file")
+    data, raw = read_yaml(path, "calibration file")
     if not isinstance(data, dict):
         raise CellFileError(str(path), [Problem("", "not a gripsight calibration file; make one with `gripsight calibrate`")])
     try:
@@ -171,4 +172,6 @@ def read_calibration(path) -> StoredCalibration:
         lens_from_dict(parsed.lens.model_dump())
     except (KeyError, TypeError, ValueError) as exc:
         raise CellFileError(str(path), [Problem("lens", f"invalid ({exc})")]) from None
-    return StoredCalibration(str(path), parsed)
+    stored = StoredCalibration(str(path), parsed)
+    stored.sha256 = hashlib.sha256(raw).hexdigest()       # what a resumed run or batch compares
+    return stored

@@ -7,10 +7,32 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder"]
+__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder",
+           "remove_leftover_temps"]
+
+# the temporary names of atomic_output: ".<stem>.<8 random chars from mkstemp>.tmp<suffix>"
+_TEMP_NAME = re.compile(r"^\..*\.[A-Za-z0-9_]{8}\.tmp(\.[^./]*)?$")
+
+
+def remove_leftover_temps(folder) -> list[Path]:
+    """Remove the temporary files an interrupted writer left in ``folder`` and its direct subfolders
+    (the caller holds the folder's output lock, so no writer of ours is using them); return them."""
+    removed = []
+    folder = Path(folder)
+    if not folder.is_dir():
+        return removed
+    places = [folder] + [p for p in folder.iterdir() if p.is_dir() and not p.is_symlink()]
+    for place in places:
+        for path in place.iterdir():
+            if _TEMP_NAME.match(path.name) and path.is_file() and not path.is_symlink():
+                with contextlib.suppress(OSError):
+                    path.unlink()
+                    removed.append(path)
+    return removed
 
 
 def child_folder(out, name: str) -> Path:

@@ -21,7 +21,7 @@ import numpy as np
 
 from gripsight.app.errors import EXPECTED_ERRORS, GripsightError
 from gripsight.app.export import CSV_COLUMNS, joints_csv_text, utc_now
-from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, write_text_atomic
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
 
@@ -51,14 +51,30 @@ def _state_path(out: Path) -> Path:
     return out / _STATE
 
 
-def _load_state(out: Path, folder: Path, cell) -> dict:
+def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
+    """The interrupted run's state, if it was made of the same folder, the same cell file and the same
+    calibration file, and every photo it finished is still byte for byte the one it planned (the run
+    carries the arm from photo to photo, so a changed photo changes everything after it)."""
     path = _state_path(out)
     if not path.is_file():
         raise GripsightError(f"{path}: nothing to resume (no run state); run without --resume")
     state = json.loads(path.read_text())
     if state.get("folder") != str(folder.resolve()) or state.get("cell_sha256") != cell.sha256:
         raise GripsightError(f"{path}: that run was of another folder or cell file; run without --resume")
+    if stored is not None and state.get("calibration_sha256") != getattr(stored, "sha256", None):
+        raise GripsightError(f"{path}: that run was made with another calibration file; run without --resume")
+    photo_hashes = state.get("photo_sha256", {})
+    for name in state.get("done", []):
+        if photo_hashes.get(name) != _file_sha256(folder / name):
+            raise GripsightError(f"{path}: photo {name} changed since that run planned it; run without --resume")
     return state
+
+
+def _file_sha256(path: Path) -> str | None:
+    try:
+        return _sha256(path.read_bytes())
+    except OSError:
+        return None
 
 
 def _csv_rows(text: str) -> list[list[str]]:
@@ -125,7 +141,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     arm = Arm.from_config(cell.arm)
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
-        state = _load_state(out, folder, cell)
+        state = _load_state(out, folder, cell, stored)
         recorded = float(state.get("speed_scale", 1.0))
         if abs(recorded - speed_scale) > 1e-9:      # one run.csv, one speed: never mix them
             raise GripsightError(f"{_state_path(out)}: that run was made at speed scale {recorded:g}; "
@@ -138,12 +154,15 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
         _state_path(out).unlink(missing_ok=True)
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
                  "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
-                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale}
+                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale,
+                 "calibration_sha256": getattr(stored, "sha256", None), "photo_sha256": {}}
+    remove_leftover_temps(out)
     result = RunResult()
     try:
         for photo in photos:
             if photo.name in state["done"]:
                 continue
+            state.setdefault("photo_sha256", {})[photo.name] = _file_sha256(photo)
             room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
             try:
                 pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
