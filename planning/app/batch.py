@@ -239,6 +239,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     import io
 
     from gripsight.app.report import write_report
+    from gripsight.app.textsafe import one_line
 
     classes = list(cell.parts) + ["unknown"]
     reasons = sorted({r for row in rows for r in row["rejected"]})
@@ -250,7 +251,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     w.writerow(header)
     for row in rows:
         t = row["truth"] or {}
-        w.writerow([row["photo"], row["status"], row["error"], row["registration"], row["drift"], row["parts"]]
+        w.writerow([one_line(row["photo"]), row["status"], one_line(row["error"]), row["registration"], row["drift"], row["parts"]]
                    + [row["found"].get(c, 0) for c in classes]
                    + [row["planned"], sum(row["rejected"].values())] + [row["rejected"].get(r, 0) for r in reasons]
                    + [row["cycle_s"], t.get("recall", ""), t.get("precision", ""), t.get("pick_error_rms_mm", ""),

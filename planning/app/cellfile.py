@@ -391,6 +391,13 @@ def parse_cell(data, source: str = "<cell>") -> Cell:
     if not isinstance(data, dict):
         kind = "empty" if data is None else f"a {type(data).__name__}, not a mapping of keys"
         raise CellFileError(source, [Problem("", f"the file is {kind}; start from `gripsight init`")])
+    from gripsight.app.textsafe import control_character_paths
+
+    controls = control_character_paths(data)
+    if controls:      # a name that reaches a CSV, a comment line or HTML must not carry a line break
+        raise CellFileError(source, [Problem(".".join(str(k) for k in where) or "<top>",
+                                             f"contains a control character or line break ({text[:40]}); "
+                                             "use plain text on one line") for where, text in controls])
     try:
         cell = Cell.model_validate(data)
     except ValidationError as exc:

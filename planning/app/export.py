@@ -17,6 +17,7 @@ from datetime import datetime, timezone
 import numpy as np
 
 from gripsight.app.fileio import output_dir, write_text_atomic
+from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
@@ -92,14 +93,16 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
     out.write("# gripsight joint sequence\n")
     for line in SAFETY_LINES:
         out.write(f"# SAFETY: {line}\n")
-    out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    out.write(f"# cell: {one_line(cell.cell)}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
     if plan.speed_scale != 1.0:
         out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
+    names = {pid: one_line(pid) for pid in set(s.part_id)}      # ids from a parts file or a photo: one line each
+    part_ids = [names[pid] for pid in s.part_id]
     for i in range(len(s.t_s)):
-        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], s.part_id[i],
+        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], part_ids[i],
                          f"{s.xyz_mm[i, 0]:.4f}", f"{s.xyz_mm[i, 1]:.4f}", f"{s.xyz_mm[i, 2]:.4f}",
                          f"{q_deg[i, 0]:.6f}", f"{q_deg[i, 1]:.6f}", f"{q_deg[i, 2]:.6f}",
                          "closed" if s.gripper_closed[i] else "open",
