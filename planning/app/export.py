@@ -16,7 +16,7 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, write_text_atomic
+from gripsight.app.fileio import output_dir, write_files_atomic
 from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
@@ -121,8 +121,10 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
     data = plan_to_dict(plan, cell, created, photo, calibration)
     text = joints_csv_text(plan, cell, arm, created)
     check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
-    write_text_atomic(out / "joints.csv", text)
-    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    # both new files written and flushed before either takes its name: a failure (a full disk) leaves
+    # the old pair, never a new joints.csv beside an old plan.json
+    write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
+                        (out / "plan.json", (json.dumps(data, indent=2) + "\n").encode("utf-8"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

@@ -151,11 +151,12 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 raise GripsightError(f"--emptied: no bin '{name}' in the cell")
             state["bins"][name] = 0
     else:
-        _state_path(out).unlink(missing_ok=True)
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
                  "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
                  "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale,
                  "calibration_sha256": getattr(stored, "sha256", None), "photo_sha256": {}}
+        # the new run's state replaces the old one in one step (never deleted first, never lost)
+        write_text_atomic(_state_path(out), json.dumps(state, indent=1))
     remove_leftover_temps(out)
     result = RunResult()
     try:
