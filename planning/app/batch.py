@@ -10,12 +10,16 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import signal
+import sys
+import threading
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, write_text_atomic
 
-__all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
+__all__ = ["BatchJob", "BatchInterrupted", "process_photo", "run_batch", "write_batch_tables"]
 
 _CACHE: dict = {}
 
@@ -176,16 +180,89 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             if progress:
                 progress(row)
     else:
-        from concurrent.futures import ProcessPoolExecutor, as_completed
-
-        with ProcessPoolExecutor(max_workers=workers, mp_context=pool_context) as pool:
-            futures = [pool.submit(process_photo, job) for job in jobs]
-            for fut in as_completed(futures):
-                row = fut.result()
+        pool = pool_context.Pool(workers, initializer=_worker_start, initargs=(os.getpid(),))
+        try:
+            for row in pool.imap_unordered(process_photo, jobs):
                 rows[row["photo"]] = row
                 if progress:
                     progress(row)
+        except KeyboardInterrupt:
+            # Ctrl-C: the workers (which ignore SIGINT) are stopped at once; a second Ctrl-C while they
+            # go must not leave them behind or print a trace
+            previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+            try:
+                pool.terminate()
+                pool.join()
+                _stop_fork_server()
+            finally:
+                signal.signal(signal.SIGINT, previous)
+            raise BatchInterrupted(len(rows), len(photos)) from None
+        else:
+            pool.close()
+            pool.join()
     return [rows[p.name] for p in photos]
+
+
+class BatchInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a batch: the workers are gone, every finished photo's row.json is kept."""
+
+    def __init__(self, done: int, total: int):
+        super().__init__(f"{done} of {total}")
+        self.done, self.total = done, total
+
+
+def _stop_fork_server() -> None:
+    """End the fork server now rather than when it notices the batch is gone (it would first unload
+    the workers' modules, a second or more): the batch is stopping and starts no more workers."""
+    from multiprocessing import forkserver
+
+    pid = getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None)
+    if pid:
+        with contextlib.suppress(OSError):
+            os.kill(pid, signal.SIGKILL)
+            os.waitpid(pid, 0)
+
+
+def _worker_start(parent_pid: int) -> None:
+    """In each worker: Ctrl-C is the parent's to handle (it stops the pool), and the worker ends when
+    the batch process ends, however it ends (kill -9 included): on Linux the kernel kills it when its
+    parent goes (prctl PR_SET_PDEATHSIG), and everywhere a watchdog thread ends it when the batch
+    process is gone."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, _exit_on_term)      # the pool's stop: unwind, so a write in progress is removed
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(OSError, AttributeError):
+            import ctypes
+
+            ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)     # 1 = PR_SET_PDEATHSIG
+    ppid = os.getppid()
+
+    def watch() -> None:
+        while True:
+            time.sleep(0.2)
+            if os.getppid() != ppid or not _alive(parent_pid):
+                os._exit(1)
+
+    threading.Thread(target=watch, name="gripsight-parent-watch", daemon=True).start()
+
+
+def _exit_on_term(signum, frame) -> None:
+    raise SystemExit(1)
+
+
+def _alive(pid: int) -> bool:
+    """True while ``pid`` runs (a zombie, killed but not yet reaped, counts as gone on Linux)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
 
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell

@@ -36,18 +36,27 @@ def one_line(text) -> str:
     return "".join(out)
 
 
-def control_character_paths(data, path: tuple = ()) -> list[tuple[tuple, str]]:
+def control_character_paths(data) -> list[tuple[tuple, str]]:
     """Every key path in parsed YAML whose key or text value holds a control character: (path, the
-    offending text shown escaped)."""
+    offending text shown escaped). Iterative, and each container is visited once (YAML aliases can
+    make a structure refer to itself)."""
     found = []
-    if isinstance(data, dict):
-        for key, value in data.items():
-            if isinstance(key, str) and has_control(key):
-                found.append((path + (one_line(key),), one_line(key)))
-            found += control_character_paths(value, path + (one_line(key) if isinstance(key, str) else key,))
-    elif isinstance(data, list):
-        for i, value in enumerate(data):
-            found += control_character_paths(value, path + (i,))
-    elif isinstance(data, str) and has_control(data):
-        found.append((path, one_line(data)))
-    return found
+    seen: set[int] = set()
+    stack: list[tuple[tuple, object]] = [((), data)]
+    while stack:
+        path, node = stack.pop()
+        if isinstance(node, (dict, list)):
+            if id(node) in seen:
+                continue
+            seen.add(id(node))
+        if isinstance(node, dict):
+            for key, value in node.items():
+                shown = one_line(key) if isinstance(key, str) else key
+                if isinstance(key, str) and has_control(key):
+                    found.append((path + (shown,), shown))
+                stack.append((path + (shown,), value))
+        elif isinstance(node, list):
+            stack.extend((path + (i,), value) for i, value in enumerate(node))
+        elif isinstance(node, str) and has_control(node):
+            found.append((path, one_line(node)))
+    return sorted(found, key=lambda f: [str(k) for k in f[0]])

@@ -284,11 +284,19 @@ def batch(
     check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
                                                        "--calibration": calibration})
     n = len(photos_in(folder))
-    with output_lock(output_dir(out), "batch"), _progress() as bar:
-        task = bar.add_task("batch", total=n)
-        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task), resume=resume)
-        totals = write_batch_tables(out, rows, cfg)
+    from gripsight.app.batch import BatchInterrupted
+
+    try:
+        with output_lock(output_dir(out), "batch"), _progress() as bar:
+            task = bar.add_task("batch", total=n)
+            rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                             progress=lambda row: bar.advance(task), resume=resume)
+            totals = write_batch_tables(out, rows, cfg)
+    except KeyboardInterrupt as exc:
+        done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
+        typer.echo(f"interrupted{done}; every finished photo's row and outputs are kept in {out}; resume with: "
+                   f"gripsight batch {folder} --out {out} --resume", err=True)
+        raise typer.Exit(130) from None
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)
