@@ -27,7 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from gripsight.planning.arm import Arm, Reason
-from gripsight.planning.checks import Rejection
+from gripsight.planning.checks import Check, Rejection
 from gripsight.planning.errors import Problem
 from gripsight.planning.motion import SampledChain, SegmentKind
 from gripsight.planning.targets import PartTarget
@@ -187,7 +187,7 @@ def held_part_failure(chain: SampledChain, specs: list, t0_s: float = 0.0) -> tu
             what = ("the table" if spec.floor_mm is None else "the tray floor" if kind == "descend"
                     else "the table, trays and markers it passes")
             limit = 0.0 if spec.floor_mm is None else spec.floor_mm
-            found.append((i, Rejection("held_part", f"part {spec.part.id} ({spec.part.height_mm:g} mm tall) would "
+            found.append((i, Rejection(Check.HELD_PART, f"part {spec.part.id} ({spec.part.height_mm:g} mm tall) would "
                                        f"hang to z={bottom[i]:.1f} mm, below {limit:g} mm over {what}",
                                        kind, float(t_s[i]), float(bottom[i]), limit, "mm")))
         if spec.obstacles:
@@ -205,7 +205,7 @@ def held_part_failure(chain: SampledChain, specs: list, t0_s: float = 0.0) -> tu
                 if hit.size:
                     i = int(hit[0])
                     top_txt = f"top z={ob.z_hi_mm:g} mm" + (f" + {ob.clearance_mm:g} mm" if ob.clearance_mm else "")
-                    found.append((i, Rejection("held_part", f"part {spec.part.id} (bottom at z={bottom[i]:.1f} mm) "
+                    found.append((i, Rejection(Check.HELD_PART, f"part {spec.part.id} (bottom at z={bottom[i]:.1f} mm) "
                                                f"would hit {ob.name} ({top_txt}) at ({xyz[i, 0]:.1f}, {xyz[i, 1]:.1f}) mm",
                                                kind, float(t_s[i]), float(bottom[i]), ob.z_hi_mm + ob.clearance_mm, "mm")))
         if found:

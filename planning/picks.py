@@ -17,12 +17,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from enum import StrEnum
 
 import numpy as np
 
 from gripsight.planning.arm import Arm
 from gripsight.planning.cellcheck import cell_problems
-from gripsight.planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
+from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
+                                       first_failure, grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
 from gripsight.planning.held import HeldSpec, PickHeights, held_part_failure, part_obstacle, pick_heights, static_obstacles
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
@@ -30,18 +32,25 @@ from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["Planner", "Plan", "PartOutcome", "PlannedPick", "JointSamples"]
+__all__ = ["Planner", "Plan", "PartOutcome", "PickStatus", "PlannedPick", "JointSamples"]
 
 _MIN_ARC_BULGE_MM = 0.5     # a transfer whose via point is closer than this to the chord is straight
 _SAME_POINT_MM = 1e-6
 
 
+class PickStatus(StrEnum):
+    """What became of one part."""
+
+    PLANNED = "planned"
+    REJECTED = "rejected"
+
+
 @dataclass(frozen=True)
 class PartOutcome:
-    """What became of one part: ``planned``, or ``rejected`` with a :class:`Rejection`."""
+    """What became of one part: planned, or rejected with a :class:`Rejection`."""
 
     part: PartTarget
-    status: str
+    status: PickStatus
     bin_name: str | None
     rejection: Rejection | None = None
 
@@ -279,7 +288,7 @@ class Planner:
         return "reject" if "reject" in self.cell.bins else None
 
     def plan(self, parts: list[PartTarget], order: str = "nearest", start_joints_rad=None,
-             end_at_home: bool = True, t0_s: float = 0.0) -> Plan:
+             end_at_home: bool = True, t0_s: float = 0.0, bin_room: dict[str, int] | None = None) -> Plan:
         """Plan every part; rejected parts carry their reason, the rest form one checked sequence.
 
         Parameters
@@ -293,6 +302,9 @@ class Planner:
             Finish with a move back to the home pose.
         t0_s : float
             Clock time of the first sample (for runs that continue a previous plan).
+        bin_room : dict of str to int, optional
+            Places left per bin (bins with a capacity): parts beyond it, in the given order, are rejected
+            ``bin_full``.
         """
         if order not in ("nearest", "detected"):
             raise ValueError(f"order: expected 'nearest' or 'detected', got {order!r}")
@@ -307,9 +319,9 @@ class Planner:
             if self.bin_for(part) is not None:
                 tallest_other = max(all_heights[:k] + all_heights[k + 1:], default=0.0)
                 heights[part.id] = self.heights_for(part, tallest_other)
-        for part, rej in zip(parts, self._precheck(parts, heights)):
+        for part, rej in zip(parts, self._precheck(parts, bin_room, heights)):
             if rej is not None:
-                outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), rej)
+                outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), rej)
             else:
                 candidates.append(part)
         if order == "nearest" and len(candidates) > 1:
@@ -348,7 +360,7 @@ class Planner:
             for k in range(min(failed, len(runs))):
                 part, own = candidates[k], sampled[bounds[k]:bounds[k + 1]]
                 picks.append(PlannedPick(part.id, part.class_name, self.bin_for(part), own, t))
-                outcomes[part.id] = PartOutcome(part, "planned", self.bin_for(part))
+                outcomes[part.id] = PartOutcome(part, PickStatus.PLANNED, self.bin_for(part))
                 self._table.pop(part.id, None)
                 accepted += own
                 t += sum(s.duration_s for s in own)
@@ -361,7 +373,7 @@ class Planner:
                     warnings.append(self._home_failed(failure[1]))
                 break
             part = candidates[failed]
-            outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), failure[1])
+            outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), failure[1])
             candidates = candidates[failed + 1:]
         q_here = accepted[-1].joints_rad[-1] if accepted else q0
         if not home_done and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
@@ -390,19 +402,27 @@ class Planner:
     def _home_failed(rejection: Rejection) -> str:
         return f"the move back to the home pose failed a check and was left out: {rejection.describe()}"
 
-    def _precheck(self, parts: list[PartTarget], heights: dict[str, PickHeights]) -> list[Rejection | None]:
-        """Reasons known before any motion, per part: the photo's verdict, no bin, grip fit, grip or
-        above-part point unreachable (every part's two points through one IK call and one check pass,
-        again after each point that fails), the held part's carry or release height out of reach."""
+    def _precheck(self, parts: list[PartTarget], bin_room: dict[str, int] | None,
+                  heights: dict[str, PickHeights]) -> list[Rejection | None]:
+        """Reasons known before any motion, per part: the photo's verdict, no bin, a full bin, grip fit,
+        grip or above-part point unreachable (every part's two points through one IK call and one check
+        pass, again after each point that fails), the held part's carry or release height out of reach."""
         out: list[Rejection | None] = [None] * len(parts)
+        room = dict(bin_room or {})
         probed = []
         for k, part in enumerate(parts):
-            if part.vision_status not in ("ok", "unknown_colour"):
-                out[k] = Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
-            elif self.bin_for(part) is None:
-                out[k] = Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no "
-                                                    f"'reject' bin")
+            name = self.bin_for(part)
+            if not part.pickable:
+                out[k] = Rejection(Check.PHOTO, part.vision_detail or "rejected by the photo analysis",
+                                   subject=part.vision_status)
+            elif name is None:
+                out[k] = Rejection(Check.UNKNOWN_CLASS, f"class '{part.class_name}' has no bin and the cell has no "
+                                                        f"'reject' bin")
+            elif name in room and room[name] <= 0:
+                out[k] = Rejection(Check.BIN_FULL, f"bin '{name}' is full")
             else:
+                if name in room:
+                    room[name] -= 1
                 out[k] = grip_fit_rejection(part, self.cell.arm.gripper)
                 if out[k] is None:
                     probed.append(k)
@@ -413,17 +433,12 @@ class Planner:
         sol = self.arm.inverse(pts)
         first = 0
         while first < len(pts):
-            # the probes are separate points, not a motion: no speeds or branch flips between them; the
-            # sample "times" are their indices, so the failure says which point it is
-            n = len(pts) - first
-            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[first]), 0.0, np.arange(n, dtype=float),
-                                   pts[first:], sol.joints_rad[first:], sol.reason[first:])
-            bad = first_failure(self.ctx, probe, dt_steps=np.zeros(n - 1), flip_allowed=np.ones(n - 1, bool))
+            # the probes are separate points, not a motion: no speeds or branch changes between them
+            bad = first_failing_sample(self.ctx, pts[first:], sol.joints_rad[first:], sol.reason[first:], timed=False)
             if bad is None:
                 break
-            i = first + int(round(bad.time_s))
-            out[probed[i // 2]] = Rejection(bad.check, bad.detail, ("descend", "transfer")[i % 2], None,
-                                            bad.value, bad.limit, bad.unit)
+            i = first + bad.index
+            out[probed[i // 2]] = bad.rejection.at(("descend", "transfer")[i % 2], None)
             first = (i // 2 + 1) * 2
         self._precheck_held(parts, heights, [k for k in probed if out[k] is None], out)
         return out
@@ -447,7 +462,7 @@ class Planner:
             h = heights[parts[k].id]
             need = ("pass over the table, trays, raised markers and other parts" if label == "carry"
                     else "stay above the tray floor")
-            out[k] = Rejection("held_part", f"a part {parts[k].height_mm:g} mm tall hangs {h.hang_mm:g} mm below "
+            out[k] = Rejection(Check.HELD_PART, f"a part {parts[k].height_mm:g} mm tall hangs {h.hang_mm:g} mm below "
                                             f"the tool; to {need} the tool must be at z={z:.1f} mm at "
                                             f"({x:.1f}, {y:.1f}) mm: {why}", "rise" if label == "carry" else "descend",
                                None, z, None, "mm")

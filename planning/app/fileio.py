@@ -6,6 +6,7 @@ An interrupted write leaves the old file or none, never half a file.
 from __future__ import annotations
 
 import contextlib
+from datetime import datetime, timezone
 import os
 import re
 import tempfile
@@ -115,3 +116,8 @@ def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
             with contextlib.suppress(OSError):
                 os.unlink(tmp)
         raise
+
+
+def utc_now() -> str:
+    """The time now in UTC, ISO 8601 to the second (``2026-12-02T15:30:00Z``): the one stamp of every output."""
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
