@@ -20,7 +20,7 @@ import numpy as np
 
 from gripsight.app.errors import GripsightError
 
-__all__ = ["JointFileRefused", "check_joint_file_text"]
+__all__ = ["JointFileRefused", "check_joint_file_text", "refusal"]
 
 _CLOCK_TOL_S = 2e-4            # times are written with 4 decimals
 _SPEED_TOL_DEG_S = 1e-3        # angles are written with 6 decimals; over 0.02 s that is 5e-5 deg/s
@@ -30,7 +30,8 @@ class JointFileRefused(GripsightError):
     """A joint file failed the whole-file check: not written (a bug; please report it)."""
 
 
-def _refuse(name: str, what: str) -> JointFileRefused:
+def refusal(name: str, what: str) -> JointFileRefused:
+    """The error that refuses to write joint file ``name`` because of ``what``."""
     return JointFileRefused(f"{name}: not written: the whole-file check found {what} "
                             "(a bug in gripsight; please report it with the command you ran)")
 
@@ -55,11 +56,11 @@ def check_joint_file_text(text: str, cell, name: str = "joints.csv") -> int:
     lines = [line for line in text.split("\n") if line and not line.startswith("#")]
     rows = list(csv.reader(lines))
     if not rows:
-        raise _refuse(name, "no header")
+        raise refusal(name, "no header")
     header, rows = rows[0], rows[1:]
     if any(len(r) != len(header) for r in rows):
         bad = next(i for i, r in enumerate(rows) if len(r) != len(header))
-        raise _refuse(name, f"row {bad + 1} with {len(rows[bad])} fields, not {len(header)}")
+        raise refusal(name, f"row {bad + 1} with {len(rows[bad])} fields, not {len(header)}")
     if not rows:
         return 0
     col = {c: i for i, c in enumerate(header)}
@@ -67,13 +68,13 @@ def check_joint_file_text(text: str, cell, name: str = "joints.csv") -> int:
         t_s = np.array([float(r[col["time_s"]]) for r in rows])
         q_deg = np.array([[float(r[col[c]]) for c in ("base_deg", "shoulder_deg", "elbow_deg")] for r in rows])
     except (KeyError, ValueError) as exc:
-        raise _refuse(name, f"a row that is not numbers where numbers belong ({exc})") from None
+        raise refusal(name, f"a row that is not numbers where numbers belong ({exc})") from None
     dt_s = 1.0 / cell.motion.sample_hz
     steps = np.diff(t_s)
     off = np.flatnonzero(np.abs(steps - dt_s) > _CLOCK_TOL_S)
     if off.size:
         i = int(off[0])
-        raise _refuse(name, f"time going from {t_s[i]:.4f} s to {t_s[i + 1]:.4f} s at row {i + 2} "
+        raise refusal(name, f"time going from {t_s[i]:.4f} s to {t_s[i + 1]:.4f} s at row {i + 2} "
                             f"(the sample clock steps {dt_s:g} s)")
     joints = cell.arm.joints
     limit = np.array([joints.base.max_speed_deg_s, joints.shoulder.max_speed_deg_s, joints.elbow.max_speed_deg_s])
@@ -82,7 +83,7 @@ def check_joint_file_text(text: str, cell, name: str = "joints.csv") -> int:
     if over.size:
         i, j = (int(v) for v in over[0])
         joint = ("base", "shoulder", "elbow")[j]
-        raise _refuse(name, f"{joint} stepping {q_deg[i + 1, j] - q_deg[i, j]:+.3f} deg in {dt_s:g} s at row {i + 2} "
+        raise refusal(name, f"{joint} stepping {q_deg[i + 1, j] - q_deg[i, j]:+.3f} deg in {dt_s:g} s at row {i + 2} "
                             f"({speed[i, j]:.1f} deg/s > {limit[j]:g} deg/s)")
     grip = [r[col["gripper"]] for r in rows]
     segment = [r[col["segment"]] for r in rows]
@@ -90,6 +91,6 @@ def check_joint_file_text(text: str, cell, name: str = "joints.csv") -> int:
         if grip[i] != grip[i - 1]:
             planned = {"closed": "close", "open": "open"}.get(grip[i])
             if segment[i] != planned:
-                raise _refuse(name, f"the gripper turning {grip[i]} at row {i + 1} in a '{segment[i]}' move "
+                raise refusal(name, f"the gripper turning {grip[i]} at row {i + 1} in a '{segment[i]}' move "
                                     "(only a close or open dwell changes it)")
     return len(rows)

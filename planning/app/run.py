@@ -92,7 +92,7 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
     by the hash recorded in the run state when it was written (each photo's first row repeats the last
     one's end); a photo without one (an error, an old file) adds nothing. The whole file is checked
     before it is written (:func:`gripsight.app.jointcheck.check_joint_file_text`)."""
-    from gripsight.app.jointcheck import _refuse, check_joint_file_text
+    from gripsight.app.jointcheck import refusal, check_joint_file_text
 
     buf = io.StringIO()
     header_done = False
@@ -106,7 +106,7 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
         except OSError:
             raw = b""
         if _sha256(raw) != written[name]:
-            raise _refuse(str(out / "run.csv"), f"{path} changed since this run wrote it")
+            raise refusal(str(out / "run.csv"), f"{path} changed since this run wrote it")
         text = raw.decode("utf-8")
         comments = [line for line in text.splitlines() if line.startswith("#")]
         rows = _csv_rows(text)
