@@ -105,7 +105,8 @@ def test_ctrl_c_stops_the_batch_cleanly_every_time(tmp_path, photos, capsys):
         assert _rows(out) >= seen                          # finished rows kept
         for row in out.glob("*/row.json"):
             assert json.loads(row.read_text())["photo"] == row.parent.name
-    print(f"Ctrl-C trials {CTRL_C_TRIALS}: stop times {', '.join(f'{s:.2f}' for s in stops)} s")
+    with capsys.disabled():
+        print(f"Ctrl-C trials {CTRL_C_TRIALS}: stop times {', '.join(f'{s:.2f}' for s in stops)} s")
     # the last trial's batch resumes to a whole batch
     assert main(["batch", str(photos), "--workers", "2", "--out", str(out), "--resume"]) == 0
     capsys.readouterr()
