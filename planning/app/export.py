@@ -16,7 +16,8 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, utc_now, write_text_atomic
+from gripsight.app.fileio import output_dir, utc_now, write_files_atomic
+from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
@@ -91,14 +92,16 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
     out.write("# gripsight joint sequence\n")
     for line in SAFETY_LINES:
         out.write(f"# SAFETY: {line}\n")
-    out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    out.write(f"# cell: {one_line(cell.cell)}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
     if plan.speed_scale != 1.0:
         out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
+    names = {pid: one_line(pid) for pid in set(s.part_id)}      # ids from a parts file or a photo: one line each
+    part_ids = [names[pid] for pid in s.part_id]
     for i in range(len(s.t_s)):
-        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], s.part_id[i],
+        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], part_ids[i],
                          f"{s.xyz_mm[i, 0]:.4f}", f"{s.xyz_mm[i, 1]:.4f}", f"{s.xyz_mm[i, 2]:.4f}",
                          f"{q_deg[i, 0]:.6f}", f"{q_deg[i, 1]:.6f}", f"{q_deg[i, 2]:.6f}",
                          "closed" if s.gripper_closed[i] else "open",
@@ -110,11 +113,17 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
                        calibration: dict | None = None, plots: bool = True) -> dict:
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
 
+    from gripsight.app.jointcheck import check_joint_file_text
+
     out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
-    write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))
-    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    text = joints_csv_text(plan, cell, arm, created)
+    check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
+    # both new files written and flushed before either takes its name: a failure (a full disk) leaves
+    # the old pair, never a new joints.csv beside an old plan.json
+    write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
+                        (out / "plan.json", (json.dumps(data, indent=2) + "\n").encode("utf-8"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

@@ -139,14 +139,17 @@ def calibrate(
     from gripsight.vision.overlay import calibration_overlay
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
+    out = out or default_calibration_path(cfg)
+    overlay = overlay or out.with_name(out.stem + "_overlay.png")
+    check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
     cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
-    out = out or default_calibration_path(cfg)
     moved = write_calibration(out, cal, cfg, photo)
-    overlay = overlay or out.with_name(out.stem + "_overlay.png")
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
     write_bytes_atomic(overlay, buf.tobytes())
     if as_json:
@@ -203,8 +206,12 @@ def check(
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "the calibration file": calibration or default_calibration_path(cfg)})
     stored = read_calibration(calibration or default_calibration_path(cfg))
     image = read_photo(photo)
     report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,

@@ -31,7 +31,12 @@ def detect(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.errors import GripsightError
 
-    cfg = load_cell(_find_cell(cell, photo))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "--calibration": calibration})
     if sample is not None:
         _sample_colour(photo, cfg, sample)
         return
@@ -131,7 +136,12 @@ def plan(
         raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
     if (photo is None) == (parts is None):
         raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
-    cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo if photo is not None else parts)
+    cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo": photo, "--parts": parts, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     arm = Arm.from_config(cfg.arm)
     planner = Planner(cfg, arm, speed_scale=speed_scale)
     if parts is not None:
@@ -209,7 +219,12 @@ def run(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.run import photos_in, run_folder
 
-    cfg = load_cell(_find_cell(cell, folder))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, folder)
+    cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
@@ -268,14 +283,26 @@ def batch(
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     n = len(photos_in(folder))
-    with output_lock(output_dir(out), "batch"), _progress() as bar:
-        task = bar.add_task("batch", total=n)
-        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task), resume=resume)
-        totals = write_batch_tables(out, rows, cfg)
+    from gripsight.app.batch import BatchInterrupted
+
+    try:
+        with output_lock(output_dir(out), "batch"), _progress() as bar:
+            task = bar.add_task("batch", total=n)
+            rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                             progress=lambda row: bar.advance(task), resume=resume)
+            totals = write_batch_tables(out, rows, cfg)
+    except KeyboardInterrupt as exc:
+        done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
+        typer.echo(f"interrupted{done}; every finished photo's row and outputs are kept in {out}; resume with: "
+                   f"gripsight batch {folder} --out {out} --resume", err=True)
+        raise typer.Exit(130) from None
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)
