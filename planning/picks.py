@@ -331,7 +331,7 @@ class Planner:
         out: list[Rejection | None] = [None] * len(parts)
         probed = []
         for k, part in enumerate(parts):
-            if part.vision_status not in ("ok", "unknown_colour"):
+            if part.vision_status not in ("ok", "unknown_colour", "unknown_shape"):
                 out[k] = Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
             elif self.bin_for(part) is None:
                 out[k] = Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no "

@@ -40,13 +40,15 @@ from gripsight.vision.topface import (
     footprint_centre,
     min_rect,
     outlines_geometry,
+    score_top_faces,
     top_face_guess,
 )
+from gripsight.vision.shapes import ColourGroup, colour_groups
 from gripsight.vision.whitebalance import Illumination, fit_illumination
 
 __all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
 
-STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour")
+STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour", "unknown_shape")
 _UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
 _MIN_RATIO, _MAX_RATIO = 0.45, 1.6
 _NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
@@ -198,9 +200,10 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     if min(region.valid_small.shape) == 0 or not cell.parts:
         notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
-    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts,
+    groups = colour_groups(cell.parts)
+    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
+    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -245,15 +248,20 @@ class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, parallax, seen_as, camera_centre_mm):
+    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
-        self.names = list(cell.parts)
+        self.groups: dict[str, ColourGroup] = groups
+        self.names = list(groups)
         self.nadir = np.asarray(camera_centre_mm[:2], float)
         self.cz = float(camera_centre_mm[2])
         self.kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
         self.tallest = max(c.height_mm for c in cell.parts.values())
         self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+
+    def k_of(self, height_mm: float) -> float:
+        """The top face's scale about the nadir for a part of this height (1 without parallax)."""
+        return self.cz / (self.cz - height_mm) if self.parallax else 1.0
 
 
 @dataclass
@@ -269,6 +277,7 @@ class _Outline:
     sub: np.ndarray
     x: int
     y: int
+    group: ColourGroup | None = None          # its colour group, when that holds several classes
 
 
 def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
@@ -287,10 +296,13 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
         mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, search.kernel)
         contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
         unknown = k_label == len(names) + 1
-        name = "unknown" if unknown else names[k_label - 1]
-        cls = None if unknown else search.cell.parts[name]
-        height = search.tallest if unknown else cls.height_mm
-        k = cz / (cz - height) if search.parallax else 1.0
+        colour = None if unknown else search.groups[names[k_label - 1]]
+        several = colour is not None and len(colour.members) > 1
+        name = "unknown" if unknown else (colour.name if several else colour.members[0])
+        cls = None if unknown or several else search.cell.parts[name]
+        height = cls.height_mm if cls is not None else (
+            max(search.cell.parts[n].height_mm for n in colour.members) if several else search.tallest)
+        k = search.k_of(height)
         for contour in contours:
             if len(contour) < 10:                             # a speck of a few pixels
                 continue
@@ -301,7 +313,7 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
             sub = np.zeros((h, w), np.uint8)
             cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
             out.append(_Outline(name, cls, float(height), k, (outline + (x0 + u0, y0 + v0)).astype(float), sub,
-                                x + x0, y + y0))
+                                x + x0, y + y0, colour if several else None))
     return out
 
 
@@ -315,10 +327,14 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
     outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
+    outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
     for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
+        shape_misfit = unknown and o.group is not None
+        if shape_misfit:
+            name = "unknown"                    # no class: the reject bin
         area = float(area_mapped) / (k * k)
         if unknown and area < _MIN_UNKNOWN_MM2:
             continue
@@ -329,15 +345,19 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
         moments = cv2.moments(sub, binaryImage=True)
         pixel_uv = (moments["m10"] / moments["m00"] + x + u0, moments["m01"] / moments["m00"] + y + v0)
         whole = [(m, outline_mm, o.outline_px, area, pixel_uv)]
-        de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
+        de = float("nan") if unknown and not shape_misfit else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
         cut = bool(search.edge_band[y:y + h, x:x + w][inside].any())
         mode = search.seen_as or (cls.seen_as if cls is not None else "auto")
         pieces, status, reason = whole, "ok", ""
         if unknown:
+            what = f"a part of {o.group.name.replace('+', ' or ')}'s colour" if shape_misfit else "an unknown colour"
             if cut:
-                status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
+                status, reason = "cut_by_edge", f"{what} cut by the edge of the photo or a marker"
             elif area > _UNKNOWN_MAX_RATIO * search.typical:
                 status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
+            elif shape_misfit:
+                status, reason = "unknown_shape", (f"colour of {', '.join(o.group.members)} but the shape or size of "
+                                                   f"none ({_shape_words(o, outline_mm, k)})")
             else:
                 status, reason = "unknown_colour", "colour matches no class"
         elif cut:
@@ -356,6 +376,52 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
+
+
+def _choose_classes(search: _Search, outlines, outlines_mm, areas, centroids, normals) -> list[_Outline]:
+    """Give each blob of a colour group of several classes the class whose shape and size fit it
+    (:mod:`vision.shapes`), all blobs' candidate fits at once. A blob of a part's size that no class
+    fits stays ``unknown`` (with its group: ``unknown_shape``); one too large or too small for every
+    class takes the class whose area it is nearest a whole number of (touching parts, or a speck)."""
+    problems, owners, fallback = [], [], {}
+    for i, o in enumerate(outlines):
+        if o.group is None:
+            continue
+        ratios = []
+        for name in o.group.members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            expected = expected_area_mm2(cls)
+            ratio = float(areas[i]) / (k * k) / expected
+            ratios.append(ratio)
+            if _MIN_RATIO < ratio < _MAX_RATIO:
+                guess = top_face_guess(centroids[i], areas[i], search.nadir, k, expected)
+                problems.append(TopFaceProblem.of_class(outlines_mm[i], normals[i], guess, search.nadir, k, cls,
+                                                        min_rect(outlines_mm[i], k)[2]))
+                owners.append((i, name))
+        if not any(_MIN_RATIO < r < _MAX_RATIO for r in ratios):
+            off = [abs(r - max(round(r), 1)) / max(round(r), 1) for r in ratios]
+            fallback[i] = o.group.members[int(np.argmin(off))]
+    best: dict[int, tuple[str, float]] = {}
+    for (i, name), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (i not in best or score.median_mm < best[i][1]):
+            best[i] = (name, score.median_mm)
+    out = []
+    for i, o in enumerate(outlines):
+        name = best[i][0] if i in best else fallback.get(i)
+        if o.group is None or name is None:
+            out.append(o)
+            continue
+        cls = search.cell.parts[name]
+        out.append(replace(o, name=name, cls=cls, height_mm=float(cls.height_mm), k=search.k_of(cls.height_mm),
+                           group=None))
+    return out
+
+
+def _shape_words(o: _Outline, outline_mm, k: float) -> str:
+    """The measured footprint of a blob that fits no class, in words for its reason."""
+    length, width, _ = min_rect(outline_mm, k)
+    return f"its outline measures {length:.0f} x {width:.0f} mm"
 
 
 def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:

@@ -60,7 +60,7 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
         if o.rejection is None:
             continue
         by_reason[o.rejection.check] = by_reason.get(o.rejection.check, 0) + 1
-        if o.part.vision_status not in ("ok", "unknown_colour"):
+        if o.part.vision_status not in ("ok", "unknown_colour", "unknown_shape"):
             continue                            # the detection overlay already says why
         uv = table_point_px(reg.mapping, reg.camera_centre_mm, [[*o.part.xy_mm, o.part.height_mm]])[0]
         c = tuple(np.round(uv).astype(int))

@@ -128,7 +128,7 @@ def _respect_capacity(targets, planner, bin_room: dict):
     out = []
     for t in targets:
         name = planner.bin_for(t)
-        if t.vision_status in ("ok", "unknown_colour") and name is not None and name in room:
+        if t.vision_status in ("ok", "unknown_colour", "unknown_shape") and name is not None and name in room:
             if room[name] <= 0:
                 t = replace(t, vision_status="bin_full", vision_detail=f"bin '{name}' is full")
             else:
