@@ -161,12 +161,14 @@ def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
     grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(centre_px[None])[0])
     outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
     mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
+    # markers on the table are left in: their paper and ink are not a part's colour, and a part beside or
+    # on one is whole (whether it lies on a marker is decided from its footprint, in table mm). A raised
+    # marker's box hides what is behind it: the marker as seen is masked, and any marker not in the layout.
     pad = 2.0
-    for marker_id, m in cell.markers.layout.items():
-        paper = marker_paper_corners_mm(m, cell.markers.size_mm, cell.markers.margin_mm + pad)[:, :2]
-        if m.z == 0:
-            cv2.fillPoly(mask, [np.round(_poly_px(mapping, paper, 4) * 8).astype(np.int32)], 0, shift=3)
-    for d in detections:          # raised markers (and any marker) as seen
+    for d in detections:
+        placement = cell.markers.layout.get(d.id)
+        if placement is not None and placement.z == 0:
+            continue
         c = d.corners_px.mean(axis=0)
         grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + pad) / cell.markers.size_mm)
         cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
@@ -217,10 +219,44 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         outside = ~points_in_polygon([p.xy_mm for p in found], cell.work_area)
         found = [replace(p, status="cut_by_edge", reason="lies across the edge of the work area")
                  if out and p.status == "ok" else p for p, out in zip(found, outside)]
+        found = _on_markers(found, cell)
     found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
     parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
              for i, p in enumerate(found)]
     return Detection(parts, illumination, notes)
+
+
+def _footprint_points_mm(part: DetectedPart, cls) -> np.ndarray:
+    """Points (N, 2) on and inside a found part's footprint (its class's size and shape, its yaw)."""
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    s = np.linspace(-0.5, 0.5, 7)
+    gx, gy = np.meshgrid(s * fp[0], s * fp[1])
+    local = np.column_stack([gx.ravel(), gy.ravel()])
+    if cls.shape == "cylinder":
+        local = local[(local[:, 0] / fp[0]) ** 2 + (local[:, 1] / fp[1]) ** 2 <= 0.25 + 1e-9]
+    yaw = np.radians(part.yaw_deg)
+    rot = np.array([[np.cos(yaw), -np.sin(yaw)], [np.sin(yaw), np.cos(yaw)]])
+    return local @ rot.T + np.asarray(part.xy_mm, float)
+
+
+def _on_markers(found: list[DetectedPart], cell) -> list[DetectedPart]:
+    """A part whose footprint (in table mm) overlaps a marker lies on it: cut. The marker is its black
+    square and the inner half of its white margin (the quiet zone its detection needs); a part on the
+    outer edge of the paper (0.02 mm thick) is whole and is picked."""
+    papers = {i: marker_paper_corners_mm(m, cell.markers.size_mm, 0.5 * cell.markers.margin_mm)[:, :2]
+              for i, m in cell.markers.layout.items()}
+    out = []
+    for p in found:
+        cls = cell.parts.get(p.class_name)
+        if p.status == "ok" and cls is not None:
+            pts = _footprint_points_mm(p, cls)
+            near = [i for i, paper in papers.items()
+                    if np.linalg.norm(paper.mean(axis=0) - p.xy_mm) < 2 * max(cls.footprint_mm) + 2 * cell.markers.size_mm]
+            hit = next((i for i in near if points_in_polygon(pts, papers[i]).any()), None)
+            if hit is not None:
+                p = replace(p, status="cut_by_edge", reason=f"lies on marker {hit}")
+        out.append(p)
+    return out
 
 
 @dataclass
