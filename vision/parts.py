@@ -278,6 +278,8 @@ class _Blob:
     delta_e: float
     rect: tuple[float, float, float]            # the outline's length, width (footprint mm) and yaw
     problem: TopFaceProblem | None = None
+    piece_classes: list | None = None           # per piece of a split blob of several classes' colour:
+    #                                             (name, class, k, top-face fit or None)
 
 
 class _Search:
@@ -314,6 +316,8 @@ class _Outline:
     x: int
     y: int
     group: ColourGroup | None = None          # its colour group, when that holds several classes
+    members: tuple[str, ...] = ()             # once a class is chosen: the classes of its colour
+    split_into: int = 0                       # parts side by side its outline's length says it holds
 
 
 def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
@@ -403,10 +407,13 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             ratio = area / expected
             if ratio < _MIN_RATIO:
                 status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
-            elif ratio > _MAX_RATIO:
-                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
+            elif ratio > _MAX_RATIO or o.split_into >= 2:
+                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected,
+                                                max(ratio, o.split_into), name, whole)
         blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
                      min_rect(outline_mm, k))
+        if len(pieces) > 1 and o.members and parallax:
+            blob.piece_classes = _classify_pieces(search, blob, o.members)
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
             blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
@@ -445,13 +452,77 @@ def _choose_classes(search: _Search, outlines, outlines_mm, areas, centroids, no
     out = []
     for i, o in enumerate(outlines):
         name = best[i][0] if i in best else fallback.get(i)
+        split_into = 0
+        if o.group is not None and name is None:
+            # no top face fits (shading, a shadow): its size alone, if that says one class and no other
+            name = _by_size(search, o.group.members, outlines_mm[i])
+        if o.group is not None and name is None:
+            # no class fits it as one part: is it parts side by side (an outline a whole number of parts long)?
+            name, split_into = _row_of_parts(search, o.group.members, outlines_mm[i])
         if o.group is None or name is None:
             out.append(o)
             continue
         cls = search.cell.parts[name]
         out.append(replace(o, name=name, cls=cls, height_mm=float(cls.height_mm), k=search.k_of(cls.height_mm),
-                           group=None))
+                           group=None, members=o.group.members, split_into=split_into))
     return out
+
+
+_SIZE_FIT = 0.15          # a footprint side within 15 % of a class's: that size
+
+
+def _by_size(search: _Search, members, outline_mm) -> str | None:
+    """The one class of the colour whose footprint sides the outline's (length and width, as a top face)
+    are within 15 % of, when every other class's are farther than that; None otherwise."""
+    fits = []
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = sorted(list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1), reverse=True)
+        fits.append(abs(length / fp[0] - 1.0) <= _SIZE_FIT and abs(width / fp[1] - 1.0) <= _SIZE_FIT)
+    return members[fits.index(True)] if sum(fits) == 1 else None
+
+
+def _row_of_parts(search: _Search, members, outline_mm) -> tuple[str | None, int]:
+    """(class, n) when a blob's outline is about n >= 2 parts of a class long and one wide (touching parts
+    whose colour was partly lost to shading, so their area alone does not say so), else (None, 0)."""
+    best = (None, 0, np.inf)
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+        n = int(round(length / max(fp)))
+        off = abs(length / max(fp) - n) + abs(width / min(fp) - 1.0)
+        if n >= 2 and abs(length / max(fp) - n) < 0.3 and abs(width / min(fp) - 1.0) < 0.3 and off < best[2]:
+            best = (name, n, off)
+    return best[0], best[1]
+
+
+def _classify_pieces(search: _Search, b: _Blob, members) -> list:
+    """The class of each piece of a blob split from touching parts of one colour's several classes: the
+    blob's outline points nearest each piece's centre are that piece's own edge (the cut between pieces
+    has none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
+    A piece no class fits keeps the blob's class and its area-based centre."""
+    centres = np.array([p[0] for p in b.pieces])
+    owner = np.linalg.norm(b.outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
+    problems, owners = [], []
+    for j, piece in enumerate(b.pieces):
+        sel = owner == j
+        if sel.sum() < 12:
+            continue
+        for name in members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            guess = top_face_guess(piece[0], piece[3] * b.k * b.k, search.nadir, k, expected_area_mm2(cls))
+            problems.append(TopFaceProblem.of_class(b.outline_mm[sel], b.normals[sel], guess, search.nadir, k, cls,
+                                                    min_rect(piece[1], k)[2]))
+            owners.append((j, name, k))
+    best: dict[int, tuple] = {}
+    for (j, name, k), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
+            best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
+    return [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else (b.name, b.cls, b.k, None)
+            for j in range(len(b.pieces))]
 
 
 def _shape_words(o: _Outline, outline_mm, k: float) -> str:
@@ -468,8 +539,17 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
         area_mapped = sum(p[3] for p in b.pieces) * b.k * b.k
         tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, area_mapped, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
     parts = []
-    for (piece_m, piece_mm, piece_px, piece_area, piece_uv), top in zip(b.pieces, tops * (len(b.pieces) // len(tops))):
+    for j, ((piece_m, piece_mm, piece_px, piece_area, piece_uv), top) in enumerate(
+            zip(b.pieces, tops * (len(b.pieces) // len(tops)))):
         length, width, yaw = b.rect if len(b.pieces) == 1 else min_rect(piece_mm, b.k)
+        if b.piece_classes is not None:
+            name, cls, k, fit = b.piece_classes[j]
+            if fit is not None:
+                centre = nadir + (fit[0] - nadir) / k
+                parts.append(DetectedPart("", name, b.status, b.reason, piece_uv, (float(centre[0]), float(centre[1])),
+                                          float(cls.height_mm), float(piece_area), yaw, length, width, "top_outline",
+                                          b.delta_e, piece_px))
+                continue
         if top is not None:
             centre, used = nadir + (top - nadir) / b.k, "top_outline"
             by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")
