@@ -30,6 +30,7 @@ import numpy as np
 
 from gripsight.planning.angles import wrap_angle
 from gripsight.planning.linkage import FourBar, grashof_class
+from gripsight.planning.points import as_n_by_3
 from gripsight.planning.servo import ServoMap
 
 __all__ = ["Arm", "Branch", "IKSolution", "Linkage", "Reason", "JOINT_NAMES"]
@@ -107,15 +108,6 @@ class IKSolution:
 
     def reason_labels(self) -> list[str]:
         return [Reason(int(r)).label for r in self.reason]
-
-
-def _as_points(xyz_mm, name: str = "xyz_mm") -> np.ndarray:
-    arr = np.asarray(xyz_mm, dtype=float)
-    if arr.ndim == 1 and arr.shape[0] == 3:
-        arr = arr[None, :]
-    if arr.ndim != 2 or arr.shape[1] != 3:
-        raise ValueError(f"{name}: expected shape (N, 3), got {arr.shape}")
-    return arr
 
 
 @dataclass(frozen=True)
@@ -217,7 +209,7 @@ class Arm:
         ndarray, shape (N, 3)
             Tool point x, y, z in table mm (NaN rows where the linkage cannot assemble).
         """
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         return self._forward_psi(q[:, 0], q[:, 1], psi)
 
@@ -230,7 +222,7 @@ class Arm:
     def chain_rz_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
         """Shoulder, elbow and wrist in the arm's vertical plane: radius from the base axis and height,
         each shape (N, 3) (the whole arm lies in the half-plane at the base angle)."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         r = np.empty((len(q), 3))
         z = np.empty((len(q), 3))
@@ -243,7 +235,7 @@ class Arm:
 
     def elbow_wrist_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
         """Elbow and wrist points in table mm, each shape (N, 3), for drawing."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         r, z = self.chain_rz_mm(q)
         c, s = np.cos(q[:, 0]), np.sin(q[:, 0])
         return tuple(np.column_stack([r[:, k] * c, r[:, k] * s, z[:, k]]) for k in (1, 2))
@@ -269,7 +261,7 @@ class Arm:
         -----
         A target on the base axis (r = 0) has no defined base yaw; 0 is used.
         """
-        p = _as_points(xyz_mm)
+        p = as_n_by_3(xyz_mm)
         branch = self.branch if branch is None else Branch(branch)
         x, y, z = p[:, 0], p[:, 1], p[:, 2]
         r = np.sqrt(x * x + y * y)                       # (np.hypot is several times slower)
@@ -315,7 +307,7 @@ class Arm:
 
     def check_joints(self, joints_rad) -> np.ndarray:
         """Reason codes for joint-space poses (limits, interior stop, assembly), shape (N,)."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         return _first_reason([(Reason.LINKAGE_CANNOT_ASSEMBLE, np.isnan(psi)),
                               *self._limit_failures(q[:, 0], q[:, 1], psi, q[:, 2])])
@@ -323,5 +315,5 @@ class Arm:
     # ------------------------------------------------------------ servos
     def pulses_us(self, joints_rad, check: bool = True) -> np.ndarray:
         """Servo pulse widths for joint angles, shape (N, 3), via each joint's :class:`ServoMap`."""
-        q = np.degrees(_as_points(joints_rad, "joints_rad"))
+        q = np.degrees(as_n_by_3(joints_rad, "joints_rad"))
         return np.column_stack([s.pulse_us_from_deg(q[:, i], check=check) for i, s in enumerate(self.servos)])

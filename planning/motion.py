@@ -15,7 +15,7 @@ from enum import Enum
 import numpy as np
 
 from gripsight.planning.arm import Arm
-from gripsight.planning.paths import ArcPath, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
+from gripsight.planning.paths import ArcPath, PathTerms, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
 
 __all__ = ["SampledChain", "SampledSegment", "Segment", "SegmentKind", "durations_s", "sample_segments", "timed_samples"]
 
@@ -126,7 +126,6 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
 
 
 _ZERO3 = np.zeros(3)
-_STILL = (_ZERO3, _ZERO3, _ZERO3, 0.0)     # d, e1, e2, w of a dwell or swing (c is where it holds)
 
 
 def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, scaling: TimeScaling,
@@ -147,17 +146,18 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
     for k, seg in enumerate(segments):
         if seg.joints_rad is not None:
             swings.append(k)
-            terms.append((_ZERO3, *_STILL))
+            terms.append(PathTerms(_ZERO3, _ZERO3, _ZERO3, _ZERO3, 0.0))
             ends.append((_ZERO3, _ZERO3))
         elif seg.path is None:
-            terms.append((seg.hold_mm, *_STILL))
+            terms.append(PathTerms(np.asarray(seg.hold_mm, float), _ZERO3, _ZERO3, _ZERO3, 0.0))
             ends.append((seg.hold_mm, seg.hold_mm))
         else:
             terms.append(seg.path.terms())
             ends.append((seg.path.p0, seg.path.p1))
-    c, d, e1, e2 = (np.array([t[i] for t in terms])[seg_of] for i in range(4))
-    w = np.array([t[4] for t in terms])[seg_of]
-    xyz = path_points((c, d, e1, e2, w), s)
+    # every segment's terms repeated per sample: one evaluation for the whole chain
+    per_sample = PathTerms(*(np.array([getattr(t, f) for t in terms])[seg_of]
+                             for f in ("c_mm", "d_mm", "e1_mm", "e2_mm", "sweep_rad")))
+    xyz = path_points(per_sample, s)
     xyz[first] = [e[0] for e in ends]                 # the ends exact (last wins for one-sample segments)
     xyz[last] = [e[1] for e in ends]
     swung = []

@@ -17,29 +17,39 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from enum import StrEnum
 
 import numpy as np
 
 from gripsight.planning.arm import Arm
-from gripsight.planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
-from gripsight.planning.errors import CellProblems, Problem
+from gripsight.planning.cellcheck import cell_problems
+from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
+                                       first_failure, grip_fit_rejection)
+from gripsight.planning.errors import CellProblems
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["Planner", "Plan", "PartOutcome", "PlannedPick", "JointSamples"]
+__all__ = ["Planner", "Plan", "PartOutcome", "PickStatus", "PlannedPick", "JointSamples"]
 
 _MIN_ARC_BULGE_MM = 0.5     # a transfer whose via point is closer than this to the chord is straight
 _SAME_POINT_MM = 1e-6
 
 
+class PickStatus(StrEnum):
+    """What became of one part."""
+
+    PLANNED = "planned"
+    REJECTED = "rejected"
+
+
 @dataclass(frozen=True)
 class PartOutcome:
-    """What became of one part: ``planned``, or ``rejected`` with a :class:`Rejection`."""
+    """What became of one part: planned, or rejected with a :class:`Rejection`."""
 
     part: PartTarget
-    status: str
+    status: PickStatus
     bin_name: str | None
     rejection: Rejection | None = None
 
@@ -118,16 +128,7 @@ class Planner:
 
     # ------------------------------------------------------------ cell-level checks
     def _check_cell(self) -> None:
-        problems = []
-        for name, b in self.cell.bins.items():
-            for label, z in (("drop", b.z + self.cell.motion.drop_z_mm), ("safe", self.safe_z)):
-                sol = self.arm.inverse([[b.x, b.y, z]])
-                if not sol.ok[0]:
-                    problems.append(Problem(f"bins.{name}", f"cannot be reached at {label} height (z={z:g} mm): "
-                                                           f"{sol.reason_labels()[0]}"))
-        if self.arm.check_joints(self.home_rad[None])[0] != 0:
-            problems.append(Problem("motion.home_deg", "the home pose breaks the arm's own limits "
-                                                       "(joint limits, elbow stop or linkage); choose another"))
+        problems = cell_problems(self.cell, self.arm)
         if problems:
             raise CellProblems(self.cell.source_path or "<cell>", problems)
 
@@ -221,7 +222,7 @@ class Planner:
         return "reject" if "reject" in self.cell.bins else None
 
     def plan(self, parts: list[PartTarget], order: str = "nearest", start_joints_rad=None,
-             end_at_home: bool = True, t0_s: float = 0.0) -> Plan:
+             end_at_home: bool = True, t0_s: float = 0.0, bin_room: dict[str, int] | None = None) -> Plan:
         """Plan every part; rejected parts carry their reason, the rest form one checked sequence.
 
         Parameters
@@ -235,6 +236,9 @@ class Planner:
             Finish with a move back to the home pose.
         t0_s : float
             Clock time of the first sample (for runs that continue a previous plan).
+        bin_room : dict of str to int, optional
+            Places left per bin (bins with a capacity): parts beyond it, in the given order, are rejected
+            ``bin_full``.
         """
         if order not in ("nearest", "detected"):
             raise ValueError(f"order: expected 'nearest' or 'detected', got {order!r}")
@@ -242,9 +246,9 @@ class Planner:
         start_mm = self.arm.forward(q0[None])[0]
         outcomes: dict[str, PartOutcome] = {}
         candidates: list[PartTarget] = []
-        for part, rej in zip(parts, self._precheck(parts)):
+        for part, rej in zip(parts, self._precheck(parts, bin_room)):
             if rej is not None:
-                outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), rej)
+                outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), rej)
             else:
                 candidates.append(part)
         if order == "nearest" and len(candidates) > 1:
@@ -283,7 +287,7 @@ class Planner:
             for k in range(min(failed, len(runs))):
                 part, own = candidates[k], sampled[bounds[k]:bounds[k + 1]]
                 picks.append(PlannedPick(part.id, part.class_name, self.bin_for(part), own, t))
-                outcomes[part.id] = PartOutcome(part, "planned", self.bin_for(part))
+                outcomes[part.id] = PartOutcome(part, PickStatus.PLANNED, self.bin_for(part))
                 accepted += own
                 t += sum(s.duration_s for s in own)
                 here, lead = own[-1].xyz_mm[-1], []
@@ -295,7 +299,7 @@ class Planner:
                     warnings.append(self._home_failed(failure[1]))
                 break
             part = candidates[failed]
-            outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), failure[1])
+            outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), failure[1])
             candidates = candidates[failed + 1:]
         q_here = accepted[-1].joints_rad[-1] if accepted else q0
         if not home_done and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
@@ -324,19 +328,26 @@ class Planner:
     def _home_failed(rejection: Rejection) -> str:
         return f"the move back to the home pose failed a check and was left out: {rejection.describe()}"
 
-    def _precheck(self, parts: list[PartTarget]) -> list[Rejection | None]:
-        """Reasons known before any motion, per part: the photo's verdict, no bin, grip fit, grip or
-        above-part point unreachable (every part's two points through one IK call and one check pass,
-        again after each point that fails)."""
+    def _precheck(self, parts: list[PartTarget], bin_room: dict[str, int] | None) -> list[Rejection | None]:
+        """Reasons known before any motion, per part: the photo's verdict, no bin, a full bin, grip fit,
+        grip or above-part point unreachable (every part's two points through one IK call and one check
+        pass, again after each point that fails)."""
         out: list[Rejection | None] = [None] * len(parts)
+        room = dict(bin_room or {})
         probed = []
         for k, part in enumerate(parts):
-            if part.vision_status not in ("ok", "unknown_colour", "unknown_shape"):
-                out[k] = Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
-            elif self.bin_for(part) is None:
-                out[k] = Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no "
-                                                    f"'reject' bin")
+            name = self.bin_for(part)
+            if not part.pickable:
+                out[k] = Rejection(Check.PHOTO, part.vision_detail or "rejected by the photo analysis",
+                                   subject=part.vision_status)
+            elif name is None:
+                out[k] = Rejection(Check.UNKNOWN_CLASS, f"class '{part.class_name}' has no bin and the cell has no "
+                                                        f"'reject' bin")
+            elif name in room and room[name] <= 0:
+                out[k] = Rejection(Check.BIN_FULL, f"bin '{name}' is full")
             else:
+                if name in room:
+                    room[name] -= 1
                 out[k] = grip_fit_rejection(part, self.cell.arm.gripper)
                 if out[k] is None:
                     probed.append(k)
@@ -348,17 +359,12 @@ class Planner:
         sol = self.arm.inverse(pts)
         first = 0
         while first < len(pts):
-            # the probes are separate points, not a motion: no speeds or branch flips between them; the
-            # sample "times" are their indices, so the failure says which point it is
-            n = len(pts) - first
-            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[first]), 0.0, np.arange(n, dtype=float),
-                                   pts[first:], sol.joints_rad[first:], sol.reason[first:])
-            bad = first_failure(self.ctx, probe, dt_steps=np.zeros(n - 1), flip_allowed=np.ones(n - 1, bool))
+            # the probes are separate points, not a motion: no speeds or branch changes between them
+            bad = first_failing_sample(self.ctx, pts[first:], sol.joints_rad[first:], sol.reason[first:], timed=False)
             if bad is None:
                 break
-            i = first + int(round(bad.time_s))
-            out[probed[i // 2]] = Rejection(bad.check, bad.detail, ("descend", "transfer")[i % 2], None,
-                                            bad.value, bad.limit, bad.unit)
+            i = first + bad.index
+            out[probed[i // 2]] = bad.rejection.at(("descend", "transfer")[i % 2], None)
             first = (i // 2 + 1) * 2
         return out
 

@@ -25,6 +25,7 @@ Per photo (see DESIGN.md sec. 6):
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from enum import StrEnum
 
 import cv2
 import numpy as np
@@ -46,9 +47,27 @@ from gripsight.vision.topface import (
 from gripsight.vision.shapes import ColourGroup, colour_groups
 from gripsight.vision.whitebalance import Illumination, fit_illumination
 
-__all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
+__all__ = ["DetectedPart", "Detection", "PartStatus", "detect_parts", "STATUSES"]
 
-STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour", "unknown_shape")
+
+class PartStatus(StrEnum):
+    """What the photo analysis made of a blob."""
+
+    OK = "ok"                              # a part of a known class
+    CUT_BY_EDGE = "cut_by_edge"            # cut by the photo's edge, a marker or the searched area
+    TOO_SMALL = "too_small"
+    TOO_LARGE = "too_large"
+    TOUCHING = "touching"                  # touching parts that could not be split
+    UNKNOWN_COLOUR = "unknown_colour"      # a part of no class's colour: goes to the reject bin
+    UNKNOWN_SHAPE = "unknown_shape"        # a class's colour but no class's shape and size: the reject bin
+
+    @property
+    def pickable(self) -> bool:
+        """Goes to a bin (its class's, or the reject bin); the others stay on the table."""
+        return self in (PartStatus.OK, PartStatus.UNKNOWN_COLOUR, PartStatus.UNKNOWN_SHAPE)
+
+
+STATUSES = tuple(s.value for s in PartStatus)
 _UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
 _MIN_RATIO, _MAX_RATIO = 0.45, 1.6
 _NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
@@ -61,7 +80,7 @@ class DetectedPart:
 
     id: str
     class_name: str
-    status: str
+    status: PartStatus
     reason: str
     pixel_uv: tuple[float, float]
     xy_mm: tuple[float, float]
@@ -75,7 +94,7 @@ class DetectedPart:
     outline_px: np.ndarray = field(repr=False, compare=False, default=None)
 
     def as_dict(self) -> dict:
-        return {"id": self.id, "class": self.class_name, "status": self.status, "reason": self.reason,
+        return {"id": self.id, "class": self.class_name, "status": self.status.value, "reason": self.reason,
                 "pixel": [round(self.pixel_uv[0], 2), round(self.pixel_uv[1], 2)],
                 "table_mm": [round(self.xy_mm[0], 3), round(self.xy_mm[1], 3)], "height_mm": self.height_mm,
                 "area_mm2": round(self.area_mm2, 1), "yaw_deg": round(self.yaw_deg, 2),
@@ -124,10 +143,10 @@ _REGION_CACHE: dict = {}
 
 def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     """The searched region, cached: in a run every photo of one calibration shares it."""
-    key = (shape, id(mapping), id(cell), tuple(sorted(d.id for d in detections)))
+    key = _region_key(shape, mapping, cell, detections)
     cached = _REGION_CACHE.get(key)
-    if cached is not None and cached[0] is mapping and cached[1] is cell:
-        return cached[2]
+    if cached is not None:
+        return cached
     mask = _build_valid_mask(shape, mapping, cell, detections)
     u0, v0, w, h = cv2.boundingRect(mask)
     valid = mask[v0:v0 + h, u0:u0 + w] > 0
@@ -137,8 +156,19 @@ def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
     if len(_REGION_CACHE) > 8:
         _REGION_CACHE.clear()
-    _REGION_CACHE[key] = (mapping, cell, region)
+    _REGION_CACHE[key] = region
     return region
+
+
+def _region_key(shape, mapping, cell, detections) -> tuple:
+    """Everything the searched region depends on, by value: the photo size, the mapping, the cell's work
+    area, markers and part sizes, and where the markers were seen (to the pixel)."""
+    corners_px = np.round(np.array([d.corners_px for d in detections], float).reshape(-1, 2)).astype(np.int32)
+    sizes = tuple((name, tuple(c.footprint_mm)) for name, c in cell.parts.items())
+    layout = tuple((i, m.x, m.y, m.z, m.yaw_deg) for i, m in cell.markers.layout.items())
+    return (tuple(shape), mapping.H_table_from_pixel.tobytes(), repr(mapping.lens.as_dict()),
+            tuple(map(tuple, cell.work_area)), cell.markers.size_mm, cell.markers.margin_mm, layout, sizes,
+            tuple(d.id for d in detections), corners_px.tobytes())
 
 
 def _smallest_part_px(mapping, cell) -> float:
@@ -217,8 +247,8 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         found += _parts_of_blob(b, top_fit, nadir, parallax)
     if found:                                   # a footprint centre outside the work area: not pickable
         outside = ~points_in_polygon([p.xy_mm for p in found], cell.work_area)
-        found = [replace(p, status="cut_by_edge", reason="lies across the edge of the work area")
-                 if out and p.status == "ok" else p for p, out in zip(found, outside)]
+        found = [replace(p, status=PartStatus.CUT_BY_EDGE, reason="lies across the edge of the work area")
+                 if out and p.status is PartStatus.OK else p for p, out in zip(found, outside)]
         found = _on_markers(found, cell)
     found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
     parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
@@ -248,13 +278,13 @@ def _on_markers(found: list[DetectedPart], cell) -> list[DetectedPart]:
     out = []
     for p in found:
         cls = cell.parts.get(p.class_name)
-        if p.status == "ok" and cls is not None:
+        if p.status is PartStatus.OK and cls is not None:
             pts = _footprint_points_mm(p, cls)
             near = [i for i, paper in papers.items()
                     if np.linalg.norm(paper.mean(axis=0) - p.xy_mm) < 2 * max(cls.footprint_mm) + 2 * cell.markers.size_mm]
             hit = next((i for i in near if points_in_polygon(pts, papers[i]).any()), None)
             if hit is not None:
-                p = replace(p, status="cut_by_edge", reason=f"lies on marker {hit}")
+                p = replace(p, status=PartStatus.CUT_BY_EDGE, reason=f"lies on marker {hit}")
         out.append(p)
     return out
 
@@ -269,7 +299,7 @@ class _Blob:
     height_mm: float
     k: float
     mode: str
-    status: str
+    status: PartStatus
     reason: str
     pieces: list
     outline_mm: np.ndarray
@@ -388,25 +418,25 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
         de = float("nan") if unknown and not shape_misfit else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
         cut = bool(search.edge_band[y:y + h, x:x + w][inside].any())
         mode = search.seen_as or (cls.seen_as if cls is not None else "auto")
-        pieces, status, reason = whole, "ok", ""
+        pieces, status, reason = whole, PartStatus.OK, ""
         if unknown:
             what = f"a part of {o.group.name.replace('+', ' or ')}'s colour" if shape_misfit else "an unknown colour"
             if cut:
-                status, reason = "cut_by_edge", f"{what} cut by the edge of the photo or a marker"
+                status, reason = PartStatus.CUT_BY_EDGE, f"{what} cut by the edge of the photo or a marker"
             elif area > _UNKNOWN_MAX_RATIO * search.typical:
-                status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
+                status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
             elif shape_misfit:
-                status, reason = "unknown_shape", (f"colour of {', '.join(o.group.members)} but the shape or size of "
-                                                   f"none ({_shape_words(o, outline_mm, k)})")
+                status, reason = PartStatus.UNKNOWN_SHAPE, (f"colour of {', '.join(o.group.members)} but the shape or "
+                                                            f"size of none ({_shape_words(o, outline_mm, k)})")
             else:
-                status, reason = "unknown_colour", "colour matches no class"
+                status, reason = PartStatus.UNKNOWN_COLOUR, "colour matches no class"
         elif cut:
-            status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
+            status, reason = PartStatus.CUT_BY_EDGE, "cut by the edge of the photo, a marker or the searched area"
         else:
             expected = expected_area_mm2(cls)
             ratio = area / expected
             if ratio < _MIN_RATIO:
-                status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
+                status, reason = PartStatus.TOO_SMALL, f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
             elif ratio > _MAX_RATIO or o.split_into >= 2:
                 pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected,
                                                 max(ratio, o.split_into), name, whole)
@@ -571,7 +601,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
     ``whole`` is the blob as one piece, returned when it cannot be split."""
     n = int(round(ratio))
     if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
-        return whole, "too_large", \
+        return whole, PartStatus.TOO_LARGE, \
             f"{ratio:.1f}x a {name} part's area and not a whole number of parts"
     py, px = np.nonzero(sub)
     uv = np.column_stack([px + ox, py + oy]).astype(float)
@@ -589,10 +619,10 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
         sel = labels == j
         area = sel.sum() * per_px / (k * k)
         if not _MIN_RATIO < area / expected < 1.4:
-            return whole, "touching", \
+            return whole, PartStatus.TOUCHING, \
                 f"{n} touching {name} parts that could not be split into parts of the right size"
         pts_mm = xy[sel].astype(float)
         hull = cv2.convexHull(pts_mm.astype(np.float32)).reshape(-1, 2).astype(float)
         pieces.append((pts_mm.mean(axis=0), hull, mapping.inverse(hull), float(area),
                        (float(uv[sel, 0].mean()), float(uv[sel, 1].mean()))))
-    return pieces, "ok", f"split from {n} touching parts"
+    return pieces, PartStatus.OK, f"split from {n} touching parts"

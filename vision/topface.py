@@ -54,7 +54,7 @@ def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
 
 
 def expected_area_mm2(cls) -> float:
-    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    fp = list(cls.length_width_mm)
     return float(np.pi / 4 * fp[0] * fp[1]) if cls.shape == "cylinder" else float(fp[0] * fp[1])
 
 
@@ -103,7 +103,7 @@ class TopFaceProblem:
     @classmethod
     def of_class(cls, outline_mm, normals, centre, nadir, k, part_class, yaw_guess_deg=0.0):
         """The problem for a part class; ``centre`` is the first guess of the top face's centre."""
-        fp = list(part_class.footprint_mm) * (2 if len(part_class.footprint_mm) == 1 else 1)
+        fp = list(part_class.length_width_mm)
         return cls(outline_mm, normals, np.asarray(centre, float), np.asarray(nadir, float), float(k),
                    part_class.shape == "cylinder", (fp[0] / 2.0, fp[1] / 2.0), float(yaw_guess_deg))
 
@@ -223,7 +223,7 @@ def fit_row_of_tops(outline_mm, normals, m, area_mapped, nadir, k, cls, pieces):
     top faces. Returns each piece's top-face centre (table-mapped mm), in the pieces' order, or None if
     the row does not fit."""
     n = len(pieces)
-    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    fp = list(cls.length_width_mm)
     _, _, yaw_guess = min_rect(outline_mm, k)
     nadir = np.asarray(nadir, float)
     guess = top_face_guess(m, area_mapped, nadir, k, n * expected_area_mm2(cls))

@@ -61,7 +61,7 @@ def process_photo(job: BatchJob) -> dict:
         out = child_folder(job.out_dir, name)
         _, overlay = write_photo_outputs(out, pp, cell, arm, stored)
         reg = pp.analysis.registration
-        row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict)
+        row.update(registration=reg.action.value, drift="" if reg.drift is None else reg.drift.verdict.value)
         if pp.plan is None:
             row.update(status="refused", error=pp.message)
         else:
@@ -72,7 +72,7 @@ def process_photo(job: BatchJob) -> dict:
             row["planned"] = len(pp.plan.picks)
             for o in pp.plan.parts:
                 if o.rejection is not None:
-                    row["rejected"][o.rejection.check] = row["rejected"].get(o.rejection.check, 0) + 1
+                    row["rejected"][o.rejection.label] = row["rejected"].get(o.rejection.label, 0) + 1
             row["cycle_s"] = round(pp.plan.cycle_s, 3)
             row["truth"] = _truth_stats(job.photo, pp, cell)
         row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
@@ -110,9 +110,9 @@ def _finished_row(job: BatchJob) -> dict | None:
 def _truth_stats(photo: str, pp, cell) -> dict | None:
     import yaml
 
-    from gripsight.app.truthcheck import compare_with_truth
+    from gripsight.app.truthcheck import compare_with_truth, truth_path
 
-    truth_file = Path(photo).with_name(Path(photo).stem + ".truth.yaml")
+    truth_file = truth_path(Path(photo))
     if not truth_file.is_file():
         return None
     try:

@@ -18,8 +18,8 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
-from gripsight.app.fileio import write_text_atomic
-from gripsight.vision.calibration import Calibration, MarkerFit
+from gripsight.app.fileio import utc_now, write_text_atomic
+from gripsight.vision.calibration import Calibration, CentreSource, MarkerFit, Verdict
 from gripsight.vision.homography import TableMapping
 from gripsight.vision.lens import lens_from_dict
 
@@ -44,6 +44,7 @@ class _Marker(_Model):
     id: int
     used: bool
     reason: str = ""
+    role: str = ""
     residual_mm: Finite | None = None
     residual_px: Finite | None = None
     corners_px: Annotated[list[Annotated[list[Finite], Field(min_length=2, max_length=2)]], Field(min_length=4, max_length=4)]
@@ -69,10 +70,10 @@ class _File(_Model):
     H_table_from_pixel: Annotated[list[Annotated[list[Finite], Field(min_length=3, max_length=3)]], Field(min_length=3, max_length=3)]
     lens: _Lens
     camera_centre_mm: Annotated[list[Finite], Field(min_length=3, max_length=3)]
-    camera_centre_source: Literal["measured", "raised_markers", "assumed"]
+    camera_centre_source: Annotated[CentreSource, Field(strict=False)]
     markers: list[_Marker]
     residual: dict[str, Finite]
-    verdict: Literal["good", "fair", "poor"]
+    verdict: Annotated[Verdict, Field(strict=False)]
     notes: list[str] = []
 
 
@@ -90,6 +91,11 @@ class StoredCalibration:
         self.verdict = data.verdict
 
 
+def default_calibration_path(cell) -> Path:
+    """``calibration.yaml`` beside the cell file."""
+    return Path(cell.source_path).parent / "calibration.yaml" if cell.source_path else Path("calibration.yaml")
+
+
 def history_path(path: Path, when: datetime) -> Path:
     """``calibration.yaml`` -> ``calibration_history/calibration-20261202T041500Z.yaml`` (never an existing name)."""
     folder = path.parent / f"{path.stem}_history"
@@ -103,7 +109,7 @@ def history_path(path: Path, when: datetime) -> Path:
 
 
 def _marker_record(m: MarkerFit) -> dict:
-    return {"id": int(m.id), "used": bool(m.used), "reason": m.reason,
+    return {"id": int(m.id), "used": bool(m.used), "reason": m.reason, "role": m.role.value,
             "residual_mm": None if m.residual_mm is None else round(m.residual_mm, 4),
             "residual_px": None if m.residual_px is None else round(m.residual_px, 4),
             "corners_px": np.round(m.corners_px, 4).tolist()}
@@ -113,18 +119,18 @@ def calibration_record(cal: Calibration, cell, photo_path) -> dict:
     w, h = cal.image_size
     return {
         "gripsight": "calibration",
-        "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z"),
+        "created": utc_now(),
         "cell": cell.cell,
         "photo": {"path": str(photo_path), "sha256": file_sha256(photo_path), "width_px": int(w), "height_px": int(h)},
         "H_table_from_pixel": [[float(v) for v in row] for row in cal.mapping.H_table_from_pixel],
         "lens": cal.mapping.lens.as_dict(),
         "camera_centre_mm": [round(float(v), 3) for v in cal.camera_centre_mm],
-        "camera_centre_source": cal.centre_source,
+        "camera_centre_source": cal.centre_source.value,
         "markers": [_marker_record(m) for m in sorted(cal.markers, key=lambda m: m.id)],
         "residual": {"rms_mm": round(cal.rms_mm, 4), "max_mm": round(cal.max_mm, 4),
                      "rms_px": round(cal.rms_px, 4), "max_px": round(cal.max_px, 4),
                      "markers_used": len(cal.used)},
-        "verdict": cal.verdict,
+        "verdict": cal.verdict.value,
         "notes": list(cal.notes),
     }
 

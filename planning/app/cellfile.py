@@ -22,6 +22,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
+from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
     "ARUCO_DICTIONARY_SIZES",
@@ -77,12 +78,12 @@ class MarkersConfig(_Model):
 
 
 class CameraConfig(_Model):
-    lens: Literal["none", "estimate", "file"] = "estimate"
+    lens: Annotated[LensMode, Field(strict=False)] = LensMode.ESTIMATE
     lens_file: str | None = None
     centre_mm: Point3 | None = None
     height_mm: PositiveMm | None = None
     drift_tolerance_mm: PositiveMm = 1.0
-    on_move: Literal["refit", "stop"] = "refit"
+    on_move: Annotated[OnMove, Field(strict=False)] = OnMove.REFIT
 
 
 # ---------------------------------------------------------------- arm
@@ -152,6 +153,12 @@ class PartClass(_Model):
     shape: Literal["box", "cylinder"] = "box"
     footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
     seen_as: Literal["auto", "top", "silhouette"] = "auto"
+
+    @property
+    def length_width_mm(self) -> tuple[float, float]:
+        """The footprint as (length, width): one value (a cylinder's diameter, a square) is both."""
+        fp = self.footprint_mm
+        return (float(fp[0]), float(fp[-1]))
 
 
 class BinConfig(_Model):
@@ -330,7 +337,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
                 out.append(Problem(f"{where}", "a box zone needs min_mm and max_mm"))
             elif any(a >= b for a, b in zip(zone.min_mm, zone.max_mm)):
                 out.append(Problem(f"{where}.min_mm", "every coordinate must be less than max_mm's"))
-    if cell.camera.lens == "file" and not cell.camera.lens_file:
+    if cell.camera.lens == LensMode.FILE and not cell.camera.lens_file:
         out.append(Problem("camera.lens_file", "required when camera.lens is 'file'"))
     return out
 

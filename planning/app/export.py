@@ -16,18 +16,17 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, write_text_atomic
+from gripsight.app.fileio import output_dir, utc_now, write_text_atomic
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
-__all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs", "utc_now"]
+__all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs"]
 
 CSV_COLUMNS = ["time_s", "segment", "part", "x_mm", "y_mm", "z_mm", "base_deg", "shoulder_deg", "elbow_deg",
                "gripper", "base_us", "shoulder_us", "elbow_us", "gripper_us"]
 
 
-def utc_now() -> str:
-    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
 
 
 def _r(values, nd=4):
@@ -55,13 +54,13 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
                       "pixel": None if p.pixel_uv is None else _r(p.pixel_uv, 2),
                       "table_mm": _r(p.xy_mm, 3), "height_mm": round(p.height_mm, 3),
                       "yaw_deg": round(p.yaw_deg, 2), "width_mm": round(p.width_mm, 3), "length_mm": round(p.length_mm, 3),
-                      "bin": o.bin_name, "status": o.status,
-                      "reason": None if o.rejection is None else o.rejection.check,
+                      "bin": o.bin_name, "status": o.status.value,
+                      "reason": None if o.rejection is None else o.rejection.label,
                       "rejection": None if o.rejection is None else o.rejection.as_dict()})
     rejected: dict[str, int] = {}
     for o in plan.parts:
         if o.rejection is not None:
-            rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
+            rejected[o.rejection.label] = rejected.get(o.rejection.label, 0) + 1
     return {
         "gripsight": "plan",
         "status": "planned",

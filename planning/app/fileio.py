@@ -6,6 +6,7 @@ An interrupted write leaves the old file or none, never half a file.
 from __future__ import annotations
 
 import contextlib
+from datetime import datetime, timezone
 import os
 import tempfile
 from pathlib import Path
@@ -70,3 +71,8 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     """Write UTF-8 text to ``path`` atomically."""
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def utc_now() -> str:
+    """The time now in UTC, ISO 8601 to the second (``2026-12-02T15:30:00Z``): the one stamp of every output."""
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")

@@ -18,8 +18,9 @@ from pathlib import Path
 import numpy as np
 
 from gripsight.app.errors import EXPECTED_ERRORS, GripsightError
-from gripsight.app.export import CSV_COLUMNS, joints_csv_text, utc_now
-from gripsight.app.fileio import child_folder, output_dir, write_text_atomic
+from gripsight.app.export import CSV_COLUMNS, joints_csv_text
+from gripsight.app.fileio import child_folder, output_dir, utc_now, write_text_atomic
+from gripsight.planning.checks import Check
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
 
@@ -149,7 +150,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             write_text_atomic(_state_path(out), json.dumps(state, indent=1))
             if progress is not None:
                 progress(photo, summary)
-            full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check == "bin_full"]
+            full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check is Check.BIN_FULL]
             if full:
                 name = full[0].bin_name
                 result.stopped = (f"bin '{name}' is full (capacity {cell.bins[name].capacity}); empty it, then resume "
@@ -181,7 +182,7 @@ def _summary(name: str, pp, data: dict) -> dict:
             picked[pick.class_name] = picked.get(pick.class_name, 0) + 1
         for o in pp.plan.parts:
             if o.rejection is not None:
-                rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
-    return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action,
+                rejected[o.rejection.label] = rejected.get(o.rejection.label, 0) + 1
+    return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action.value,
             "message": pp.message, "picked": picked, "rejected": rejected,
             "cycle_s": 0.0 if pp.plan is None else round(sum(p.duration_s for p in pp.plan.picks), 3)}

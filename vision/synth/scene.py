@@ -185,7 +185,7 @@ def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 
     if touching:
         box_classes = [c for c in classes if cell.parts[c].shape == "box"] or classes
         cls = str(rng.choice(box_classes))
-        fp = list(cell.parts[cls].footprint_mm) * (2 if len(cell.parts[cls].footprint_mm) == 1 else 1)
+        fp = list(cell.parts[cls].length_width_mm)
         for _ in range(200):
             x, y = rng.uniform(min(xs), max(xs)), rng.uniform(min(ys), max(ys))
             yaw = float(rng.uniform(-90, 90))

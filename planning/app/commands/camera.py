@@ -93,7 +93,9 @@ def render(
 
 
 def _lens_for(cfg):
-    if cfg.camera.lens != "file":
+    from gripsight.vision.settings import LensMode
+
+    if cfg.camera.lens != LensMode.FILE:
         return None
     from gripsight.vision.lens import load_opencv_lens
 
@@ -101,10 +103,6 @@ def _lens_for(cfg):
     if not path.is_absolute() and cfg.source_path:
         path = Path(cfg.source_path).parent / path
     return load_opencv_lens(path)
-
-
-def _default_calibration(cell_path: Path) -> Path:
-    return cell_path.parent / "calibration.yaml"
 
 
 @command()
@@ -122,7 +120,7 @@ def calibrate(
 
     from gripsight.app.cellfile import load_cell
     from gripsight.app.fileio import write_bytes_atomic
-    from gripsight.app.calfile import calibration_record, write_calibration
+    from gripsight.app.calfile import calibration_record, default_calibration_path, write_calibration
     from gripsight.vision.calibration import calibrate as fit
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.overlay import calibration_overlay
@@ -133,7 +131,7 @@ def calibrate(
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
     cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
-    out = out or _default_calibration(cell_path)
+    out = out or default_calibration_path(cfg)
     moved = write_calibration(out, cal, cfg, photo)
     overlay = overlay or out.with_name(out.stem + "_overlay.png")
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
@@ -145,6 +143,8 @@ def calibrate(
 
 
 def _print_calibration(cal, out, overlay, moved) -> None:
+    from gripsight.vision.calibration import MarkerRole
+
     from rich.console import Console
     from rich.table import Table
 
@@ -161,10 +161,10 @@ def _print_calibration(cal, out, overlay, moved) -> None:
     for note in cal.notes:
         console.print(f"note: {note}")
     c = cal.camera_centre_mm
-    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.replace('_', ' ')}")
+    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.value.replace('_', ' ')}")
     console.print(f"verdict: {cal.verdict}: RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm "
                   f"over {len(cal.used)} markers")
-    moved_markers = [m for m in cal.markers if m.reason.startswith("moved")]
+    moved_markers = [m for m in cal.markers if m.role is MarkerRole.MOVED]
     for m in moved_markers:
         console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
                       "where the cell file says, or update its position")
@@ -185,14 +185,14 @@ def check(
     import json
 
     from gripsight.app.cellfile import load_cell
-    from gripsight.app.calfile import read_calibration
-    from gripsight.vision.drift import check_drift
+    from gripsight.app.calfile import default_calibration_path, read_calibration
+    from gripsight.vision.drift import DriftVerdict, check_drift
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
 
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
-    stored = read_calibration(calibration or _default_calibration(cell_path))
+    stored = read_calibration(calibration or default_calibration_path(cfg))
     image = read_photo(photo)
     report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,
                          (image.shape[1], image.shape[0]), str(photo))
@@ -207,11 +207,13 @@ def check(
         typer.echo(json.dumps(dict(report.as_dict(), photo=str(photo), calibration=stored.path), indent=2))
     else:
         _print_drift(report, photo, cell_path)
-    if report.verdict == "moved":
+    if report.verdict is DriftVerdict.MOVED:
         raise typer.Exit(3)
 
 
 def _print_drift(report, photo, cell_path) -> None:
+    from gripsight.vision.drift import DriftVerdict
+
     from rich.console import Console
     from rich.table import Table
 
@@ -228,5 +230,5 @@ def _print_drift(report, photo, cell_path) -> None:
         console.print(f"work-area mapping moved by max {report.grid_max_mm:.2f} mm, mean {report.grid_mean_mm:.2f} mm "
                       f"(tolerance {report.tolerance_mm:g} mm)")
     console.print(f"verdict: {report.verdict}")
-    if report.verdict == "moved":
+    if report.verdict is DriftVerdict.MOVED:
         console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")

@@ -49,7 +49,7 @@ def detect(
         image = detection_overlay(result.image, det, result.registration.mapping,
                                   result.registration.camera_centre_mm, cfg)
         write_bytes_atomic(overlay, cv2.imencode(".png", image)[1].tobytes())
-    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action,
+    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action.value,
             "registration_note": result.registration.message,
             "drift": None if result.registration.drift is None else result.registration.drift.as_dict(),
             "white_balance": None if det.illumination is None else det.illumination.as_dict(),
@@ -60,6 +60,8 @@ def detect(
     from rich.console import Console
     from rich.table import Table
 
+    from gripsight.vision.parts import PartStatus
+
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     if result.registration.message:
         console.print(f"note: {result.registration.message}")
@@ -67,7 +69,7 @@ def detect(
     for col in ("id", "class", "x mm", "y mm", "yaw", "size mm", "ΔE", "status"):
         table.add_column(col, justify="right" if col not in ("id", "class", "status") else "left")
     for p in det.parts:
-        status = p.status if p.status == "ok" else f"{p.status}: {p.reason}"
+        status = p.status.value if p.status is PartStatus.OK else f"{p.status.value}: {p.reason}"
         table.add_row(p.id, p.class_name, f"{p.xy_mm[0]:.1f}", f"{p.xy_mm[1]:.1f}", f"{p.yaw_deg:.0f}",
                       f"{p.length_mm:.0f}x{p.width_mm:.0f}", "" if p.delta_e != p.delta_e else f"{p.delta_e:.1f}", status)
     console.print(table)
@@ -157,6 +159,8 @@ def _print_plan_summary(data: dict, out: Path) -> None:
     from rich.console import Console
     from rich.table import Table
 
+    from gripsight.vision.parts import PartStatus
+
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
     for col in ("#", "part", "class", "bin", "duration s"):
@@ -198,6 +202,8 @@ def run(
     """The sorting cell: plan photo after photo, the arm carried from one to the next; one run.csv."""
     from rich.console import Console
     from rich.table import Table
+
+    from gripsight.vision.parts import PartStatus
 
     from gripsight.app.pipeline import load_or_make_calibration
     from gripsight.app.cellfile import load_cell
@@ -278,6 +284,8 @@ def batch(
 def _print_batch(rows, totals, out) -> None:
     from rich.console import Console
     from rich.table import Table
+
+    from gripsight.vision.parts import PartStatus
 
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title="batch", title_justify="left")
