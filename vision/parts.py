@@ -273,16 +273,23 @@ def _on_markers(found: list[DetectedPart], cell) -> list[DetectedPart]:
     """A part whose footprint (in table mm) overlaps a marker lies on it: cut. The marker is its black
     square and the inner half of its white margin (the quiet zone its detection needs); a part on the
     outer edge of the paper (0.02 mm thick) is whole and is picked."""
-    papers = {i: marker_paper_corners_mm(m, cell.markers.size_mm, 0.5 * cell.markers.margin_mm)[:, :2]
-              for i, m in cell.markers.layout.items()}
+    if not cell.markers.layout:
+        return found
+    ids = list(cell.markers.layout)
+    papers = np.array([marker_paper_corners_mm(cell.markers.layout[i], cell.markers.size_mm,
+                                               0.5 * cell.markers.margin_mm)[:, :2] for i in ids])
+    paper_centres = papers.mean(axis=1)
+    paper_reach = np.linalg.norm(papers[:, 0] - paper_centres, axis=1)          # half diagonals
+    xy = np.array([p.xy_mm for p in found], float)
+    reach_of = {n: 0.5 * float(np.hypot(c.footprint_mm[0], c.footprint_mm[-1])) for n, c in cell.parts.items()}
+    part_reach = np.array([reach_of.get(p.class_name, 0.0) for p in found])
+    near = np.linalg.norm(xy[:, None, :] - paper_centres[None], axis=2) < part_reach[:, None] + paper_reach[None]
     out = []
-    for p in found:
+    for p, close in zip(found, near):
         cls = cell.parts.get(p.class_name)
-        if p.status is PartStatus.OK and cls is not None:
+        if p.status is PartStatus.OK and cls is not None and close.any():
             pts = _footprint_points_mm(p, cls)
-            near = [i for i, paper in papers.items()
-                    if np.linalg.norm(paper.mean(axis=0) - p.xy_mm) < 2 * max(cls.footprint_mm) + 2 * cell.markers.size_mm]
-            hit = next((i for i in near if points_in_polygon(pts, papers[i]).any()), None)
+            hit = next((ids[j] for j in np.flatnonzero(close) if points_in_polygon(pts, papers[j]).any()), None)
             if hit is not None:
                 p = replace(p, status=PartStatus.CUT_BY_EDGE, reason=f"lies on marker {hit}")
         out.append(p)
@@ -572,6 +579,11 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
     for j, ((piece_m, piece_mm, piece_px, piece_area, piece_uv), top) in enumerate(
             zip(b.pieces, tops * (len(b.pieces) // len(tops)))):
         length, width, yaw = b.rect if len(b.pieces) == 1 else min_rect(piece_mm, b.k)
+        if top_fit is not None and len(b.pieces) == 1 and b.cls is not None:
+            # the top face's own size (the fitted scale of the class's footprint), not the outline's, which
+            # holds the visible sides wherever they kept the class's colour
+            fp = sorted(list(b.cls.footprint_mm) * (2 if len(b.cls.footprint_mm) == 1 else 1), reverse=True)
+            length, width = fp[0] * top_fit[2] / b.k, fp[1] * top_fit[2] / b.k
         if b.piece_classes is not None:
             name, cls, k, fit = b.piece_classes[j]
             if fit is not None:

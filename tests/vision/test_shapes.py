@@ -91,3 +91,13 @@ def test_a_part_of_a_class_colour_and_no_class_shape_is_rejected():
     assert "red, red_disc" in odd.reason
     target = next(t for t in targets_from_detection(detection, cell) if t.id == odd.id)
     assert Planner(cell).bin_for(target) == "reject"
+
+
+def test_class_colours_weigh_lightness_half():
+    # CIEDE2000 with kL = 2: colour-science's delta_E(method="CIE 2000", textiles=True) gives 6.99528 for
+    # this pair (13.76636 with kL = 1): a part in shade, 16 darker, stays within a tolerance of 12
+    from gripsight.vision.pixelclass import class_distance
+
+    lab, ref = np.array([30.0, 55, 40]), np.array([46.0, 60, 42])
+    assert float(class_distance(lab, ref)) == pytest.approx(6.99528, abs=1e-4)
+    assert float(delta_e_2000(lab, ref)) == pytest.approx(13.76636, abs=1e-4)
