@@ -13,7 +13,10 @@ Forward kinematics, in the arm's vertical plane (r radial, z up), with u(t) = (c
     wrist = (shoulder_offset, base_height) + L2 u(shoulder) + L3 u(psi)
     tool  = wrist + (reach, -drop)                           tool kept level
     tool  = wrist + reach u(psi) - drop u(psi + 90 deg)      tool fixed to the forearm
-    x, y  = r cos(base), r sin(base)
+    x, y  = base_x + r cos(base), base_y + r sin(base)
+
+``base_xy_mm`` is where the base axis stands in the table (markers') frame: (0, 0) unless a fit from
+photos of the gripper marker (:mod:`planning.armfit`) found it elsewhere.
 
 Inverse kinematics is closed form (law of cosines on the shoulder-wrist triangle), elbow ``up`` (the
 elbow above the shoulder-to-wrist line) or ``down``. Every target gets a :class:`Reason`; angles are
@@ -128,6 +131,7 @@ class Arm:
     four_bar: FourBar | None = None
     servos: tuple[ServoMap, ...] = ()
     max_speed_rad_s: np.ndarray | None = None
+    base_xy_mm: tuple[float, float] = (0.0, 0.0)
 
     @classmethod
     def from_config(cls, arm_cfg) -> "Arm":
@@ -153,6 +157,7 @@ class Arm:
             four_bar=four_bar,
             servos=tuple(ServoMap.from_config(n, j.servo) for n, j in zip(JOINT_NAMES, joints)),
             max_speed_rad_s=np.radians([j.max_speed_deg_s for j in joints]),
+            base_xy_mm=(float(arm_cfg.base_xy_mm[0]), float(arm_cfg.base_xy_mm[1])),
         )
 
     # ------------------------------------------------------------ linkage
@@ -217,7 +222,8 @@ class Arm:
         tr, tz = self._tool_offset(psi)
         r = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(shoulder) + self.forearm_mm * np.cos(psi) + tr
         z = self.base_height_mm + self.upper_arm_mm * np.sin(shoulder) + self.forearm_mm * np.sin(psi) + tz
-        return np.column_stack([r * np.cos(base), r * np.sin(base), z])
+        bx, by = self.base_xy_mm
+        return np.column_stack([bx + r * np.cos(base), by + r * np.sin(base), z])
 
     def chain_rz_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
         """Shoulder, elbow and wrist in the arm's vertical plane: radius from the base axis and height,
@@ -238,7 +244,8 @@ class Arm:
         q = as_n_by_3(joints_rad, "joints_rad")
         r, z = self.chain_rz_mm(q)
         c, s = np.cos(q[:, 0]), np.sin(q[:, 0])
-        return tuple(np.column_stack([r[:, k] * c, r[:, k] * s, z[:, k]]) for k in (1, 2))
+        bx, by = self.base_xy_mm
+        return tuple(np.column_stack([bx + r[:, k] * c, by + r[:, k] * s, z[:, k]]) for k in (1, 2))
 
     # ------------------------------------------------------------ inverse
     def inverse(self, xyz_mm, branch: Branch | str | None = None) -> IKSolution:
@@ -263,7 +270,7 @@ class Arm:
         """
         p = as_n_by_3(xyz_mm)
         branch = self.branch if branch is None else Branch(branch)
-        x, y, z = p[:, 0], p[:, 1], p[:, 2]
+        x, y, z = p[:, 0] - self.base_xy_mm[0], p[:, 1] - self.base_xy_mm[1], p[:, 2]
         r = np.sqrt(x * x + y * y)                       # (np.hypot is several times slower)
         base = np.arctan2(y, x) * (r > 1e-9)
         l2 = self.upper_arm_mm

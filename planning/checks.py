@@ -103,6 +103,9 @@ def _arm_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[
     x, y, z = np.empty((len(base), 4)), np.empty((len(base), 4)), np.empty((len(base), 4))
     np.multiply(r, np.cos(base)[:, None], out=x[:, :3])
     np.multiply(r, np.sin(base)[:, None], out=y[:, :3])
+    if arm.base_xy_mm != (0.0, 0.0):            # the base axis away from the table origin
+        x[:, :3] += arm.base_xy_mm[0]
+        y[:, :3] += arm.base_xy_mm[1]
     z[:, :3] = z_chain
     x[:, 3], y[:, 3], z[:, 3] = tool_mm[:, 0], tool_mm[:, 1], tool_mm[:, 2]
     return x, y, z
@@ -186,7 +189,7 @@ def _ik_rejection(ctx: CheckContext, xyz_mm: np.ndarray, joints_rad: np.ndarray,
     if reason is Reason.OUT_OF_REACH:
         rr = _reach_at(ctx, float(z))
         span = "nothing" if rr.r_min_mm is None else f"{rr.r_min_mm:.1f}-{rr.r_max_mm:.1f} mm"
-        r = float(np.hypot(x, y))
+        r = float(np.hypot(x - arm.base_xy_mm[0], y - arm.base_xy_mm[1]))
         return Rejection(check, f"tool at r={r:.1f} mm, z={z:.1f} mm; reachable r at that height: {span}",
                          value=r, limit=rr.r_max_mm, unit="mm")
     if reason is Reason.LINKAGE_CANNOT_ASSEMBLE:

@@ -30,6 +30,7 @@ class SegmentKind(str, Enum):
     CLOSE = "close"         # dwell while the gripper closes
     OPEN = "open"           # dwell while the gripper opens
     SWING = "swing"         # joint-space move (from or to a pose the Cartesian moves cannot start from)
+    HOLD = "hold"           # dwell at a stop long enough to take a photo (arm calibration)
 
 
 @dataclass(frozen=True)
@@ -42,6 +43,7 @@ class Segment:
     part_id: str | None = None
     gripper_closed: bool = False
     joints_rad: tuple | None = None      # (start, end), shape (3,) each, for a SWING
+    dwell_s: float | None = None         # a dwell's own length (default: the cell's dwell_s)
 
 
 @dataclass(frozen=True)
@@ -71,7 +73,8 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     # one duration per segment: swings from their slowest joint, dwells fixed, moves from their length
     rate, speed = peak_rate(scaling), speed_mm_s * speed_scale
     need = np.array([_swing_s(seg, arm, speed_scale) * rate * _SPEED_MARGIN if seg.joints_rad is not None
-                     else dwell_s if seg.path is None else seg.path.length_mm * rate / speed for seg in segments])
+                     else (dwell_s if seg.dwell_s is None else seg.dwell_s) if seg.path is None
+                     else seg.path.length_mm * rate / speed for seg in segments])
     moving = np.array([seg.path is not None or seg.joints_rad is not None for seg in segments], bool)
     return _round_up(np.where(moving, np.maximum(need, dt_s), need), dt_s).tolist()
 

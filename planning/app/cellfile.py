@@ -22,10 +22,10 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
+from gripsight.vision.markerdict import DICTIONARY_NAMES, dictionary_size
 from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
-    "ARUCO_DICTIONARY_SIZES",
     "Cell",
     "ArmConfig",
     "JointConfig",
@@ -41,20 +41,8 @@ NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False)]
 Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
 Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
 
-# Published ArUco / AprilTag dictionaries and how many ids each holds (OpenCV's predefined set).
-ARUCO_DICTIONARY_SIZES = {
-    "aruco_4x4_50": 50, "aruco_4x4_100": 100, "aruco_4x4_250": 250, "aruco_4x4_1000": 1000,
-    "aruco_5x5_50": 50, "aruco_5x5_100": 100, "aruco_5x5_250": 250, "aruco_5x5_1000": 1000,
-    "aruco_6x6_50": 50, "aruco_6x6_100": 100, "aruco_6x6_250": 250, "aruco_6x6_1000": 1000,
-    "aruco_original": 1024, "apriltag_16h5": 30, "apriltag_25h9": 35, "apriltag_36h10": 2320,
-    "apriltag_36h11": 587,
-}
-DictionaryName = Literal[
-    "aruco_4x4_50", "aruco_4x4_100", "aruco_4x4_250", "aruco_4x4_1000",
-    "aruco_5x5_50", "aruco_5x5_100", "aruco_5x5_250", "aruco_5x5_1000",
-    "aruco_6x6_50", "aruco_6x6_100", "aruco_6x6_250", "aruco_6x6_1000",
-    "aruco_original", "apriltag_16h5", "apriltag_25h9", "apriltag_36h10", "apriltag_36h11",
-]
+# Every dictionary OpenCV predefines, by our name (the vision library owns the list).
+DictionaryName = Literal[DICTIONARY_NAMES]
 
 
 class _Model(BaseModel):
@@ -69,12 +57,24 @@ class MarkerPlacement(_Model):
     yaw_deg: Number = 0.0
 
 
+class GripperMarker(_Model):
+    """A marker fixed to the gripper, for fitting the servo maps and base placement from photos
+    (``gripsight arm-poses`` / ``arm-fit``). Same dictionary as the table markers."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: PositiveMm
+    margin_mm: NonNegativeMm = 5.0
+    offset_mm: Point3 = [0.0, 0.0, 0.0]     # its centre from the tool point: forward, left, up (tool frame)
+    level: bool | None = None              # faces up; false: tilts with the forearm; default: as arm.tool.level
+
+
 class MarkersConfig(_Model):
     dictionary: DictionaryName = "aruco_4x4_50"
     size_mm: PositiveMm
     margin_mm: NonNegativeMm = 10.0
     paper_srgb: Annotated[float, Field(ge=100, le=255, allow_inf_nan=False)] = 232.0   # paper's grey level in a well-lit photo
     layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1)
+    on_gripper: GripperMarker | None = None
 
 
 class CameraConfig(_Model):
@@ -134,6 +134,7 @@ class GripperConfig(_Model):
 
 class ArmConfig(_Model):
     base_height_mm: Number
+    base_xy_mm: Point2 = [0.0, 0.0]   # where the base axis stands in the markers' frame (written by arm-fit)
     shoulder_offset_mm: Number = 0.0
     upper_arm_mm: PositiveMm
     forearm_mm: PositiveMm
@@ -289,7 +290,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if joint.min_deg < joint.max_deg and not joint.min_deg <= value <= joint.max_deg:
             out.append(Problem(f"motion.home_deg.{name}", f"{value:g} is outside the joint limits [{joint.min_deg:g}, {joint.max_deg:g}]"))
 
-    size = ARUCO_DICTIONARY_SIZES[cell.markers.dictionary]
+    size = dictionary_size(cell.markers.dictionary)
     layout = cell.markers.layout
     for marker_id in layout:
         if marker_id >= size:
@@ -300,6 +301,17 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
             pa, pb = layout[a], layout[b]
             if math.hypot(pa.x - pb.x, pa.y - pb.y) < cell.markers.size_mm:
                 out.append(Problem(f"markers.layout.{b}", f"overlaps marker {a} (centres closer than size_mm)"))
+
+    grip_marker = cell.markers.on_gripper
+    if grip_marker is not None:
+        if grip_marker.id >= size:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} does not exist in {cell.markers.dictionary} (ids 0-{size - 1})"))
+        if grip_marker.id in layout:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} is already a table marker (markers.layout); "
+                                                        "give the gripper its own id"))
+        if grip_marker.level and not cell.arm.tool.level:
+            out.append(Problem("markers.on_gripper.level", "the tool is fixed to the forearm (arm.tool.level: false), "
+                                                           "so a marker on it tilts with it; remove the key or set false"))
 
     if abs(_polygon_area(cell.work_area)) < 1.0:
         out.append(Problem("work_area", "the polygon has no area (points collinear or repeated)"))

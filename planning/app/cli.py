@@ -11,7 +11,7 @@ from typing import Optional
 
 import typer
 
-from gripsight.app.commands import camera, cell, jobs  # noqa: F401 - the commands register on `app`
+from gripsight.app.commands import arm, camera, cell, jobs  # noqa: F401 - the commands register on `app`
 from gripsight.app.commands.common import _echo_err, app
 
 __all__ = ["app", "main", "entry"]

@@ -220,7 +220,7 @@ def test_batch_on_a_local_dask_cluster_matches_local_workers(tmp_path, capsys):
     folder = _batch_folder(tmp_path, n=3)
     assert main(["batch", str(folder), "--workers", "1", "--out", str(tmp_path / "local")]) == 0
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None) as cluster:
+                                  dashboard_address=":0") as cluster:
         assert main(["batch", str(folder), "--scheduler", cluster.scheduler_address, "--out", str(tmp_path / "dask")]) == 0
     capsys.readouterr()
     assert (tmp_path / "local" / "batch.csv").read_text() == (tmp_path / "dask" / "batch.csv").read_text()

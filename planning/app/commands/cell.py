@@ -101,5 +101,7 @@ def markers(
         raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
     cfg = load_cell(cell)
     paths = write_marker_sheet(cfg, out, paper, dpi)
+    grip = cfg.markers.on_gripper
+    extra = "" if grip is None else f" and gripper marker {grip.id} ({grip.size_mm:g} mm)"
     typer.echo(f"wrote {', '.join(map(str, paths))}: {len(cfg.markers.layout)} markers, "
-               f"{cfg.markers.size_mm:g} mm; print at 100 % and check the 100 mm scale bar")
+               f"{cfg.markers.size_mm:g} mm{extra}; print at 100 % and check the 100 mm scale bar")
