@@ -88,7 +88,7 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
     import numpy as np
 
-    from gripsight.vision.colour import delta_e_2000
+    from gripsight.vision.pixelclass import class_distance
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
     from gripsight.vision.whitebalance import fit_illumination, lab_image
@@ -106,9 +106,10 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     lab = np.median(patch, axis=0)
     typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
                + ("" if ill is not None else " (no marker paper seen: not white-balanced)"))
-    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(delta_e_2000(lab, kv[1].lab))):
-        d = float(delta_e_2000(lab, cls.lab))
-        typer.echo(f"  {name}: dE2000 {d:.1f} (tolerance {cls.tolerance:g}){'  <- match' if d < cls.tolerance else ''}")
+    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(class_distance(lab, kv[1].lab))):
+        d = float(class_distance(lab, cls.lab))
+        typer.echo(f"  {name}: dE2000 {d:.1f} (lightness weighed half; tolerance {cls.tolerance:g})"
+                   f"{'  <- match' if d < cls.tolerance else ''}")
 
 
 @command()
