@@ -36,6 +36,7 @@ class Check(StrEnum):
     KEEP_OUT = "keep_out"                             # subject: the zone
     JOINT_SPEED = "joint_speed"                       # subject: the joint
     BRANCH_FLIP = "branch_flip"
+    HELD_PART = "held_part"                           # the carried part would hit the table, a tray floor or an obstacle
 
 
 _CHECK_OF_REASON = {Reason.OUT_OF_REACH: (Check.OUT_OF_REACH, ""),

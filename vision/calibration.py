@@ -23,6 +23,7 @@ from enum import StrEnum
 
 import numpy as np
 
+from gripsight.vision.camerapose import centre_for_height, centre_from_raised
 from gripsight.vision.errors import CalibrationError
 from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
 from gripsight.vision.lens import DivisionLens, NoLens
@@ -359,14 +360,24 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     if cell.camera.centre_mm is not None:
         centre, source = np.array(cell.camera.centre_mm, float), CentreSource.MEASURED
     elif raised:
-        centre, source = camera_centre_from_raised(mapping, raised), CentreSource.RAISED_MARKERS
+        # one parameter (the pinhole's focal length) for all raised corners; the free centre where that fails
+        corners_px = np.concatenate([f.corners_px for f in raised])
+        corners_mm = np.concatenate([f.corners_mm for f in raised])
+        centre = centre_from_raised(mapping, image_size, corners_px, corners_mm,
+                                    cell.camera.height_mm or _DEFAULT_HEIGHT_MM)
+        if not (np.all(np.isfinite(centre)) and centre[2] > 2 * float(corners_mm[:, 2].max())):
+            centre = camera_centre_from_raised(mapping, raised)
+        source = CentreSource.RAISED_MARKERS
     else:
-        w, h = image_size
-        nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
         height = cell.camera.height_mm or _DEFAULT_HEIGHT_MM
-        centre, source = np.array([nadir[0], nadir[1], height]), CentreSource.ASSUMED
-        notes.append(f"camera centre assumed: nadir under the image centre, height {height:g} mm "
-                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}")
+        centre, source = centre_for_height(mapping, image_size, height), CentreSource.ASSUMED
+        if not np.all(np.isfinite(centre)):
+            w, h = image_size
+            nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
+            centre = np.array([nadir[0], nadir[1], height])
+        notes.append(f"camera centre assumed: {height:g} mm up "
+                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}"
+                     f", over the nadir the table's perspective shows ({centre[0]:.0f}, {centre[1]:.0f}) mm")
     return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
                        rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes)
 

@@ -27,7 +27,6 @@ any number of markers can be refined at once.
 from __future__ import annotations
 
 import math
-import warnings
 from dataclasses import dataclass
 
 import cv2
@@ -56,16 +55,16 @@ def sample_image(image: np.ndarray, x: np.ndarray, y: np.ndarray) -> np.ndarray:
 
     The points go to ``cv2.remap`` as a map of rows ``_MAP_WIDTH`` wide, so the count has no limit."""
     shape = np.shape(x)
-    xf = np.asarray(x, np.float32).ravel()
-    yf = np.asarray(y, np.float32).ravel()
-    n = xf.size
+    n = int(np.prod(shape))
     if n == 0:
         return np.zeros(shape, np.float32)
     rows = -(-n // _MAP_WIDTH)
     width = min(n, _MAP_WIDTH)
-    pad = rows * width - n
-    mx = np.pad(xf, (0, pad)).reshape(rows, width)
-    my = np.pad(yf, (0, pad)).reshape(rows, width)
+    mx = np.zeros(rows * width, np.float32)
+    my = np.zeros(rows * width, np.float32)
+    mx[:n] = np.ravel(x)
+    my[:n] = np.ravel(y)
+    mx, my = mx.reshape(rows, width), my.reshape(rows, width)
     out = np.empty((rows, width), np.float32)
     for r0 in range(0, rows, 16000):      # the map's height is bounded too
         out[r0:r0 + 16000] = cv2.remap(image, mx[r0:r0 + 16000], my[r0:r0 + 16000], cv2.INTER_LINEAR,
@@ -89,7 +88,7 @@ class RefinedCorners:
     blur_px: np.ndarray
 
 
-def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px):
+def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px, per_half=_S):
     """Sample the profiles of every marker: returns the points along each edge (M, 4, 2S, 2), the outward
     normals (M, 4, 2), the across-edge offsets (M, P) and the profiles (M, 4, 2S, P)."""
     m = len(corners)
@@ -103,16 +102,17 @@ def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px):
     outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
     normal = normal * np.where(outward == 0, 1.0, outward)                 # from ink to paper
     # along each edge: S places on each half, from end_gap from the corner to 45 % of the edge
-    f0 = np.clip(end_gap_px[:, None] / length[..., 0], 0.05, 0.3)          # (M, 4)
-    half = np.linspace(0.0, 1.0, _S)
+    f0 = np.clip(end_gap_px[:, None] / length[..., 0], 0.08, 0.3)          # (M, 4)
+    half = np.linspace(0.0, 1.0, per_half)
     first = f0[..., None] + (0.45 - f0[..., None]) * half                   # (M, 4, S)
     along = np.concatenate([first, 1.0 - first[..., ::-1]], axis=-1)        # (M, 4, 2S)
     base = a[:, :, None, :] + along[..., None] * d[:, :, None, :]
     across = -inside_px[:, None] + (inside_px + outside_px)[:, None] * _ACROSS[None, :]     # (M, P)
-    pts = base[..., None, :] + across[:, None, None, :, None] * normal[:, :, None, None, :]
-    if offsets_px is not None:
-        pts = pts + np.asarray(offsets_px, float)[:, None, None, None, :]
-    prof = sample_image(lin, pts[..., 0], pts[..., 1])                       # (M, 4, 2S, P)
+    off = np.zeros((m, 2)) if offsets_px is None else np.asarray(offsets_px, float)
+    acr = across.astype(np.float32)[:, None, None, :]
+    px = (base[..., 0] + off[:, None, None, 0]).astype(np.float32)[..., None] + acr * normal[:, :, None, None, 0].astype(np.float32)
+    py = (base[..., 1] + off[:, None, None, 1]).astype(np.float32)[..., None] + acr * normal[:, :, None, None, 1].astype(np.float32)
+    prof = sample_image(lin, px, py)                                          # (M, 4, 2S, P)
     return base, normal, across, prof
 
 
@@ -157,11 +157,15 @@ def _crossings(prof, across, blur_px=None):
 
 
 def _median_where(values, mask, empty):
-    """Median over the last axis of the values where ``mask``; ``empty`` where none is."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        out = np.nanmedian(np.where(mask, values, np.nan), axis=-1)
-    return np.where(np.isnan(out), empty, out)
+    """Median over the last axis of the values where ``mask``; ``empty`` where none is (sorted with the
+    others last, then the middle of the valid ones: much faster than ``np.nanmedian`` on small rows)."""
+    v = np.sort(np.where(mask, values, np.inf), axis=-1)
+    n = mask.sum(axis=-1)
+    lo = np.take_along_axis(v, np.maximum((n - 1) // 2, 0)[..., None], axis=-1)[..., 0]
+    hi = np.take_along_axis(v, np.maximum(n // 2, 0)[..., None], axis=-1)[..., 0]
+    with np.errstate(invalid="ignore"):
+        mid = 0.5 * (lo + hi)
+    return np.where(n > 0, mid, empty)
 
 
 def _fit_lines(points, valid):
@@ -241,6 +245,17 @@ def _pass(lin, corners, side_px, cell_px, blur_px, offsets_px, blur_in=None):
     return out, sig, used_rms, blur, ok
 
 
+def _blur(lin, corners, cell_px, offsets_px):
+    """Each marker's edge blur (Gaussian sigma, px) from a few profiles across its edges (3 per half
+    edge, reaching 3 px or half a cell), read at the detector's corners: the 25-75 % width / 1.349."""
+    inside = np.minimum(0.5 * cell_px, 3.0)
+    outside = np.minimum(np.maximum(cell_px, 1.5), 3.0)
+    _, _, across, prof = _profiles(lin, corners, inside, outside, np.full(len(corners), 2.5), offsets_px, per_half=3)
+    _, valid, width = _crossings(prof, across)
+    m = len(corners)
+    return _median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
+
+
 def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, offsets_px=None) -> RefinedCorners:
     """Edge-based refinement of the detector's corners (M, 4, 2) of markers ``cells_per_side`` cells across
     (border included).
@@ -255,9 +270,8 @@ def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, of
         return RefinedCorners(rough.copy(), np.zeros(0, bool), empty, empty)
     side_px = np.linalg.norm(rough - np.roll(rough, -1, axis=1), axis=-1).mean(axis=1)
     cell_px = side_px / cells_per_side
-    first, _, _, blur, ok1 = _pass(lin, rough, side_px, cell_px, np.full(m, 1.0), offsets_px)
-    start = np.where(ok1.all(axis=1)[:, None, None], first, rough)
-    out, sig, rms, _, ok = _pass(lin, start, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
+    blur = _blur(lin, rough, cell_px, offsets_px)
+    out, sig, rms, _, ok = _pass(lin, rough, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
     limit = 0.3 + cell_px[:, None] / 3.0 + blur[:, None] + 3.0 * sig
     moved_ok = np.linalg.norm(out - rough, axis=-1) <= limit
     good = (ok & moved_ok).all(axis=1)

@@ -17,7 +17,7 @@ import numpy as np
 from gripsight.vision.colour import linear_from_srgb
 from gripsight.vision.markerdict import aruco_dictionary, cells_per_side
 from gripsight.vision.markercheck import marker_evidence
-from gripsight.vision.markeredges import refine_corners
+from gripsight.vision.markeredges import RefinedCorners, refine_corners
 
 __all__ = ["MarkerDetection", "detect_markers", "aruco_dictionary", "linearised_gray"]   # aruco_dictionary: from markerdict
 
@@ -44,7 +44,7 @@ def linearised_gray(image) -> np.ndarray:
 @functools.lru_cache(maxsize=8)
 def _detector(dictionary_name: str):
     params = cv2.aruco.DetectorParameters()
-    params.cornerRefinementMethod = cv2.aruco.CORNER_REFINE_SUBPIX
+    params.cornerRefinementMethod = cv2.aruco.CORNER_REFINE_NONE    # refined from the edges here; see _fallback
     # sensor noise makes square outlines ragged; OpenCV's default 0.03 then misses clear markers
     params.polygonalApproxAccuracyRate = 0.05
     return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), params)
@@ -121,6 +121,22 @@ def _detect_in_windows(gray, detector, expected: dict):
     return ids, corners
 
 
+def _fallback(gray, result):
+    """Where the edge refinement failed, OpenCV's sub-pixel corners (``cv2.cornerSubPix``, run for those
+    markers only) instead of the detector's raw ones."""
+    if result.refined.all():
+        return result
+    corners = result.corners_px.copy()
+    bad = np.flatnonzero(~result.refined)
+    pts = corners[bad].reshape(-1, 1, 2).astype(np.float32)
+    side = np.linalg.norm(corners[bad] - np.roll(corners[bad], -1, axis=1), axis=-1).mean()
+    win = int(np.clip(side / 12, 2, 5))
+    criteria = (cv2.TERM_CRITERIA_EPS + cv2.TERM_CRITERIA_MAX_ITER, 30, 0.1)     # OpenCV's aruco defaults
+    cv2.cornerSubPix(gray, pts, (win, win), (-1, -1), criteria)
+    corners[bad] = pts.reshape(-1, 4, 2)
+    return RefinedCorners(corners, result.refined, result.edge_rms_px, result.blur_px)
+
+
 def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict | None) -> list[MarkerDetection]:
     """Where an id was decoded more than once, keep the copy nearest its expected place (a calibrated
     camera), else the one with clearly the best evidence; copies that tie are all kept (calibration sets
@@ -191,7 +207,7 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
     if layout_ids is not None:
         keep = np.isin(ids, np.fromiter(layout_ids, int))
         ids, rough = ids[keep], rough[keep]
-    result = refine_corners(lin, rough, cells_per_side(dictionary_name))
+    result = _fallback(gray, refine_corners(lin, rough, cells_per_side(dictionary_name)))
     evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name)
     keep = evidence.accepted & _size_fits(result.corners_px, ids, expected)
     found = [MarkerDetection(int(ids[k]), result.corners_px[k], bool(result.refined[k])) for k in np.flatnonzero(keep)]

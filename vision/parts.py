@@ -41,8 +41,10 @@ from gripsight.vision.topface import (
     footprint_centre,
     min_rect,
     outlines_geometry,
+    score_top_faces,
     top_face_guess,
 )
+from gripsight.vision.shapes import ColourGroup, colour_groups
 from gripsight.vision.whitebalance import Illumination, fit_illumination
 
 __all__ = ["DetectedPart", "Detection", "PartStatus", "detect_parts", "STATUSES"]
@@ -57,11 +59,12 @@ class PartStatus(StrEnum):
     TOO_LARGE = "too_large"
     TOUCHING = "touching"                  # touching parts that could not be split
     UNKNOWN_COLOUR = "unknown_colour"      # a part of no class's colour: goes to the reject bin
+    UNKNOWN_SHAPE = "unknown_shape"        # a class's colour but no class's shape and size: the reject bin
 
     @property
     def pickable(self) -> bool:
         """Goes to a bin (its class's, or the reject bin); the others stay on the table."""
-        return self in (PartStatus.OK, PartStatus.UNKNOWN_COLOUR)
+        return self in (PartStatus.OK, PartStatus.UNKNOWN_COLOUR, PartStatus.UNKNOWN_SHAPE)
 
 
 STATUSES = tuple(s.value for s in PartStatus)
@@ -188,12 +191,14 @@ def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
     grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(centre_px[None])[0])
     outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
     mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
+    # markers on the table are left in: their paper and ink are not a part's colour, and a part beside or
+    # on one is whole (whether it lies on a marker is decided from its footprint, in table mm). A raised
+    # marker's box hides what is behind it: the marker as seen is masked, and any marker not in the layout.
     pad = 2.0
-    for marker_id, m in cell.markers.layout.items():
-        paper = marker_paper_corners_mm(m, cell.markers.size_mm, cell.markers.margin_mm + pad)[:, :2]
-        if m.z == 0:
-            cv2.fillPoly(mask, [np.round(_poly_px(mapping, paper, 4) * 8).astype(np.int32)], 0, shift=3)
-    for d in detections:          # raised markers (and any marker) as seen
+    for d in detections:
+        placement = cell.markers.layout.get(d.id)
+        if placement is not None and placement.z == 0:
+            continue
         c = d.corners_px.mean(axis=0)
         grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + pad) / cell.markers.size_mm)
         cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
@@ -227,9 +232,10 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     if min(region.valid_small.shape) == 0 or not cell.parts:
         notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
-    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts,
+    groups = colour_groups(cell.parts)
+    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
+    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -243,10 +249,51 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         outside = ~points_in_polygon([p.xy_mm for p in found], cell.work_area)
         found = [replace(p, status=PartStatus.CUT_BY_EDGE, reason="lies across the edge of the work area")
                  if out and p.status is PartStatus.OK else p for p, out in zip(found, outside)]
+        found = _on_markers(found, cell)
     found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
     parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
              for i, p in enumerate(found)]
     return Detection(parts, illumination, notes)
+
+
+def _footprint_points_mm(part: DetectedPart, cls) -> np.ndarray:
+    """Points (N, 2) on and inside a found part's footprint (its class's size and shape, its yaw)."""
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    s = np.linspace(-0.5, 0.5, 7)
+    gx, gy = np.meshgrid(s * fp[0], s * fp[1])
+    local = np.column_stack([gx.ravel(), gy.ravel()])
+    if cls.shape == "cylinder":
+        local = local[(local[:, 0] / fp[0]) ** 2 + (local[:, 1] / fp[1]) ** 2 <= 0.25 + 1e-9]
+    yaw = np.radians(part.yaw_deg)
+    rot = np.array([[np.cos(yaw), -np.sin(yaw)], [np.sin(yaw), np.cos(yaw)]])
+    return local @ rot.T + np.asarray(part.xy_mm, float)
+
+
+def _on_markers(found: list[DetectedPart], cell) -> list[DetectedPart]:
+    """A part whose footprint (in table mm) overlaps a marker lies on it: cut. The marker is its black
+    square and the inner half of its white margin (the quiet zone its detection needs); a part on the
+    outer edge of the paper (0.02 mm thick) is whole and is picked."""
+    if not cell.markers.layout:
+        return found
+    ids = list(cell.markers.layout)
+    papers = np.array([marker_paper_corners_mm(cell.markers.layout[i], cell.markers.size_mm,
+                                               0.5 * cell.markers.margin_mm)[:, :2] for i in ids])
+    paper_centres = papers.mean(axis=1)
+    paper_reach = np.linalg.norm(papers[:, 0] - paper_centres, axis=1)          # half diagonals
+    xy = np.array([p.xy_mm for p in found], float)
+    reach_of = {n: 0.5 * float(np.hypot(c.footprint_mm[0], c.footprint_mm[-1])) for n, c in cell.parts.items()}
+    part_reach = np.array([reach_of.get(p.class_name, 0.0) for p in found])
+    near = np.linalg.norm(xy[:, None, :] - paper_centres[None], axis=2) < part_reach[:, None] + paper_reach[None]
+    out = []
+    for p, close in zip(found, near):
+        cls = cell.parts.get(p.class_name)
+        if p.status is PartStatus.OK and cls is not None and close.any():
+            pts = _footprint_points_mm(p, cls)
+            hit = next((ids[j] for j in np.flatnonzero(close) if points_in_polygon(pts, papers[j]).any()), None)
+            if hit is not None:
+                p = replace(p, status=PartStatus.CUT_BY_EDGE, reason=f"lies on marker {hit}")
+        out.append(p)
+    return out
 
 
 @dataclass
@@ -268,21 +315,28 @@ class _Blob:
     delta_e: float
     rect: tuple[float, float, float]            # the outline's length, width (footprint mm) and yaw
     problem: TopFaceProblem | None = None
+    piece_classes: list | None = None           # per piece of a split blob of several classes' colour:
+    #                                             (name, class, k, top-face fit or None)
 
 
 class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, parallax, seen_as, camera_centre_mm):
+    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
-        self.names = list(cell.parts)
+        self.groups: dict[str, ColourGroup] = groups
+        self.names = list(groups)
         self.nadir = np.asarray(camera_centre_mm[:2], float)
         self.cz = float(camera_centre_mm[2])
         self.kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
         self.tallest = max(c.height_mm for c in cell.parts.values())
         self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+
+    def k_of(self, height_mm: float) -> float:
+        """The top face's scale about the nadir for a part of this height (1 without parallax)."""
+        return self.cz / (self.cz - height_mm) if self.parallax else 1.0
 
 
 @dataclass
@@ -298,6 +352,9 @@ class _Outline:
     sub: np.ndarray
     x: int
     y: int
+    group: ColourGroup | None = None          # its colour group, when that holds several classes
+    members: tuple[str, ...] = ()             # once a class is chosen: the classes of its colour
+    split_into: int = 0                       # parts side by side its outline's length says it holds
 
 
 def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
@@ -316,10 +373,13 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
         mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, search.kernel)
         contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
         unknown = k_label == len(names) + 1
-        name = "unknown" if unknown else names[k_label - 1]
-        cls = None if unknown else search.cell.parts[name]
-        height = search.tallest if unknown else cls.height_mm
-        k = cz / (cz - height) if search.parallax else 1.0
+        colour = None if unknown else search.groups[names[k_label - 1]]
+        several = colour is not None and len(colour.members) > 1
+        name = "unknown" if unknown else (colour.name if several else colour.members[0])
+        cls = None if unknown or several else search.cell.parts[name]
+        height = cls.height_mm if cls is not None else (
+            max(search.cell.parts[n].height_mm for n in colour.members) if several else search.tallest)
+        k = search.k_of(height)
         for contour in contours:
             if len(contour) < 10:                             # a speck of a few pixels
                 continue
@@ -330,7 +390,7 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
             sub = np.zeros((h, w), np.uint8)
             cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
             out.append(_Outline(name, cls, float(height), k, (outline + (x0 + u0, y0 + v0)).astype(float), sub,
-                                x + x0, y + y0))
+                                x + x0, y + y0, colour if several else None))
     return out
 
 
@@ -344,10 +404,14 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
     outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
+    outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
     for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
+        shape_misfit = unknown and o.group is not None
+        if shape_misfit:
+            name = "unknown"                    # no class: the reject bin
         area = float(area_mapped) / (k * k)
         if unknown and area < _MIN_UNKNOWN_MM2:
             continue
@@ -358,15 +422,19 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
         moments = cv2.moments(sub, binaryImage=True)
         pixel_uv = (moments["m10"] / moments["m00"] + x + u0, moments["m01"] / moments["m00"] + y + v0)
         whole = [(m, outline_mm, o.outline_px, area, pixel_uv)]
-        de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
+        de = float("nan") if unknown and not shape_misfit else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
         cut = bool(search.edge_band[y:y + h, x:x + w][inside].any())
         mode = search.seen_as or (cls.seen_as if cls is not None else "auto")
         pieces, status, reason = whole, PartStatus.OK, ""
         if unknown:
+            what = f"a part of {o.group.name.replace('+', ' or ')}'s colour" if shape_misfit else "an unknown colour"
             if cut:
-                status, reason = PartStatus.CUT_BY_EDGE, "an unknown colour cut by the edge of the photo or a marker"
+                status, reason = PartStatus.CUT_BY_EDGE, f"{what} cut by the edge of the photo or a marker"
             elif area > _UNKNOWN_MAX_RATIO * search.typical:
                 status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
+            elif shape_misfit:
+                status, reason = PartStatus.UNKNOWN_SHAPE, (f"colour of {', '.join(o.group.members)} but the shape or "
+                                                            f"size of none ({_shape_words(o, outline_mm, k)})")
             else:
                 status, reason = PartStatus.UNKNOWN_COLOUR, "colour matches no class"
         elif cut:
@@ -376,15 +444,128 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             ratio = area / expected
             if ratio < _MIN_RATIO:
                 status, reason = PartStatus.TOO_SMALL, f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
-            elif ratio > _MAX_RATIO:
-                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
+            elif ratio > _MAX_RATIO or o.split_into >= 2:
+                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected,
+                                                max(ratio, o.split_into), name, whole)
         blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
                      min_rect(outline_mm, k))
+        if len(pieces) > 1 and o.members and parallax:
+            blob.piece_classes = _classify_pieces(search, blob, o.members)
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
             blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
+
+
+def _choose_classes(search: _Search, outlines, outlines_mm, areas, centroids, normals) -> list[_Outline]:
+    """Give each blob of a colour group of several classes the class whose shape and size fit it
+    (:mod:`vision.shapes`), all blobs' candidate fits at once. A blob of a part's size that no class
+    fits stays ``unknown`` (with its group: ``unknown_shape``); one too large or too small for every
+    class takes the class whose area it is nearest a whole number of (touching parts, or a speck)."""
+    problems, owners, fallback = [], [], {}
+    for i, o in enumerate(outlines):
+        if o.group is None:
+            continue
+        ratios = []
+        for name in o.group.members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            expected = expected_area_mm2(cls)
+            ratio = float(areas[i]) / (k * k) / expected
+            ratios.append(ratio)
+            if _MIN_RATIO < ratio < _MAX_RATIO:
+                guess = top_face_guess(centroids[i], areas[i], search.nadir, k, expected)
+                problems.append(TopFaceProblem.of_class(outlines_mm[i], normals[i], guess, search.nadir, k, cls,
+                                                        min_rect(outlines_mm[i], k)[2]))
+                owners.append((i, name))
+        if not any(_MIN_RATIO < r < _MAX_RATIO for r in ratios):
+            off = [abs(r - max(round(r), 1)) / max(round(r), 1) for r in ratios]
+            fallback[i] = o.group.members[int(np.argmin(off))]
+    best: dict[int, tuple[str, float]] = {}
+    for (i, name), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (i not in best or score.median_mm < best[i][1]):
+            best[i] = (name, score.median_mm)
+    out = []
+    for i, o in enumerate(outlines):
+        name = best[i][0] if i in best else fallback.get(i)
+        split_into = 0
+        if o.group is not None and name is None:
+            # no top face fits (shading, a shadow): its size alone, if that says one class and no other
+            name = _by_size(search, o.group.members, outlines_mm[i])
+        if o.group is not None and name is None:
+            # no class fits it as one part: is it parts side by side (an outline a whole number of parts long)?
+            name, split_into = _row_of_parts(search, o.group.members, outlines_mm[i])
+        if o.group is None or name is None:
+            out.append(o)
+            continue
+        cls = search.cell.parts[name]
+        out.append(replace(o, name=name, cls=cls, height_mm=float(cls.height_mm), k=search.k_of(cls.height_mm),
+                           group=None, members=o.group.members, split_into=split_into))
+    return out
+
+
+_SIZE_FIT = 0.15          # a footprint side within 15 % of a class's: that size
+
+
+def _by_size(search: _Search, members, outline_mm) -> str | None:
+    """The one class of the colour whose footprint sides the outline's (length and width, as a top face)
+    are within 15 % of, when every other class's are farther than that; None otherwise."""
+    fits = []
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = sorted(list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1), reverse=True)
+        fits.append(abs(length / fp[0] - 1.0) <= _SIZE_FIT and abs(width / fp[1] - 1.0) <= _SIZE_FIT)
+    return members[fits.index(True)] if sum(fits) == 1 else None
+
+
+def _row_of_parts(search: _Search, members, outline_mm) -> tuple[str | None, int]:
+    """(class, n) when a blob's outline is about n >= 2 parts of a class long and one wide (touching parts
+    whose colour was partly lost to shading, so their area alone does not say so), else (None, 0)."""
+    best = (None, 0, np.inf)
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+        n = int(round(length / max(fp)))
+        off = abs(length / max(fp) - n) + abs(width / min(fp) - 1.0)
+        if n >= 2 and abs(length / max(fp) - n) < 0.3 and abs(width / min(fp) - 1.0) < 0.3 and off < best[2]:
+            best = (name, n, off)
+    return best[0], best[1]
+
+
+def _classify_pieces(search: _Search, b: _Blob, members) -> list:
+    """The class of each piece of a blob split from touching parts of one colour's several classes: the
+    blob's outline points nearest each piece's centre are that piece's own edge (the cut between pieces
+    has none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
+    A piece no class fits keeps the blob's class and its area-based centre."""
+    centres = np.array([p[0] for p in b.pieces])
+    owner = np.linalg.norm(b.outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
+    problems, owners = [], []
+    for j, piece in enumerate(b.pieces):
+        sel = owner == j
+        if sel.sum() < 12:
+            continue
+        for name in members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            guess = top_face_guess(piece[0], piece[3] * b.k * b.k, search.nadir, k, expected_area_mm2(cls))
+            problems.append(TopFaceProblem.of_class(b.outline_mm[sel], b.normals[sel], guess, search.nadir, k, cls,
+                                                    min_rect(piece[1], k)[2]))
+            owners.append((j, name, k))
+    best: dict[int, tuple] = {}
+    for (j, name, k), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
+            best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
+    return [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else (b.name, b.cls, b.k, None)
+            for j in range(len(b.pieces))]
+
+
+def _shape_words(o: _Outline, outline_mm, k: float) -> str:
+    """The measured footprint of a blob that fits no class, in words for its reason."""
+    length, width, _ = min_rect(outline_mm, k)
+    return f"its outline measures {length:.0f} x {width:.0f} mm"
 
 
 def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:
@@ -395,8 +576,22 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
         area_mapped = sum(p[3] for p in b.pieces) * b.k * b.k
         tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, area_mapped, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
     parts = []
-    for (piece_m, piece_mm, piece_px, piece_area, piece_uv), top in zip(b.pieces, tops * (len(b.pieces) // len(tops))):
+    for j, ((piece_m, piece_mm, piece_px, piece_area, piece_uv), top) in enumerate(
+            zip(b.pieces, tops * (len(b.pieces) // len(tops)))):
         length, width, yaw = b.rect if len(b.pieces) == 1 else min_rect(piece_mm, b.k)
+        if top_fit is not None and len(b.pieces) == 1 and b.cls is not None:
+            # the top face's own size (the fitted scale of the class's footprint), not the outline's, which
+            # holds the visible sides wherever they kept the class's colour
+            fp = sorted(list(b.cls.footprint_mm) * (2 if len(b.cls.footprint_mm) == 1 else 1), reverse=True)
+            length, width = fp[0] * top_fit[2] / b.k, fp[1] * top_fit[2] / b.k
+        if b.piece_classes is not None:
+            name, cls, k, fit = b.piece_classes[j]
+            if fit is not None:
+                centre = nadir + (fit[0] - nadir) / k
+                parts.append(DetectedPart("", name, b.status, b.reason, piece_uv, (float(centre[0]), float(centre[1])),
+                                          float(cls.height_mm), float(piece_area), yaw, length, width, "top_outline",
+                                          b.delta_e, piece_px))
+                continue
         if top is not None:
             centre, used = nadir + (top - nadir) / b.k, "top_outline"
             by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")

@@ -173,7 +173,7 @@ def draw_tool_errors(path, cell, grid_mm: np.ndarray, before_mm: np.ndarray, aft
         fig.colorbar(sc, ax=ax, label="tool-point error, mm")
         ax.plot(poly[:, 1], poly[:, 0], color="0.3", lw=0.8)
         ok = ~np.isnan(values)
-        ax.set_title(f"{title}: max {np.nanmax(values):.2f} mm, RMS {np.sqrt(np.mean(values[ok] ** 2)):.2f} mm")
+        ax.set_title(f"{title}: max {np.nanmax(values):.2f} mm, RMS {np.sqrt(np.mean(values[ok] ** 2)):.2f} mm", fontsize=10)
         ax.set_xlabel("y, mm (left)")
         ax.set_ylabel("x, mm (forward)")
         ax.invert_xaxis()

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import shutil
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Annotated, Literal
@@ -18,7 +19,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
-from gripsight.app.fileio import utc_now, write_text_atomic
+from gripsight.app.fileio import atomic_output, utc_now
 from gripsight.vision.calibration import Calibration, CentreSource, MarkerFit, Verdict
 from gripsight.vision.homography import TableMapping
 from gripsight.vision.lens import lens_from_dict
@@ -89,6 +90,7 @@ class StoredCalibration:
         self.image_size = (data.photo.width_px, data.photo.height_px)
         self.marker_corners_px = {m.id: np.array(m.corners_px, float) for m in data.markers if m.used}
         self.verdict = data.verdict
+        self.sha256: str | None = None           # SHA-256 of the file's bytes, set by read_calibration
 
 
 def default_calibration_path(cell) -> Path:
@@ -136,20 +138,30 @@ def calibration_record(cal: Calibration, cell, photo_path) -> dict:
 
 
 def write_calibration(path, cal: Calibration, cell, photo_path) -> Path | None:
-    """Write the calibration atomically; an existing file is first moved to its history folder.
+    """Write the calibration atomically, the new file first: it is written and flushed beside the old
+    one, the old one is then linked (or copied) into its history folder, and only then the new one takes
+    its name. A failure anywhere leaves the old calibration where it was.
 
     Returns the history file the old calibration went to, or None.
     """
+    from gripsight.app.errors import GripsightError
+
     path = Path(path)
+    if path.is_dir():
+        raise GripsightError(f"{path}: is a folder; a calibration needs a file name inside or beside it")
     record = calibration_record(cal, cell, photo_path)
     text = "# gripsight calibration: table frame in mm, pixels as in the photo (OpenCV's convention)\n" + \
         yaml.safe_dump(record, sort_keys=False, default_flow_style=None, width=140)
     moved = None
-    if path.exists():
-        moved = history_path(path, datetime.now(timezone.utc))
-        moved.parent.mkdir(parents=True, exist_ok=True)
-        os.replace(path, moved)
-    write_text_atomic(path, text)
+    with atomic_output(path) as tmp:
+        Path(tmp).write_bytes(text.encode("utf-8"))
+        if path.is_file():
+            moved = history_path(path, datetime.now(timezone.utc))
+            moved.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                os.link(path, moved)           # the old bytes keep their name until the new file replaces it
+            except OSError:
+                shutil.copy2(path, moved)
     return moved
 
 
@@ -163,7 +175,7 @@ def read_calibration(path) -> StoredCalibration:
     """
     from gripsight.app.cellfile import _pydantic_problems, read_yaml
 
-    data, _ = read_yaml(path, "calibration file")
+    data, raw = read_yaml(path, "calibration file")
     if not isinstance(data, dict):
         raise CellFileError(str(path), [Problem("", "not a gripsight calibration file; make one with `gripsight calibrate`")])
     try:
@@ -177,4 +189,6 @@ def read_calibration(path) -> StoredCalibration:
         lens_from_dict(parsed.lens.model_dump())
     except (KeyError, TypeError, ValueError) as exc:
         raise CellFileError(str(path), [Problem("lens", f"invalid ({exc})")]) from None
-    return StoredCalibration(str(path), parsed)
+    stored = StoredCalibration(str(path), parsed)
+    stored.sha256 = hashlib.sha256(raw).hexdigest()       # what a resumed run or batch compares
+    return stored

@@ -328,10 +328,9 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if name != "reject" and name not in cell.parts:
             out.append(Problem(f"bins.{name}", f"no part class '{name}' (bins are named after classes, or 'reject')"))
 
-    tallest = max((p.height_mm for p in cell.parts.values()), default=0.0)
+    # a part taller than safe_z_mm is approached, carried and released at adapted heights; a class that
+    # cannot be carried at all is named by the planning core's cell check (parts.<class>.height_mm)
     motion = cell.motion
-    if motion.safe_z_mm <= tallest + motion.floor_clearance_mm:
-        out.append(Problem("motion.safe_z_mm", f"must be above the tallest part ({tallest:g} mm) plus floor_clearance_mm"))
     if motion.drop_z_mm >= motion.safe_z_mm:
         out.append(Problem("motion.drop_z_mm", f"must be below safe_z_mm ({motion.safe_z_mm:g})"))
     for name, part in cell.parts.items():
@@ -411,6 +410,13 @@ def parse_cell(data, source: str = "<cell>") -> Cell:
     if not isinstance(data, dict):
         kind = "empty" if data is None else f"a {type(data).__name__}, not a mapping of keys"
         raise CellFileError(source, [Problem("", f"the file is {kind}; start from `gripsight init`")])
+    from gripsight.app.textsafe import control_character_paths
+
+    controls = control_character_paths(data)
+    if controls:      # a name that reaches a CSV, a comment line or HTML must not carry a line break
+        raise CellFileError(source, [Problem(".".join(str(k) for k in where) or "<top>",
+                                             f"contains a control character or line break ({text[:40]}); "
+                                             "use plain text on one line") for where, text in controls])
     try:
         cell = Cell.model_validate(data)
     except ValidationError as exc:

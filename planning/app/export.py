@@ -16,7 +16,8 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, utc_now, write_text_atomic
+from gripsight.app.fileio import output_dir, utc_now, write_files_atomic
+from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
@@ -91,13 +92,14 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
     out.write("# gripsight joint sequence\n")
     for line in SAFETY_LINES:
         out.write(f"# SAFETY: {line}\n")
-    out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    out.write(f"# cell: {one_line(cell.cell)}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
     if plan.speed_scale != 1.0:
         out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
-    out.write(_sample_rows(s, q_deg, pulses, grip_us))
+    names = {pid: one_line(pid) for pid in set(s.part_id)}      # ids from a parts file or a photo: one line each
+    out.write(_sample_rows(s, q_deg, pulses, grip_us, [names[pid] for pid in s.part_id]))
     return out.getvalue()
 
 
@@ -114,10 +116,10 @@ def _csv_cells(values) -> list[str]:
     return [text[v] for v in values]
 
 
-def _sample_rows(s, q_deg, pulses, grip_us) -> str:
-    """The sample rows of joints.csv, the same text csv.writer gave row by row at a sixth of the time
-    (one %-format per row over plain Python floats)."""
-    cols = [s.t_s.tolist(), _csv_cells(s.segment_kind), _csv_cells(s.part_id)]
+def _sample_rows(s, q_deg, pulses, grip_us, part_ids=None) -> str:
+    """The sample rows of joints.csv, the same text csv.writer gave row by row at 2.4x the speed
+    (one %-format per row over plain Python floats); ``part_ids`` replaces ``s.part_id``."""
+    cols = [s.t_s.tolist(), _csv_cells(s.segment_kind), _csv_cells(s.part_id if part_ids is None else part_ids)]
     cols += [s.xyz_mm[:, k].tolist() for k in range(3)] + [q_deg[:, k].tolist() for k in range(3)]
     cols += [np.where(s.gripper_closed, "closed", "open").tolist()]
     cols += [pulses[:, k].tolist() for k in range(3)] + [np.asarray(grip_us, float).tolist()]
@@ -128,11 +130,17 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
                        calibration: dict | None = None, plots: bool = True) -> dict:
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
 
+    from gripsight.app.jointcheck import check_joint_file_text
+
     out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
-    write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created))
-    write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+    text = joints_csv_text(plan, cell, arm, created)
+    check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
+    # both new files written and flushed before either takes its name: a failure (a full disk) leaves
+    # the old pair, never a new joints.csv beside an old plan.json
+    write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
+                        (out / "plan.json", (json.dumps(data, indent=2) + "\n").encode("utf-8"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

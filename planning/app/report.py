@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import html
 from pathlib import Path
+from urllib.parse import quote
 
 from gripsight.app.fileio import write_text_atomic
 
@@ -69,7 +70,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
                                                "cycle s"] + (["recall", "pick error mm"] if truth else []))
     body = []
     for r in rows:
-        link = f"{r['photo']}/overlay.png"
+        link = f"{quote(r['photo'])}/overlay.png"
         img = (f'<img class="thumb" alt="overlay of {e(r["photo"])}" src="data:image/jpeg;base64,{r["thumbnail"]}">'
                if r.get("thumbnail") else "")
         if img and r.get("overlay", True):

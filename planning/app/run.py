@@ -4,12 +4,14 @@ Per photo, a folder ``OUT/<photo name>/`` with plan.json, joints.csv, overlay.pn
 each photo the run's state (photos done, where the arm stopped, the clock, tray counts) is saved
 atomically in ``OUT/run_state.json``, so an interrupted run resumes where it stopped (``--resume``).
 ``OUT/run.csv`` is the whole run's joint sequence on one clock, ending with the move home; it is
-rebuilt from the finished photos whenever the run stops.
+rebuilt whenever the run stops from the joints.csv files this run wrote (known by their hashes in the
+run state), never from older files in the folder, and checked as a whole before it is written.
 """
 
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 from dataclasses import dataclass, field
@@ -19,7 +21,7 @@ import numpy as np
 
 from gripsight.app.errors import EXPECTED_ERRORS, GripsightError
 from gripsight.app.export import CSV_COLUMNS, joints_csv_text
-from gripsight.app.fileio import child_folder, output_dir, utc_now, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, utc_now, write_text_atomic
 from gripsight.planning.checks import Check
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
@@ -50,14 +52,30 @@ def _state_path(out: Path) -> Path:
     return out / _STATE
 
 
-def _load_state(out: Path, folder: Path, cell) -> dict:
+def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
+    """The interrupted run's state, if it was made of the same folder, the same cell file and the same
+    calibration file, and every photo it finished is still byte for byte the one it planned (the run
+    carries the arm from photo to photo, so a changed photo changes everything after it)."""
     path = _state_path(out)
     if not path.is_file():
         raise GripsightError(f"{path}: nothing to resume (no run state); run without --resume")
     state = json.loads(path.read_text())
     if state.get("folder") != str(folder.resolve()) or state.get("cell_sha256") != cell.sha256:
         raise GripsightError(f"{path}: that run was of another folder or cell file; run without --resume")
+    if stored is not None and state.get("calibration_sha256") != getattr(stored, "sha256", None):
+        raise GripsightError(f"{path}: that run was made with another calibration file; run without --resume")
+    photo_hashes = state.get("photo_sha256", {})
+    for name in state.get("done", []):
+        if photo_hashes.get(name) != _file_sha256(folder / name):
+            raise GripsightError(f"{path}: photo {name} changed since that run planned it; run without --resume")
     return state
+
+
+def _file_sha256(path: Path) -> str | None:
+    try:
+        return _sha256(path.read_bytes())
+    except OSError:
+        return None
 
 
 def _csv_rows(text: str) -> list[list[str]]:
@@ -65,15 +83,31 @@ def _csv_rows(text: str) -> list[list[str]]:
     return list(csv.reader(lines))[1:]
 
 
+def _sha256(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
 def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
-    """run.csv from the finished photos' joints.csv (each photo's first row repeats the last one's end)."""
+    """run.csv from this run's checked plans only: the joints.csv each photo of this run wrote, known
+    by the hash recorded in the run state when it was written (each photo's first row repeats the last
+    one's end); a photo without one (an error, an old file) adds nothing. The whole file is checked
+    before it is written (:func:`gripsight.app.jointcheck.check_joint_file_text`)."""
+    from gripsight.app.jointcheck import refusal, check_joint_file_text
+
     buf = io.StringIO()
     header_done = False
+    written = state.get("joints_sha256", {})
     for name in state["done"]:
-        path = child_folder(out, name) / "joints.csv"
-        if not path.is_file():
+        if name not in written:
             continue
-        text = path.read_text()
+        path = child_folder(out, name) / "joints.csv"
+        try:
+            raw = path.read_bytes()
+        except OSError:
+            raw = b""
+        if _sha256(raw) != written[name]:
+            raise refusal(str(out / "run.csv"), f"{path} changed since this run wrote it")
+        text = raw.decode("utf-8")
         comments = [line for line in text.splitlines() if line.startswith("#")]
         rows = _csv_rows(text)
         if not header_done:
@@ -87,7 +121,9 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
     if home_csv and header_done:
         csv.writer(buf, lineterminator="\n").writerows(_csv_rows(home_csv)[1:])
     if header_done:
-        write_text_atomic(out / "run.csv", buf.getvalue())
+        text = buf.getvalue()
+        check_joint_file_text(text, cell, str(out / "run.csv"))
+        write_text_atomic(out / "run.csv", text)
 
 
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
@@ -113,7 +149,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     arm = Arm.from_config(cell.arm)
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
-        state = _load_state(out, folder, cell)
+        state = _load_state(out, folder, cell, stored)
         recorded = float(state.get("speed_scale", 1.0))
         if abs(recorded - speed_scale) > 1e-9:      # one run.csv, one speed: never mix them
             raise GripsightError(f"{_state_path(out)}: that run was made at speed scale {recorded:g}; "
@@ -123,15 +159,19 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 raise GripsightError(f"--emptied: no bin '{name}' in the cell")
             state["bins"][name] = 0
     else:
-        _state_path(out).unlink(missing_ok=True)
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
                  "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
-                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale}
+                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale,
+                 "calibration_sha256": getattr(stored, "sha256", None), "photo_sha256": {}}
+        # the new run's state replaces the old one in one step (never deleted first, never lost)
+        write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+    remove_leftover_temps(out)
     result = RunResult()
     try:
         for photo in photos:
             if photo.name in state["done"]:
                 continue
+            state.setdefault("photo_sha256", {})[photo.name] = _file_sha256(photo)
             room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
             try:
                 pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
@@ -148,6 +188,9 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored,
                                           pictures=pictures is None)     # else in the background, or none
             summary = _summary(photo.name, pp, data)
+            joints = child_folder(out, photo.name) / "joints.csv"
+            if pp.plan is not None and joints.is_file():       # written (and checked) just now by this run
+                state.setdefault("joints_sha256", {})[photo.name] = _sha256(joints.read_bytes())
             if pp.plan is not None:
                 for pick in pp.plan.picks:
                     state["bins"][pick.bin_name] = state["bins"].get(pick.bin_name, 0) + 1

@@ -75,6 +75,7 @@ LIGHT = LightingSpec(brightness=0.8, white_balance=[1.1, 1.0, 0.85], gradient=0.
 SENSOR = SensorSpec(noise=2.0, jpeg_quality=90)
 
 
+@pytest.mark.slow
 def test_gripper_marker_position_from_a_photo_within_0_3_mm(tmp_path):
     """Rendered marker centre back to the table at its known height, through a calibration from the
     markers (lens estimated) and a measured camera centre, at heights 0-150 mm. (With the centre
@@ -115,6 +116,7 @@ def test_marker_centre_is_where_the_diagonals_cross():
     assert np.linalg.norm(uv[:4].mean(axis=0) - uv[4]) > 0.1      # the mean is not the centre
 
 
+@pytest.mark.slow
 def test_arm_fit_from_rendered_photos_brings_the_tool_within_a_millimetre(tmp_path, capsys):
     cell_path = _cell(tmp_path, "parallel")
     cell = load_cell(cell_path)
@@ -158,3 +160,45 @@ def test_arm_fit_from_rendered_photos_brings_the_tool_within_a_millimetre(tmp_pa
                  "--out", str(tmp_path / "f2.yaml")]) == 1
     assert "gripper marker not found in 1 photo(s): stop05.jpg" in capsys.readouterr().err
     assert not (tmp_path / "f2.yaml").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("kind, level", [("serial", True), ("four_bar", False)], ids=["serial-level", "four_bar-tilting"])
+def test_rendered_fit_comes_back_within_its_uncertainty(tmp_path, kind, level):
+    """Library level, rendered photos (640 x 480, noise, JPEG, lens, tilt): the serial arm with a level
+    marker and the four-bar with a tool (and marker) fixed to the forearm."""
+    from gripsight.planning.armposes import plan_stops
+    from gripsight.planning.picks import Planner
+
+    data = cell_data_with_linkage(kind, level)
+    data["markers"]["on_gripper"] = {**GRIPPER, "offset_mm": [15, 0, 10]}
+    cell = parse_cell(data)
+    planner = Planner(cell)
+    arm = planner.arm
+    mount = af.MarkerMount((15.0, 0.0, 10.0), level)
+    seq = plan_stops(planner, cell.work_area, mount, 14)
+    commanded = np.array([s.joints_deg for s in seq.stops])
+    truth = true_errors(np.random.default_rng({"serial": 41, "four_bar": 42}[kind]))
+    camera = CameraSpec(centre_mm=[200, -5, 740], tilt_deg=1.5, tilt_azimuth_deg=200, k1=-0.06, width_px=640, height_px=480)
+    light, sensor = LightingSpec(brightness=1.1, gradient=0.2), SensorSpec(noise=2.0, jpeg_quality=88)
+    cal_photo = render_photo(tmp_path / "cal.png", cell, camera, light, sensor, 3)
+    cal = calibrate(detect_markers(cal_photo.image_bgr, cell.markers.dictionary), cell, (640, 480), "cal")
+    obs = []
+    for k, spec in enumerate(marker_specs(arm, truth, commanded, mount, cell)):
+        r = render_photo(tmp_path / f"s{k}.jpg", cell, camera, light, sensor, 3, spec)
+        found = [d for d in detect_markers(read_photo(tmp_path / f"s{k}.jpg"), cell.markers.dictionary) if d.id == 20]
+        assert len(found) == 1, f"stop {k + 1}"
+        obs.append(af.StopObservation(f"s{k}", tuple(commanded[k]), tuple(marker_centre_px(found[0].corners_px, cal.mapping.lens))))
+        assert r.truth["gripper_marker"]["in_view"]
+    fit = af.fit_arm(arm, obs, mount, pixel_model(cal), fit_camera_centre=True, mapping_px=cal.rms_px)
+    want = truth.vector(arm, False, cal_photo.camera.centre_mm)
+    got = np.array([p.value for p in fit.parameters])
+    sigma = np.array([p.sigma for p in fit.parameters])
+    assert np.all(np.abs(got - want) <= 3 * sigma), np.c_[want, got, sigma]
+    grid = af.grid_in_polygon(cell.work_area, 10.0, [20.0, 60.0, 100.0])
+    before = af.tool_errors_mm(arm, arm, truth, grid)
+    after = af.tool_errors_mm(fit.fitted_arm(arm), arm, truth, grid)
+    ok = ~np.isnan(before) & ~np.isnan(after)
+    assert np.sqrt(np.mean(before[ok] ** 2)) >= 5.0
+    assert np.sqrt(np.mean(after[ok] ** 2)) <= 0.8
+    assert after[ok].max() <= 1.5

@@ -268,7 +268,24 @@ def _illumination_field(shape, lighting, cam, K_canvas) -> np.ndarray:
     r2_u, r2_v = (u / half_w) ** 2, (v / half_w) ** 2
     field = 1.0 + lighting.gradient * (ramp_u[None, :] + ramp_v[:, None]) \
         - lighting.vignette * 0.5 * (r2_u[None, :] + r2_v[:, None])
-    return np.clip(field, 0.05, None).astype(np.float32)
+    field = np.clip(field, 0.05, None).astype(np.float32)
+    if lighting.spot_radius_mm is not None:
+        field *= _spot_field(shape, lighting, cam, K_canvas)
+    return field
+
+
+def _spot_field(shape, lighting, cam, K_canvas) -> np.ndarray:
+    """A spot light's falloff on the table: 1 within about its radius of its centre, then down to the
+    floor (1 / (1 + (r / radius)^4) between them), from a coarse grid of table points."""
+    h, w = shape
+    step = 16
+    gv, gu = np.mgrid[0:h + step:step, 0:w + step:step].astype(float)
+    xy = _apply_h(np.linalg.inv(_plane_homography(cam, K_canvas, 0.0)), np.column_stack([gu.ravel(), gv.ravel()]))
+    centre = np.array(lighting.spot_centre_mm if lighting.spot_centre_mm is not None else cam.centre_mm[:2])
+    r = np.linalg.norm(xy - centre, axis=1) / lighting.spot_radius_mm
+    falloff = lighting.spot_floor + (1 - lighting.spot_floor) / (1 + r ** 4)
+    coarse = falloff.reshape(gv.shape).astype(np.float32)
+    return cv2.resize(coarse, (coarse.shape[1] * step, coarse.shape[0] * step), interpolation=cv2.INTER_LINEAR)[:h, :w]
 
 
 def render_scene(cell, scene: Scene) -> Rendered:
@@ -395,7 +412,7 @@ def _truth(cell, scene: Scene, cam: Camera, parts: list[ResolvedPart]) -> dict:
             "scene": _record(scene)}
 
 
-_LATER_OPTIONS = ("surface", "blur_px")
+_LATER_OPTIONS = ("surface", "blur_px", "spot_radius_mm", "spot_centre_mm", "spot_floor", "gripper_marker")
 
 
 def _record(model) -> dict:

@@ -62,6 +62,9 @@ class LightingSpec(_Model):
     ambient: Annotated[float, Field(ge=0, le=1)] = 0.35
     shadow: Annotated[float, Field(ge=0, le=0.9)] = 0.45
     shadow_blur_mm: Annotated[float, Field(ge=0, le=30)] = 3.0
+    spot_radius_mm: Positive | None = None     # a spot light: full light within about this radius ...
+    spot_centre_mm: Annotated[list[Number], Field(min_length=2, max_length=2)] | None = None   # ... of here
+    spot_floor: Annotated[float, Field(ge=0.05, le=1)] = 0.3   # light far outside the spot, as a fraction
 
 
 class SensorSpec(_Model):

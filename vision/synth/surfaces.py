@@ -3,7 +3,7 @@ really has under its markers and parts (each a scene option, ``surface:`` in a s
 
 - ``plywood``: light plywood, slow mottling and faint grain (the default; see ``render._table_texture``);
 - ``wood_grain``: a darker wood with strong, wavy grain lines;
-- ``cutting_mat``: a dark green self-healing mat with a pale 10 mm grid (every fifth line heavier),
+- ``cutting_mat``: a dark green self-healing mat with a pale 10, 12.7 or 20 mm grid (every fifth line heavier),
   45-degree guide lines and printed numbers in grid cells (a cell ringed by grid lines with a number
   in it is what fooled the detector before: issue 19);
 - ``printed_text``: sheets of paper with lines of black text, headlines and black labels with white
@@ -86,7 +86,7 @@ def _cutting_mat(rng, shape, res):
     h, w = shape
     base = _lab((38.0, -26.0, 9.0))[None, None, :] * (1 + 0.04 * _noise(rng, shape, 60))[..., None]
     ink = np.zeros(shape, np.float32)
-    pitch = 10.0 * res
+    pitch = float(rng.choice([10.0, 12.7, 20.0])) * res          # metric, half-inch or 2 cm grids
     off = rng.uniform(0, pitch, 2)
     for axis in (0, 1):
         n = shape[axis]
@@ -106,7 +106,7 @@ def _cutting_mat(rng, shape, res):
              if (i % 5 == 2 or j % 5 == 2 or rng.random() < 0.08)]
     for r, c in cells:
         text = str(int(rng.choice([5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 1, 2, 3, 7, 17])))
-        height = rng.uniform(0.35, 0.55) * pitch
+        height = rng.uniform(0.35, 0.6) * pitch
         _put_text(ink, text, np.array([c + 0.15 * pitch, r + 0.2 * pitch]), height, 0.0,
                   max(1, int(round(rng.uniform(0.06, 0.1) * pitch))))
     return _mix(base, np.clip(ink, 0, 1), (86.0, -4.0, 18.0))

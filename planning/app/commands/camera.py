@@ -28,6 +28,8 @@ def render(
     vary: bool = typer.Option(False, "--vary", help="Random light, white balance, noise and lens per scene."),
     touching: bool = typer.Option(False, "--touching", help="Put two touching tokens in every scene."),
     unknown: bool = typer.Option(False, "--unknown", help="Put one token of an unknown colour in every scene."),
+    hard: bool = typer.Option(False, "--hard", help="Unkind scenes: spot light with hard shadows, warm dim light from one side, wood grain or a busy table, orange/purple/white-card distractors, a token next to a marker, a class colour in the other shape."),
+    surface: Optional[str] = typer.Option(None, "--surface", help="Table: plywood, wood_grain, cutting_mat, printed_text or checker_cloth."),
     fmt: str = typer.Option("jpg", "--format", help="jpg or png."),
 ):
     """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
@@ -39,8 +41,13 @@ def render(
     from gripsight.vision.synth.render import render_scene
     from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
 
+    from gripsight.vision.synth.hard import add_hard_parts, hard_conditions
+    from gripsight.vision.synth.surfaces import Surface
+
     if fmt not in ("jpg", "png"):
         raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
+    if surface is not None and surface not in {s.value for s in Surface}:
+        raise GripsightError(f"--surface: expected one of {', '.join(s.value for s in Surface)}, got '{surface}'")
     cfg = load_cell(cell)
     if sample_set:
         total = 53
@@ -85,8 +92,14 @@ def render(
             if vary:
                 lighting, sensor, lens = _varied_conditions(rng)
                 cam.update(lens)
+            table = Surface(surface) if surface else Surface.PLYWOOD
+            if hard:
+                conditions = hard_conditions(rng, Surface(surface) if surface else None)
+                lighting, sensor, table = conditions["lighting"], conditions["sensor"], conditions["surface"]
             sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
-                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor)
+                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor, surface=table)
+            if hard:
+                sc = add_hard_parts(sc, cfg, rng)
             write_photo(out / f"render_{seed}_{i:03d}.{fmt}", render_scene(cfg, sc), sc.sensor.jpeg_quality)
             bar.advance(task)
     typer.echo(f"wrote {scenes} photos with truth files under {out}")
@@ -126,14 +139,17 @@ def calibrate(
     from gripsight.vision.overlay import calibration_overlay
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
+    out = out or default_calibration_path(cfg)
+    overlay = overlay or out.with_name(out.stem + "_overlay.png")
+    check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
     cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
-    out = out or default_calibration_path(cfg)
     moved = write_calibration(out, cal, cfg, photo)
-    overlay = overlay or out.with_name(out.stem + "_overlay.png")
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
     write_bytes_atomic(overlay, buf.tobytes())
     if as_json:
@@ -190,8 +206,12 @@ def check(
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "the calibration file": calibration or default_calibration_path(cfg)})
     stored = read_calibration(calibration or default_calibration_path(cfg))
     image = read_photo(photo)
     report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,

@@ -69,6 +69,9 @@ def reach(
     from gripsight.planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
     from gripsight.app.reach_plot import draw_reach
 
+    from gripsight.app.outpaths import check_output_paths
+
+    check_output_paths(files={"--out": out}, inputs={"the cell file": cell})
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
     with atomic_output(out) as tmp:

@@ -31,7 +31,12 @@ def detect(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.errors import GripsightError
 
-    cfg = load_cell(_find_cell(cell, photo))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "--calibration": calibration})
     if sample is not None:
         _sample_colour(photo, cfg, sample)
         return
@@ -83,7 +88,7 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
     import numpy as np
 
-    from gripsight.vision.colour import delta_e_2000
+    from gripsight.vision.pixelclass import class_distance
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
     from gripsight.vision.whitebalance import fit_illumination, lab_image
@@ -101,9 +106,10 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     lab = np.median(patch, axis=0)
     typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
                + ("" if ill is not None else " (no marker paper seen: not white-balanced)"))
-    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(delta_e_2000(lab, kv[1].lab))):
-        d = float(delta_e_2000(lab, cls.lab))
-        typer.echo(f"  {name}: dE2000 {d:.1f} (tolerance {cls.tolerance:g}){'  <- match' if d < cls.tolerance else ''}")
+    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(class_distance(lab, kv[1].lab))):
+        d = float(class_distance(lab, cls.lab))
+        typer.echo(f"  {name}: dE2000 {d:.1f} (lightness weighed half; tolerance {cls.tolerance:g})"
+                   f"{'  <- match' if d < cls.tolerance else ''}")
 
 
 @command()
@@ -131,7 +137,12 @@ def plan(
         raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
     if (photo is None) == (parts is None):
         raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
-    cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo if photo is not None else parts)
+    cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo": photo, "--parts": parts, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     arm = Arm.from_config(cfg.arm)
     planner = Planner(cfg, arm, speed_scale=speed_scale)
     if parts is not None:
@@ -218,11 +229,15 @@ def run(
 
     from gripsight.app.errors import GripsightError
     from gripsight.app.live import PhotoWatcher, PictureWriter
+    from gripsight.app.outpaths import check_output_paths
     from gripsight.app.run import PHOTO_SUFFIXES
 
     if idle_stop is not None and not watch:
         raise GripsightError("--idle-stop: only with --watch")
-    cfg = load_cell(_find_cell(cell, folder))
+    cell_path = _find_cell(cell, folder)
+    cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
@@ -311,14 +326,26 @@ def batch(
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     n = len(photos_in(folder))
-    with output_lock(output_dir(out), "batch"), _progress() as bar:
-        task = bar.add_task("batch", total=n)
-        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task), resume=resume, pictures=chosen)
-        totals = write_batch_tables(out, rows, cfg)
+    from gripsight.app.batch import BatchInterrupted
+
+    try:
+        with output_lock(output_dir(out), "batch"), _progress() as bar:
+            task = bar.add_task("batch", total=n)
+            rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                             progress=lambda row: bar.advance(task), resume=resume, pictures=chosen)
+            totals = write_batch_tables(out, rows, cfg)
+    except KeyboardInterrupt as exc:
+        done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
+        typer.echo(f"interrupted{done}; every finished photo's row and outputs are kept in {out}; resume with: "
+                   f"gripsight batch {folder} --out {out} --resume", err=True)
+        raise typer.Exit(130) from None
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)
