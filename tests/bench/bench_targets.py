@@ -80,7 +80,7 @@ def batch(n_photos: int, tmp: Path) -> dict:
     photos = sorted((SAMPLES / "batch").glob("*.jpg"))
     raws = [p.read_bytes() for p in photos]
     folders = {}
-    for n in (len(photos), n_photos):
+    for n in sorted({len(photos), n_photos}):
         folder = tmp / f"photos_{n}"
         folder.mkdir()
         for i in range(n):
