@@ -160,6 +160,11 @@ def register(stored, detections, cell, image_size, photo: str = "photo") -> Regi
     if report.refit is None:
         return Registration("refused", None, None, report, f"{moved}, and this photo cannot be refitted: "
                                                            f"{report.notes[0] if report.notes else ''}")
+    if report.refit.verdict == "poor":
+        return Registration("refused", None, None, report,
+                            f"{moved}, and this photo's markers do not fit the cell file's layout (refit RMS "
+                            f"{report.refit.rms_mm:.1f} mm): wrong cell file, or a photo of another cell? Nothing "
+                            "planned; check the cell file, or recalibrate if markers were moved on purpose")
     centre = report.refit.camera_centre_mm if report.refit.centre_source != "assumed" else stored.camera_centre_mm
     return Registration("refit", report.refit.mapping, centre, report,
                         f"{moved}; refitted from this photo's markers (RMS {report.refit.rms_mm:.3f} mm)")

@@ -6,11 +6,12 @@ An interrupted write leaves the old file or none, never half a file.
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder"]
+__all__ = ["atomic_output", "cannot_write", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder"]
 
 
 def child_folder(out, name: str) -> Path:
@@ -36,8 +37,33 @@ def output_dir(path) -> Path:
     try:
         p.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise GripsightError(f"{p}: cannot create the output folder ({exc.strerror or exc})") from None
+        raise cannot_write(p, exc) from None
     return p
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def cannot_write(path, exc: OSError):
+    """The one-line error for a file that cannot be written (read-only, full disk, a folder in the way)."""
+    from gripsight.app.errors import GripsightError
+
+    hint = {errno.ENOSPC: "the disk is full; free some space or give another --out",
+            errno.EFBIG: "the disk or quota is full; free some space or give another --out",
+            errno.EDQUOT: "the disk quota is full; free some space or give another --out",
+            errno.EROFS: "read-only; give an --out folder you can write to",
+            errno.EACCES: "no permission; give an --out folder you can write to",
+            errno.EPERM: "no permission; give an --out folder you can write to",
+            errno.EISDIR: "is a folder; give a file name",
+            errno.ENOTDIR: "part of the path is a file, not a folder; give another path",
+            errno.EEXIST: "a file stands where a folder is needed; give another path"}.get(exc.errno, "")
+    what = exc.strerror or str(exc)
+    if hint.startswith("read-only") and "read-only" not in what.lower():
+        what = f"{what}, read-only"
+    return GripsightError(f"{path}: cannot write ({what}){'; ' + hint.split('; ')[-1] if hint else ''}")
 
 
 @contextlib.contextmanager
@@ -45,16 +71,29 @@ def atomic_output(path: str | os.PathLike):
     """Yield a temporary path beside ``path``; on success it replaces ``path``, on error it is removed.
 
     The temporary name keeps the target's suffix so writers that look at it (matplotlib) still work.
+    The file gets the permissions of any new file (0666 less the umask), not mkstemp's 0600, so a
+    controller running as another user can read it. A failure to write (read-only folder, full disk, a
+    folder where the file should go) is a :class:`GripsightError` naming ``path``.
     """
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
-    os.close(fd)
+    if target.is_dir():
+        raise cannot_write(target, IsADirectoryError(errno.EISDIR, os.strerror(errno.EISDIR)))
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
+        os.close(fd)
+    except OSError as exc:
+        raise cannot_write(target, exc) from None
     try:
         yield Path(tmp)
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, target)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise cannot_write(target, exc) from None
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
@@ -70,3 +109,22 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     """Write UTF-8 text to ``path`` atomically."""
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def strict_json(data, indent: int | None = 2) -> str:
+    """JSON that strict parsers read (RFC 8259 has no NaN or Infinity): every non-finite float is null."""
+    import json
+    import math
+
+    def clean(value):
+        if isinstance(value, float):
+            return value if math.isfinite(value) else None
+        if isinstance(value, dict):
+            return {k: clean(v) for k, v in value.items()}
+        if isinstance(value, (list, tuple)):
+            return [clean(v) for v in value]
+        if hasattr(value, "item") and hasattr(value, "dtype"):        # numpy scalars
+            return clean(value.item())
+        return value
+
+    return json.dumps(clean(data), indent=indent, allow_nan=False)

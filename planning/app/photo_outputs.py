@@ -3,12 +3,11 @@ the photo: parts and reasons, pick points, bins, the reachable region at grip he
 
 from __future__ import annotations
 
-import json
 
 import numpy as np
 
 from gripsight.app.export import utc_now, write_plan_outputs
-from gripsight.app.fileio import output_dir, write_bytes_atomic, write_text_atomic
+from gripsight.app.fileio import output_dir, strict_json, write_bytes_atomic, write_text_atomic
 
 __all__ = ["write_photo_outputs", "plan_overlay"]
 
@@ -93,7 +92,7 @@ def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = 
                 "photo": photo, "calibration": calibration, "status": "refused", "reason": photo_plan.message,
                 "parts": [], "picks": [], "totals": {"parts": 0, "planned": 0, "rejected": 0, "cycle_s": 0.0},
                 "warnings": [photo_plan.message]}
-        write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+        write_text_atomic(out / "plan.json", strict_json(data) + "\n")
         for stale in ("joints.csv", "joints.png", "path.png", "overlay.png"):
             (out / stale).unlink(missing_ok=True)
         return data, None

@@ -93,7 +93,7 @@ def test_bad_photos_give_one_line_or_a_result_never_a_trace(tmp_path, capsys, ca
         if usable:
             assert code == 0, (command, name, err)
         else:
-            assert code == 1, (command, name)
+            assert code == 2, (command, name)      # a bad input file: DEVELOPERS.md, "Exit codes"
             lines = err.strip().splitlines()
             assert len(lines) == 1 and lines[0].startswith("error: ") and path.name in lines[0], (command, name, err)
 
@@ -101,11 +101,11 @@ def test_bad_photos_give_one_line_or_a_result_never_a_trace(tmp_path, capsys, ca
 def test_pixel_limit_is_checked_before_decoding(tmp_path, capsys):
     path = tmp_path / "big.png"
     path.write_bytes(_png_header_claiming(20000, 20000))
-    assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 1
+    assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 2
     assert "20000x20000 px is more than the limit of 50,000,000 pixels" in capsys.readouterr().err
     small = tmp_path / "photo.jpg"
     shutil.copy(SAMPLES / "demo" / "demo_01.jpg", small)
-    assert main(["--max-pixels", "1000", "detect", str(small), "--cell", str(SAMPLE_CELL)]) == 1
+    assert main(["--max-pixels", "1000", "detect", str(small), "--cell", str(SAMPLE_CELL)]) == 2
     assert "1280x960 px is more than the limit of 1,000 pixels" in capsys.readouterr().err
     os.environ.pop("GRIPSIGHT_MAX_PIXELS", None)
 
@@ -125,7 +125,7 @@ def test_unreadable_photo(tmp_path, capsys, monkeypatch):
 
         monkeypatch.setattr(Path, "read_bytes", denied)
     try:
-        assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 1
+        assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 2
         err = capsys.readouterr().err
         assert "locked.jpg: cannot be read (Permission denied); check its permissions" in err
     finally:
