@@ -21,8 +21,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from gripsight.planning.arm import Arm
+from gripsight.planning.cellcheck import cell_problems
 from gripsight.planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
-from gripsight.planning.errors import CellProblems, Problem
+from gripsight.planning.errors import CellProblems
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
@@ -118,16 +119,7 @@ class Planner:
 
     # ------------------------------------------------------------ cell-level checks
     def _check_cell(self) -> None:
-        problems = []
-        for name, b in self.cell.bins.items():
-            for label, z in (("drop", b.z + self.cell.motion.drop_z_mm), ("safe", self.safe_z)):
-                sol = self.arm.inverse([[b.x, b.y, z]])
-                if not sol.ok[0]:
-                    problems.append(Problem(f"bins.{name}", f"cannot be reached at {label} height (z={z:g} mm): "
-                                                           f"{sol.reason_labels()[0]}"))
-        if self.arm.check_joints(self.home_rad[None])[0] != 0:
-            problems.append(Problem("motion.home_deg", "the home pose breaks the arm's own limits "
-                                                       "(joint limits, elbow stop or linkage); choose another"))
+        problems = cell_problems(self.cell, self.arm)
         if problems:
             raise CellProblems(self.cell.source_path or "<cell>", problems)
 

@@ -129,3 +129,23 @@ def test_validate_ok_summary(capsys):
     out = capsys.readouterr().out
     assert out.startswith("ok: print-farm-token-sorter: parallel arm 150+160 mm, 9 markers (1 raised)")
     assert "reach at grip height z=6 mm: r 118.1-351.0 mm" in out
+
+
+@pytest.mark.parametrize("change, key, fragment", [
+    (lambda d: d["bins"]["red"].update(x=900, y=0), "bins.red", "cannot be reached at drop height"),
+    # inside each joint's limits, but upper arm and forearm folded past the elbow stop (interior 10 deg)
+    (lambda d: d["motion"]["home_deg"].update(shoulder=20, elbow=20), "motion.home_deg", "the home pose breaks the arm's own limits"),
+])
+def test_validate_refuses_what_plan_refuses_naming_the_key(tmp_path, capsys, change, key, fragment):
+    # one cell check for validate and plan: a cell `validate` passes is never refused by `plan` for the cell
+    data = sample_cell_data()
+    change(data)
+    cell = tmp_path / "cell.yaml"
+    cell.write_text(yaml.safe_dump(data))
+    parts = tmp_path / "parts.yaml"
+    parts.write_text("parts:\n  - {class: red, x_mm: 200, y_mm: 0}\n")
+    assert main(["validate", str(cell)]) == 2
+    said = capsys.readouterr().err
+    assert f"{cell}: {key}: {fragment}" in said
+    assert main(["plan", "--parts", str(parts), "--cell", str(cell), "--out", str(tmp_path / "o")]) == 2
+    assert f"{key}: {fragment}" in capsys.readouterr().err

@@ -30,13 +30,22 @@ def init(
 
 @command()
 def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
-    """Check a cell file; print a summary, or every problem with its key path (exit 2)."""
-    from gripsight.planning.arm import Arm
+    """Check a cell file; print a summary, or every problem with its key path (exit 2).
+
+    The same check the planner makes (bins and home pose reachable, ...), so a cell that passes here is
+    never refused by ``plan``, ``run`` or ``batch`` for the cell's sake.
+    """
     from gripsight.app.cellfile import load_cell
+    from gripsight.app.errors import CellFileError
+    from gripsight.planning.arm import Arm
+    from gripsight.planning.cellcheck import cell_problems
     from gripsight.planning.reach import lowest_grip_z_mm, radial_reach
 
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
+    problems = cell_problems(cfg, arm)
+    if problems:
+        raise CellFileError(str(cell), problems)
     raised = sum(1 for m in cfg.markers.layout.values() if m.z > 0)
     grip = radial_reach(arm, lowest_grip_z_mm(cfg))
     link = cfg.arm.linkage.type + (f" ({arm.grashof()})" if cfg.arm.linkage.type == "four_bar" else "")
