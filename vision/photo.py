@@ -41,12 +41,16 @@ def _jpeg_size(data: bytes):
     return None
 
 
-def _tiff_size(data: bytes):
-    """Width and height of a TIFF's first image (baseline TIFF 6.0 header and IFD), or None."""
+def _tiff_size(data: bytes, fh=None):
+    """Width and height of a TIFF's first image (baseline TIFF 6.0 header and IFD), or None. ``data`` is
+    the file's start; an IFD beyond it is read from ``fh`` (the open file)."""
     order = "little" if data[:2] == b"II" else "big"
     if len(data) < 16 or int.from_bytes(data[2:4], order) != 42:
         return None
     ifd = int.from_bytes(data[4:8], order)
+    if ifd + 2 > len(data) and fh is not None:
+        fh.seek(ifd)
+        data, ifd = b"\0" * 8 + fh.read(2 + 12 * 4096 + 4), 8
     if ifd + 2 > len(data):
         return None
     count = int.from_bytes(data[ifd:ifd + 2], order)
@@ -92,7 +96,7 @@ def _webp_size(data: bytes):
     return None
 
 
-def _header_size(data: bytes):
+def _header_size(data: bytes, fh=None):
     """(width, height) from the header of a PNG, JPEG, TIFF, BMP, PNM or WebP file without decoding it;
     None for any other format (which is then refused: its size cannot be checked before decoding)."""
     if data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) >= 24:
@@ -100,7 +104,7 @@ def _header_size(data: bytes):
     if data[:2] == b"\xff\xd8":
         return _jpeg_size(data)
     if data[:4] in (b"II*\x00", b"MM\x00*"):
-        return _tiff_size(data)
+        return _tiff_size(data, fh)
     if data[:2] == b"BM" and len(data) >= 26:
         return (abs(int.from_bytes(data[18:22], "little", signed=True)),
                 abs(int.from_bytes(data[22:26], "little", signed=True)))
@@ -176,12 +180,16 @@ def read_photo(path, max_pixels: int | None = None) -> np.ndarray:
         if p.stat().st_size > max_bytes:
             raise PhotoError(f"{p}: {p.stat().st_size:,} bytes is more than a photo of at most "
                              f"{max_pixels:,} pixels can hold; resize the photo or raise the limit")
-        data = p.read_bytes()
+        with open(p, "rb") as fh:          # the header first: the pixels are counted before the rest is read
+            data = fh.read(1 << 20)
+            size = _header_size(data, fh) if data else None
+            if size is not None and size[0] * size[1] <= max_pixels:
+                fh.seek(len(data))
+                data += fh.read()
     except OSError as exc:
         raise PhotoError(f"{p}: cannot be read ({exc.strerror or exc}); check its permissions") from None
     if not data:
         raise PhotoError(f"{p}: the file is empty (0 bytes)")
-    size = _header_size(data)
     if size is None:
         raise PhotoError(f"{p}: not a photo in a format gripsight reads (JPEG, PNG, TIFF, BMP, WebP, PNM), "
                          "or its header is damaged")

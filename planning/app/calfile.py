@@ -189,7 +189,7 @@ def _content_problems(parsed: _File) -> list[Problem]:
             if len(np.ravel(lens["centre_px"])) != 2:
                 out.append(Problem("lens.centre_px", "must be two numbers (u, v) px"))
             if not abs(float(lens["lambda"])) < 10:
-                out.append(Problem("lens.lambda", f"{lens['lambda']} is not a lens's distortion (|lambda| < 10)"))
+                out.append(Problem("lens.lambda", f"{lens['lambda']} is not a lens's distortion (needs abs(lambda) < 10)"))
         if not out:
             lens_from_dict(lens)
     except (KeyError, TypeError, ValueError) as exc:

@@ -276,13 +276,33 @@ def _self_intersecting(points: list[list[float]]) -> bool:
     return bool(np.any((d1 * d2 < 0) & (d3 * d4 < 0)))
 
 
-def _sample_problems(cell: Cell) -> list[Problem]:
-    """Refuse motion settings whose longest move would take more than MAX_SAMPLES_PER_MOVE samples."""
+def longest_move_samples(cell: Cell) -> tuple[float, float]:
+    """(seconds, samples) of the longest move the cell's motion settings allow: twice the arm's reach at
+    ``speed_mm_s``, a full turn of the slowest joint, and the dwell (an upper bound, used for limits)."""
     arm, motion = cell.arm, cell.motion
     reach_mm = abs(arm.shoulder_offset_mm) + arm.upper_arm_mm + arm.forearm_mm + arm.tool.reach_mm
     slowest = min(getattr(arm.joints, n).max_speed_deg_s for n in ("base", "shoulder", "elbow"))
     longest_s = 2 * reach_mm / motion.speed_mm_s + 360.0 / slowest + motion.dwell_s
-    samples = longest_s * motion.sample_hz
+    return longest_s, longest_s * motion.sample_hz
+
+
+#: the most samples one plan may hold (moves of every part together), ~1 GB of arrays at most
+MAX_SAMPLES_PER_PLAN = 5_000_000
+
+
+def check_plan_size(n_parts: int, cell: Cell, source: str) -> None:
+    """Refuse, before planning, a plan whose samples could exceed MAX_SAMPLES_PER_PLAN (4 moves a part)."""
+    _, per_move = longest_move_samples(cell)
+    bound = 4 * max(n_parts, 1) * per_move
+    if bound > MAX_SAMPLES_PER_PLAN:
+        raise CellFileError(source, [Problem("", f"{n_parts} parts at these motion settings could take {bound:,.0f} "
+                                                 f"samples, more than {MAX_SAMPLES_PER_PLAN:,}; plan fewer parts at once "
+                                                 "or raise motion.speed_mm_s")])
+
+
+def _sample_problems(cell: Cell) -> list[Problem]:
+    """Refuse motion settings whose longest move would take more than MAX_SAMPLES_PER_MOVE samples."""
+    longest_s, samples = longest_move_samples(cell)
     if samples > MAX_SAMPLES_PER_MOVE:
         return [Problem("motion.sample_hz", f"the longest move (~{longest_s:,.0f} s) would take {samples:,.0f} samples, "
                                             f"more than {MAX_SAMPLES_PER_MOVE:,}; raise motion.speed_mm_s or the joints' "

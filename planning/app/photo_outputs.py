@@ -68,7 +68,8 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (80, 80, 255), 1, cv2.LINE_AA)
     rejected = ", ".join(f"{n} {r}" for r, n in sorted(by_reason.items())) or "none"
-    draw_panel(out, [f"plan: {len(plan.picks)} picks, cycle {plan.cycle_s:.1f} s; rejected: {rejected}",
+    cycle_s = sum(p.duration_s for p in plan.picks)      # this photo's picks, not the run's clock (plan.cycle_s)
+    draw_panel(out, [f"plan: {len(plan.picks)} picks, cycle {cycle_s:.1f} s; rejected: {rejected}",
                      "blue: tool path seen from above; orange: carrying; green: reach at grip height"],
                corner="bottom-right")
     return out

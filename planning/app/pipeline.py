@@ -179,7 +179,10 @@ def plan_photo(photo, cell, stored, planner, start_joints_rad=None, t0_s: float 
     analysis = analyse_photo(photo, cell, stored, image=image)
     if analysis.refused:
         return PhotoPlan(analysis, None, analysis.registration.message)
+    from gripsight.app.cellfile import check_plan_size
+
     targets = targets_from_detection(analysis.detection, cell)
+    check_plan_size(len(targets), cell, str(photo))
     if bin_room is not None:
         targets = _respect_capacity(targets, planner, bin_room)
     plan = planner.plan(targets, order=order, start_joints_rad=start_joints_rad, end_at_home=end_at_home, t0_s=t0_s)

@@ -115,15 +115,17 @@ def test_unreadable_photo(tmp_path, capsys, monkeypatch):
     shutil.copy(SAMPLES / "demo" / "demo_01.jpg", path)
     path.chmod(0)
     if os.access(path, os.R_OK):
-        # root reads any file: make the read fail the way a permission error does
-        real = Path.read_bytes
+        # root reads any file: make the photo reader's open fail the way a permission error does
+        import builtins
 
-        def denied(self):
-            if self == path:
+        import gripsight.vision.photo as photo_module
+
+        def denied(file, *args, **kwargs):
+            if Path(file) == path:
                 raise PermissionError(13, "Permission denied")
-            return real(self)
+            return builtins.open(file, *args, **kwargs)
 
-        monkeypatch.setattr(Path, "read_bytes", denied)
+        monkeypatch.setattr(photo_module, "open", denied, raising=False)
     try:
         assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 2
         err = capsys.readouterr().err
@@ -376,7 +378,7 @@ def test_photo_names_cannot_leave_the_output_folder(tmp_path, name):
 # ------------------------------------------------------------------ the table of error messages
 _ERROR_TYPES = {"GripsightError", "CellFileError", "PhotoError", "CalibrationError", "ServoRangeError",
                 "PathGeometryError", "Problem", "CellProblems", "LensFileError", "SheetError", "PlanningError",
-                "VisionError"}
+                "VisionError", "InputError", "UsageError"}
 
 
 def _literal_fragments(node) -> list[str]:

@@ -151,7 +151,7 @@ def calibrate(
     if as_json:
         typer.echo(strict_json(calibration_record(cal, cfg, photo)))
         return
-    _print_calibration(cal, out, overlay, moved)
+    _print_calibration(cal, out, overlay, moved, layout_ids=sorted(cfg.markers.layout))
 
 
 #: a calibration this far off (RMS mm) is not a bad photo of the right cell but markers that are not where
@@ -191,6 +191,9 @@ def _keep_previous_centre(cal, previous, image_size) -> None:
 
 
 def _refuse_poor(cal, out: Path, previous, force: bool, photo, cell_path) -> None:
+    if not cal.camera_centre_mm[2] > 0:
+        raise CalibrationError(f"{photo}: the fitted camera centre is at z = {cal.camera_centre_mm[2]:.0f} mm, not above "
+                               "the table: check the raised markers' heights (markers.layout.N.z) or camera.centre_mm")
     if cal.rms_mm > WRONG_SETUP_RMS_MM and not force:
         raise CalibrationError(f"{photo}: the markers do not fit the cell file's layout (RMS {cal.rms_mm:.1f} mm): "
                                f"wrong cell file ({cell_path}), or a photo of another cell? Nothing written; "
@@ -201,7 +204,7 @@ def _refuse_poor(cal, out: Path, previous, force: bool, photo, cell_path) -> Non
                                "sharper photo with every marker in view, or pass --force")
 
 
-def _print_calibration(cal, out, overlay, moved) -> None:
+def _print_calibration(cal, out, overlay, moved, layout_ids=()) -> None:
     from rich.console import Console
     from rich.table import Table
 
@@ -209,11 +212,13 @@ def _print_calibration(cal, out, overlay, moved) -> None:
     table = Table(title="markers", title_justify="left")
     for col in ("id", "residual mm", "residual px", "status"):
         table.add_column(col, justify="right" if col != "status" else "left")
-    for m in sorted(cal.markers, key=lambda m: m.id):
-        status = "used" if m.used else m.reason
-        mm = "" if m.residual_mm is None else f"{m.residual_mm:.3f}"
-        px = "" if m.residual_px is None else f"{m.residual_px:.2f}"
-        table.add_row(str(m.id), mm, px, status)
+    rows = {m.id: ("" if m.residual_mm is None else f"{m.residual_mm:.3f}",
+                   "" if m.residual_px is None else f"{m.residual_px:.2f}", "used" if m.used else m.reason)
+            for m in cal.markers}
+    for marker_id in layout_ids:
+        rows.setdefault(marker_id, ("", "", "not seen: covered, out of view or badly lit"))
+    for marker_id in sorted(rows):
+        table.add_row(str(marker_id), *rows[marker_id])
     console.print(table)
     for note in cal.notes:
         console.print(f"note: {note}")

@@ -141,7 +141,11 @@ def plan(
         from gripsight.app.export import write_plan_outputs
         from gripsight.app.partsfile import load_parts_file
 
-        result = planner.plan(load_parts_file(parts, cfg), order=order)
+        from gripsight.app.cellfile import check_plan_size
+
+        targets = load_parts_file(parts, cfg)
+        check_plan_size(len(targets), cfg, str(parts))
+        result = planner.plan(targets, order=order)
         data = write_plan_outputs(out, result, cfg, arm, plots=plots)
     else:
         from gripsight.app.pipeline import load_or_make_calibration, plan_photo

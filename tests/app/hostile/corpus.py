@@ -254,6 +254,21 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
         "error", FAILED, "another cell")
     add("photo/another-cell-calibrate", ["calibrate", pdir / "another-cell.png", *CELL, "--out", root / "o-another.yaml"],
         "error", FAILED, "another cell")
+    # calibrating from a photo where the raised marker (9) is covered: its row says so, and the previous
+    # calibration's camera centre is kept (moved with the fitted change) instead of a guess
+    riser = next(np.asarray(m["corners_px"], float) for m in cal_data["markers"] if m["id"] == 9)
+    (u0, v0), (u1, v1) = riser.min(axis=0).astype(int) - 25, riser.max(axis=0).astype(int) + 25
+    no_riser = image.copy()
+    no_riser[max(v0, 0):v1, max(u0, 0):u1] = np.median(image[v1:v1 + 20, u0:u1].reshape(-1, 3), axis=0)
+    no_riser_photo = put("no-riser.png", no_riser)
+    add("photo/calibrate-marker-not-seen", ["calibrate", no_riser_photo, *CELL, "--out", root / "o-unseen.yaml"],
+        "result", 0, "not seen")
+    again = root / "recal"
+    again.mkdir()
+    shutil.copy(cal_path, again / "calibration.yaml")
+    add("photo/recalibrate-keeps-centre", ["calibrate", no_riser_photo, *CELL, "--out", again / "calibration.yaml"],
+        "result", 0,
+        "kept the previous calibration's centre")
     put("flipped.png", cv2.flip(image, 1))
     add("photo/mirrored", ["detect", pdir / "flipped.png", *CELL, *CAL], "error", None, "flipped.png")
     for cmd in ("calibrate", "check", "plan"):

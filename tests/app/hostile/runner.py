@@ -156,6 +156,7 @@ class _Zygote:
 
         self.proc.stdin.close()
         self.proc.wait(timeout=30)
+        self.proc.stdout.close()
         shutil.rmtree(self.folder, ignore_errors=True)
 
 
