@@ -13,7 +13,10 @@ Forward kinematics, in the arm's vertical plane (r radial, z up), with u(t) = (c
     wrist = (shoulder_offset, base_height) + L2 u(shoulder) + L3 u(psi)
     tool  = wrist + (reach, -drop)                           tool kept level
     tool  = wrist + reach u(psi) - drop u(psi + 90 deg)      tool fixed to the forearm
-    x, y  = r cos(base), r sin(base)
+    x, y  = base_x + r cos(base), base_y + r sin(base)
+
+``base_xy_mm`` is where the base axis stands in the table (markers') frame: (0, 0) unless a fit from
+photos of the gripper marker (:mod:`planning.armfit`) found it elsewhere.
 
 Inverse kinematics is closed form (law of cosines on the shoulder-wrist triangle), elbow ``up`` (the
 elbow above the shoulder-to-wrist line) or ``down``. Every target gets a :class:`Reason`; angles are
@@ -30,6 +33,7 @@ import numpy as np
 
 from gripsight.planning.angles import wrap_angle
 from gripsight.planning.linkage import FourBar, grashof_class
+from gripsight.planning.points import as_n_by_3
 from gripsight.planning.servo import ServoMap
 
 __all__ = ["Arm", "Branch", "IKSolution", "Linkage", "Reason", "JOINT_NAMES"]
@@ -109,15 +113,6 @@ class IKSolution:
         return [Reason(int(r)).label for r in self.reason]
 
 
-def _as_points(xyz_mm, name: str = "xyz_mm") -> np.ndarray:
-    arr = np.asarray(xyz_mm, dtype=float)
-    if arr.ndim == 1 and arr.shape[0] == 3:
-        arr = arr[None, :]
-    if arr.ndim != 2 or arr.shape[1] != 3:
-        raise ValueError(f"{name}: expected shape (N, 3), got {arr.shape}")
-    return arr
-
-
 @dataclass(frozen=True)
 class Arm:
     """A three-joint tabletop arm. Build it from the cell file with :meth:`from_config`."""
@@ -136,6 +131,7 @@ class Arm:
     four_bar: FourBar | None = None
     servos: tuple[ServoMap, ...] = ()
     max_speed_rad_s: np.ndarray | None = None
+    base_xy_mm: tuple[float, float] = (0.0, 0.0)
 
     @classmethod
     def from_config(cls, arm_cfg) -> "Arm":
@@ -161,6 +157,7 @@ class Arm:
             four_bar=four_bar,
             servos=tuple(ServoMap.from_config(n, j.servo) for n, j in zip(JOINT_NAMES, joints)),
             max_speed_rad_s=np.radians([j.max_speed_deg_s for j in joints]),
+            base_xy_mm=(float(arm_cfg.base_xy_mm[0]), float(arm_cfg.base_xy_mm[1])),
         )
 
     # ------------------------------------------------------------ linkage
@@ -217,7 +214,7 @@ class Arm:
         ndarray, shape (N, 3)
             Tool point x, y, z in table mm (NaN rows where the linkage cannot assemble).
         """
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         return self._forward_psi(q[:, 0], q[:, 1], psi)
 
@@ -225,12 +222,13 @@ class Arm:
         tr, tz = self._tool_offset(psi)
         r = self.shoulder_offset_mm + self.upper_arm_mm * np.cos(shoulder) + self.forearm_mm * np.cos(psi) + tr
         z = self.base_height_mm + self.upper_arm_mm * np.sin(shoulder) + self.forearm_mm * np.sin(psi) + tz
-        return np.column_stack([r * np.cos(base), r * np.sin(base), z])
+        bx, by = self.base_xy_mm
+        return np.column_stack([bx + r * np.cos(base), by + r * np.sin(base), z])
 
     def chain_rz_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
         """Shoulder, elbow and wrist in the arm's vertical plane: radius from the base axis and height,
         each shape (N, 3) (the whole arm lies in the half-plane at the base angle)."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         r = np.empty((len(q), 3))
         z = np.empty((len(q), 3))
@@ -243,10 +241,11 @@ class Arm:
 
     def elbow_wrist_mm(self, joints_rad) -> tuple[np.ndarray, np.ndarray]:
         """Elbow and wrist points in table mm, each shape (N, 3), for drawing."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         r, z = self.chain_rz_mm(q)
         c, s = np.cos(q[:, 0]), np.sin(q[:, 0])
-        return tuple(np.column_stack([r[:, k] * c, r[:, k] * s, z[:, k]]) for k in (1, 2))
+        bx, by = self.base_xy_mm
+        return tuple(np.column_stack([bx + r[:, k] * c, by + r[:, k] * s, z[:, k]]) for k in (1, 2))
 
     # ------------------------------------------------------------ inverse
     def inverse(self, xyz_mm, branch: Branch | str | None = None) -> IKSolution:
@@ -269,9 +268,9 @@ class Arm:
         -----
         A target on the base axis (r = 0) has no defined base yaw; 0 is used.
         """
-        p = _as_points(xyz_mm)
+        p = as_n_by_3(xyz_mm)
         branch = self.branch if branch is None else Branch(branch)
-        x, y, z = p[:, 0], p[:, 1], p[:, 2]
+        x, y, z = p[:, 0] - self.base_xy_mm[0], p[:, 1] - self.base_xy_mm[1], p[:, 2]
         r = np.sqrt(x * x + y * y)                       # (np.hypot is several times slower)
         base = np.arctan2(y, x) * (r > 1e-9)
         l2 = self.upper_arm_mm
@@ -315,7 +314,7 @@ class Arm:
 
     def check_joints(self, joints_rad) -> np.ndarray:
         """Reason codes for joint-space poses (limits, interior stop, assembly), shape (N,)."""
-        q = _as_points(joints_rad, "joints_rad")
+        q = as_n_by_3(joints_rad, "joints_rad")
         psi = self.forearm_rad(q[:, 1], q[:, 2])
         return _first_reason([(Reason.LINKAGE_CANNOT_ASSEMBLE, np.isnan(psi)),
                               *self._limit_failures(q[:, 0], q[:, 1], psi, q[:, 2])])
@@ -323,5 +322,5 @@ class Arm:
     # ------------------------------------------------------------ servos
     def pulses_us(self, joints_rad, check: bool = True) -> np.ndarray:
         """Servo pulse widths for joint angles, shape (N, 3), via each joint's :class:`ServoMap`."""
-        q = np.degrees(_as_points(joints_rad, "joints_rad"))
+        q = np.degrees(as_n_by_3(joints_rad, "joints_rad"))
         return np.column_stack([s.pulse_us_from_deg(q[:, i], check=check) for i, s in enumerate(self.servos)])

@@ -10,6 +10,7 @@ import numpy as np
 
 from gripsight.planning.arm import Arm
 from gripsight.planning.errors import Problem
+from gripsight.planning.held import class_carry_problems
 
 __all__ = ["cell_problems"]
 
@@ -47,4 +48,4 @@ def cell_problems(cell, arm: Arm) -> list[Problem]:
     if arm.check_joints(home_rad)[0] != 0:
         problems.append(Problem("motion.home_deg", "the home pose breaks the arm's own limits "
                                                    "(joint limits, elbow stop or linkage); choose another"))
-    return problems
+    return problems + class_carry_problems(cell, arm)

@@ -8,7 +8,8 @@ branch consistency. Grip fit is checked per part before any motion is planned (s
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from enum import StrEnum
 
 import numpy as np
 
@@ -16,26 +17,66 @@ from gripsight.planning.angles import wrap_angle
 from gripsight.planning.arm import JOINT_NAMES, Arm, Reason
 from gripsight.planning.motion import SampledChain, SampledSegment
 
-__all__ = ["CheckContext", "Rejection", "first_failure", "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
+__all__ = ["Check", "CheckContext", "Rejection", "SampleFailure", "first_failing_sample", "first_failure",
+           "first_failing_segment", "grip_fit_rejection", "jaw_width_mm"]
+
+
+class Check(StrEnum):
+    """The check a part failed. Some name a subject too (:attr:`Rejection.subject`)."""
+
+    PHOTO = "photo"                                   # the photo analysis set it aside (subject: its status)
+    UNKNOWN_CLASS = "unknown_class"                   # no bin for its class and no reject bin
+    BIN_FULL = "bin_full"                             # its bin has no room left
+    GRIP_FIT = "grip_fit"                             # too wide for the jaws
+    OUT_OF_REACH = "out_of_reach"
+    LINKAGE_CANNOT_ASSEMBLE = "linkage_cannot_assemble"
+    ELBOW_INTERIOR = "elbow_interior"
+    JOINT_LIMIT = "joint_limit"                       # subject: the joint
+    FLOOR_CLEARANCE = "floor_clearance"
+    KEEP_OUT = "keep_out"                             # subject: the zone
+    JOINT_SPEED = "joint_speed"                       # subject: the joint
+    BRANCH_FLIP = "branch_flip"
+    HELD_PART = "held_part"                           # the carried part would hit the table, a tray floor or an obstacle
+
+
+_CHECK_OF_REASON = {Reason.OUT_OF_REACH: (Check.OUT_OF_REACH, ""),
+                    Reason.LINKAGE_CANNOT_ASSEMBLE: (Check.LINKAGE_CANNOT_ASSEMBLE, ""),
+                    Reason.ELBOW_INTERIOR: (Check.ELBOW_INTERIOR, ""),
+                    Reason.JOINT_LIMIT_BASE: (Check.JOINT_LIMIT, "base"),
+                    Reason.JOINT_LIMIT_SHOULDER: (Check.JOINT_LIMIT, "shoulder"),
+                    Reason.JOINT_LIMIT_ELBOW: (Check.JOINT_LIMIT, "elbow")}
+
 
 @dataclass(frozen=True)
 class Rejection:
     """Why a part was not planned: the check, where and when it failed, the value and the limit."""
 
-    check: str
+    check: Check
     detail: str
     segment: str | None = None
     time_s: float | None = None
     value: float | None = None
     limit: float | None = None
     unit: str = ""
+    subject: str = ""          # the joint, the keep-out zone, or the photo analysis's status
+
+    @property
+    def label(self) -> str:
+        """The reason as written in outputs: ``keep_out:feeder``, ``joint_speed:base``, ``cut_by_edge``."""
+        if self.check is Check.PHOTO:
+            return self.subject or self.check.value
+        return f"{self.check.value}:{self.subject}" if self.subject else self.check.value
+
+    def at(self, segment: str | None, time_s: float | None) -> "Rejection":
+        """The same rejection, placed in a segment at a sequence time."""
+        return replace(self, segment=segment, time_s=time_s)
 
     def describe(self) -> str:
         when = f" ({self.segment} at t={self.time_s:.2f} s)" if self.segment is not None and self.time_s is not None else ""
-        return f"{self.check}: {self.detail}{when}"
+        return f"{self.label}: {self.detail}{when}"
 
     def as_dict(self) -> dict:
-        return {"check": self.check, "detail": self.detail, "segment": self.segment,
+        return {"check": self.label, "detail": self.detail, "segment": self.segment,
                 "time_s": None if self.time_s is None else round(self.time_s, 4),
                 "value": None if self.value is None else round(float(self.value), 4),
                 "limit": None if self.limit is None else round(float(self.limit), 4), "unit": self.unit}
@@ -63,6 +104,9 @@ def _arm_points(arm: Arm, joints_rad: np.ndarray, tool_mm: np.ndarray) -> tuple[
     x, y, z = np.empty((len(base), 4)), np.empty((len(base), 4)), np.empty((len(base), 4))
     np.multiply(r, np.cos(base)[:, None], out=x[:, :3])
     np.multiply(r, np.sin(base)[:, None], out=y[:, :3])
+    if arm.base_xy_mm != (0.0, 0.0):            # the base axis away from the table origin
+        x[:, :3] += arm.base_xy_mm[0]
+        y[:, :3] += arm.base_xy_mm[1]
     z[:, :3] = z_chain
     x[:, 3], y[:, 3], z[:, 3] = tool_mm[:, 0], tool_mm[:, 1], tool_mm[:, 2]
     return x, y, z
@@ -136,93 +180,116 @@ def _reach_at(ctx: CheckContext, z_mm: float):
     return ctx.reach_spans[z_mm]
 
 
-def _ik_rejection(ctx: CheckContext, s: SampledSegment, i: int, code: int) -> Rejection:
+def _ik_rejection(ctx: CheckContext, xyz_mm: np.ndarray, joints_rad: np.ndarray, code: int) -> Rejection:
+    """Why IK refused one sample (its tool point (3,) and joints (3,))."""
     arm = ctx.arm
-    x, y, z = s.xyz_mm[i]
+    x, y, z = xyz_mm
     reason = Reason(code)
-    q = np.degrees(s.joints_rad[i])
+    check, subject = _CHECK_OF_REASON[reason]
+    q = np.degrees(joints_rad)
     if reason is Reason.OUT_OF_REACH:
         rr = _reach_at(ctx, float(z))
         span = "nothing" if rr.r_min_mm is None else f"{rr.r_min_mm:.1f}-{rr.r_max_mm:.1f} mm"
-        r = float(np.hypot(x, y))
-        return Rejection(reason.label, f"tool at r={r:.1f} mm, z={z:.1f} mm; reachable r at that height: {span}",
+        r = float(np.hypot(x - arm.base_xy_mm[0], y - arm.base_xy_mm[1]))
+        return Rejection(check, f"tool at r={r:.1f} mm, z={z:.1f} mm; reachable r at that height: {span}",
                          value=r, limit=rr.r_max_mm, unit="mm")
     if reason is Reason.LINKAGE_CANNOT_ASSEMBLE:
-        return Rejection(reason.label, f"the elbow four-bar cannot close at ({x:.1f}, {y:.1f}, {z:.1f}) mm")
+        return Rejection(check, f"the elbow four-bar cannot close at ({x:.1f}, {y:.1f}, {z:.1f}) mm")
     if reason is Reason.ELBOW_INTERIOR:
         lo, hi = (_deg(v) for v in arm.elbow_interior_rad)
-        interior = float(np.degrees(arm.elbow_interior_angle_rad(s.joints_rad[i, 1], arm.forearm_rad(
-            s.joints_rad[i, 1:2], s.joints_rad[i, 2:3]))[0]))
+        interior = float(np.degrees(arm.elbow_interior_angle_rad(joints_rad[1], arm.forearm_rad(
+            joints_rad[1:2], joints_rad[2:3]))[0]))
         limit = lo if interior < lo else hi
         side = "<" if interior < lo else ">"
-        return Rejection(reason.label, f"elbow interior angle {interior:.1f} deg {side} {limit:g} deg",
+        return Rejection(check, f"elbow interior angle {interior:.1f} deg {side} {limit:g} deg",
                          value=interior, limit=limit, unit="deg")
     j = {Reason.JOINT_LIMIT_BASE: 0, Reason.JOINT_LIMIT_SHOULDER: 1, Reason.JOINT_LIMIT_ELBOW: 2}[reason]
     lo, hi = (_deg(v) for v in arm.limits_rad[j])
     value = float(q[j])
     limit, side, word = (lo, "<", "min") if value < lo else (hi, ">", "max")
-    return Rejection(reason.label, f"{JOINT_NAMES[j]} {value:.1f} deg {side} {word} {limit:g} deg",
-                     value=value, limit=limit, unit="deg")
+    return Rejection(check, f"{JOINT_NAMES[j]} {value:.1f} deg {side} {word} {limit:g} deg",
+                     value=value, limit=limit, unit="deg", subject=subject)
 
 
 def first_failing_segment(ctx: CheckContext, chain: SampledChain,
                           t0_s: float = 0.0) -> tuple[int, Rejection] | None:
     """The index of the first segment of a sampled chain with a failing sample and that sample's
-    :class:`Rejection` (:func:`first_failure` over all its segments at once); None if every sample
-    passes."""
+    :class:`Rejection` (one :func:`first_failing_sample` over all its samples at once); None if every
+    sample passes."""
     if not chain.segments:
         return None
     counts = np.diff(chain.starts)
-    kinds = np.repeat(np.arange(len(chain.segments)), counts)
-    seg_t0 = np.concatenate([[0.0], np.cumsum(chain.durations_s[:-1])])
-    t_s = chain.t_s + seg_t0[kinds]
-    joined = SampledSegment(chain.segments[0], float(sum(chain.durations_s)), t_s, chain.xyz_mm,
-                            chain.joints_rad, chain.reason)
+    segment_of_sample = np.repeat(np.arange(len(chain.segments)), counts)
     swing = np.repeat([s.kind.value == "swing" for s in chain.segments], counts)
     steps = np.diff(chain.t_s)
     steps[chain.starts[1:-1] - 1] = 0.0                 # a segment's first sample repeats the last one's
-    rej = first_failure(ctx, joined, t0_s, dt_steps=steps, flip_allowed=swing[1:] | swing[:-1])
-    if rej is None:
+    failure = first_failing_sample(ctx, chain.xyz_mm, chain.joints_rad, chain.reason, dt_steps=steps,
+                                   flip_allowed=swing[1:] | swing[:-1])
+    if failure is None:
         return None
-    index = int(np.searchsorted(t_s + t0_s, rej.time_s - 1e-9))
-    k = int(kinds[min(index, len(kinds) - 1)])
-    seg = chain.segments[k]
-    return k, Rejection(rej.check, rej.detail, seg.kind.value, rej.time_s, rej.value, rej.limit, rej.unit)
+    k = int(segment_of_sample[failure.index])
+    seg_t0_s = t0_s + float(sum(chain.durations_s[:k]))
+    return k, failure.rejection.at(chain.segments[k].kind.value, seg_t0_s + float(chain.t_s[failure.index]))
 
 
-def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_steps=None,
-                  flip_allowed=None) -> Rejection | None:
-    """The earliest failing sample of a sampled segment, as a :class:`Rejection`; None if all pass.
+@dataclass(frozen=True)
+class SampleFailure:
+    """The first failing sample of a run of samples: its index and why (no segment or time yet)."""
+
+    index: int
+    rejection: Rejection
+
+
+def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0) -> Rejection | None:
+    """The earliest failing sample of one sampled segment, as a :class:`Rejection` placed in the segment
+    at its sequence time (``t0_s`` is the time of the segment's first sample); None if all pass.
+
+    The segment's first sample is the previous segment's last, so joint speed is checked across the joint.
+    """
+    failure = first_failing_sample(ctx, s.xyz_mm, s.joints_rad, s.reason)
+    if failure is None:
+        return None
+    return failure.rejection.at(s.segment.kind.value, t0_s + float(s.t_s[failure.index]))
+
+
+def first_failing_sample(ctx: CheckContext, xyz_mm: np.ndarray, joints_rad: np.ndarray, reason: np.ndarray,
+                         dt_steps=None, flip_allowed=None, timed: bool = True) -> SampleFailure | None:
+    """The earliest failing sample of M samples and its :class:`Rejection`; None if all pass.
 
     Parameters
     ----------
     ctx : CheckContext
-    s : SampledSegment
-        Its first sample is the previous segment's last (so joint speed is checked across the joint).
-    t0_s : float
-        Sequence time of the segment's first sample, for the report.
+    xyz_mm : ndarray, shape (M, 3)
+        Tool points, table frame.
+    joints_rad : ndarray, shape (M, 3)
+        Joint angles from IK.
+    reason : ndarray, shape (M,)
+        IK's :class:`~gripsight.planning.arm.Reason` codes.
     dt_steps : ndarray, shape (M - 1,), optional
         Time between consecutive samples (default the clock period; 0 where a sample repeats).
     flip_allowed : ndarray of bool, shape (M - 1,), optional
         Steps where the elbow may change branch (joint-space swings).
+    timed : bool
+        False for separate points that are not a motion (the planner's probes): joint speed and branch
+        changes between them are not checked.
     """
     arm = ctx.arm
-    m = len(s.t_s)
+    m = len(reason)
     found: list[tuple[int, int, object]] = []   # (sample, priority, make-rejection)
 
-    bad_ik = np.flatnonzero(s.reason != Reason.OK)
+    bad_ik = np.flatnonzero(reason != Reason.OK)
     if bad_ik.size:
         i = int(bad_ik[0])
-        found.append((i, 0, lambda i=i: _ik_rejection(ctx, s, i, int(s.reason[i]))))
-    valid = s.reason == Reason.OK
+        found.append((i, 0, lambda i=i: _ik_rejection(ctx, xyz_mm[i], joints_rad[i], int(reason[i]))))
+    valid = reason == Reason.OK
     all_valid = not bad_ik.size
     if valid.any():
         # samples IK refused take a harmless pose (no NaN may reach the bounds of _may_enter)
         if all_valid:
-            pts = _arm_points(arm, s.joints_rad, s.xyz_mm)
+            pts = _arm_points(arm, joints_rad, xyz_mm)
         else:
-            q = np.where(valid[:, None], s.joints_rad, 0.0)
-            pts = _arm_points(arm, q, np.where(valid[:, None], s.xyz_mm, 0.0))
+            q = np.where(valid[:, None], joints_rad, 0.0)
+            pts = _arm_points(arm, q, np.where(valid[:, None], xyz_mm, 0.0))
         # a straight link's lowest point is one of its ends
         z = pts[2]
         low = np.minimum(z[:, :-1], z[:, 1:])
@@ -233,7 +300,7 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             i, k = np.argwhere(floor)[0]
             z = float(low[i, k])
             found.append((int(i), 1, lambda z=z, n=_LINK_NAMES[k]: Rejection(
-                "floor_clearance", f"{n} at z={z:.1f} mm < {ctx.floor_clearance_mm:g} mm above the table",
+                Check.FLOOR_CLEARANCE, f"{n} at z={z:.1f} mm < {ctx.floor_clearance_mm:g} mm above the table",
                 value=z, limit=ctx.floor_clearance_mm, unit="mm")))
         for zone in (z for z in ctx.keep_out if _may_enter(z, pts)):
             inside, enter = _zone_entry(zone, pts)
@@ -243,11 +310,12 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
                 i, k = np.argwhere(inside)[0]
                 p = [c[i, k] + enter[i, k] * (c[i, k + 1] - c[i, k]) for c in pts]
                 found.append((int(i), 2, lambda zone=zone, n=_LINK_NAMES[k], p=p: Rejection(
-                    f"keep_out:{zone.name}", f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm")))
-    # separate points (the planner's probes: no time between them, any branch allowed) skip both
-    timed = m > 1 and (dt_steps is None or bool(np.any(np.asarray(dt_steps) > 0)))
-    one_branch = m > 1 and (flip_allowed is None or not bool(np.all(flip_allowed)))
-    step_rad = np.diff(s.joints_rad, axis=0) if timed or one_branch else None
+                    Check.KEEP_OUT, f"{n} enters zone '{zone.name}' at ({p[0]:.1f}, {p[1]:.1f}, {p[2]:.1f}) mm",
+                    subject=zone.name)))
+    # separate points (the planner's probes) skip both the speed and the branch checks
+    one_branch = timed and m > 1 and (flip_allowed is None or not bool(np.all(flip_allowed)))
+    timed = timed and m > 1 and (dt_steps is None or bool(np.any(np.asarray(dt_steps) > 0)))
+    step_rad = np.diff(joints_rad, axis=0) if timed or one_branch else None
     if timed:
         step = ctx.dt_s if dt_steps is None else np.where(np.asarray(dt_steps) > 0, dt_steps, np.inf)[:, None]
         dq = np.abs(step_rad) / step                                            # (M-1, 3) rad/s
@@ -256,11 +324,11 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             i, j = np.argwhere(over)[0]
             v, lim = _deg(dq[i, j]), _deg(arm.max_speed_rad_s[j])
             found.append((int(i) + 1, 3, lambda j=j, v=v, lim=lim: Rejection(
-                f"joint_speed:{JOINT_NAMES[j]}", f"{JOINT_NAMES[j]} {v:.1f} deg/s > {lim:g} deg/s",
-                value=v, limit=lim, unit="deg/s")))
+                Check.JOINT_SPEED, f"{JOINT_NAMES[j]} {v:.1f} deg/s > {lim:g} deg/s",
+                value=v, limit=lim, unit="deg/s", subject=JOINT_NAMES[j])))
     if one_branch:
-        psi = arm.forearm_rad(s.joints_rad[:, 1], s.joints_rad[:, 2])
-        bend = np.sign(wrap_angle(psi - s.joints_rad[:, 1]))
+        psi = arm.forearm_rad(joints_rad[:, 1], joints_rad[:, 2])
+        bend = np.sign(wrap_angle(psi - joints_rad[:, 1]))
         # a step over 90 deg once wrapped is one over 90 deg before: wrap only those
         big = np.abs(step_rad) > np.pi / 2
         jump = (big & (np.abs(wrap_angle(step_rad)) > np.pi / 2)).any(axis=1) if big.any() else np.zeros(m - 1, bool)
@@ -269,12 +337,11 @@ def first_failure(ctx: CheckContext, s: SampledSegment, t0_s: float = 0.0, dt_st
             flip &= ~np.asarray(flip_allowed, bool)
         if flip.any():
             i = int(np.flatnonzero(flip)[0]) + 1
-            found.append((i, 4, lambda: Rejection("branch_flip", "the elbow would change branch inside one move")))
+            found.append((i, 4, lambda: Rejection(Check.BRANCH_FLIP, "the elbow would change branch inside one move")))
     if not found:
         return None
     i, _, make = min(found, key=lambda f: (f[0], f[1]))
-    rej = make()
-    return Rejection(rej.check, rej.detail, s.segment.kind.value, t0_s + float(s.t_s[i]), rej.value, rej.limit, rej.unit)
+    return SampleFailure(int(i), make())
 
 
 def jaw_width_mm(part, base_rad: float, jaw: str) -> float:
@@ -302,6 +369,6 @@ def grip_fit_rejection(part, gripper) -> Rejection | None:
     limit = gripper.max_opening_mm - gripper.margin_mm
     if width <= limit + 1e-9:
         return None
-    return Rejection("grip_fit", f"{width:.1f} mm across the jaws > {limit:g} mm "
+    return Rejection(Check.GRIP_FIT, f"{width:.1f} mm across the jaws > {limit:g} mm "
                      f"(opening {gripper.max_opening_mm:g} - margin {gripper.margin_mm:g})",
                      segment="close", value=width, limit=limit, unit="mm")

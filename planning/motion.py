@@ -15,7 +15,7 @@ from enum import Enum
 import numpy as np
 
 from gripsight.planning.arm import Arm
-from gripsight.planning.paths import ArcPath, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
+from gripsight.planning.paths import ArcPath, PathTerms, StraightPath, TimeScaling, path_points, peak_rate, time_scaling
 
 __all__ = ["SampledChain", "SampledSegment", "Segment", "SegmentKind", "durations_s", "sample_segments", "timed_samples"]
 
@@ -30,6 +30,7 @@ class SegmentKind(str, Enum):
     CLOSE = "close"         # dwell while the gripper closes
     OPEN = "open"           # dwell while the gripper opens
     SWING = "swing"         # joint-space move (from or to a pose the Cartesian moves cannot start from)
+    HOLD = "hold"           # dwell at a stop long enough to take a photo (arm calibration)
 
 
 @dataclass(frozen=True)
@@ -42,6 +43,7 @@ class Segment:
     part_id: str | None = None
     gripper_closed: bool = False
     joints_rad: tuple | None = None      # (start, end), shape (3,) each, for a SWING
+    dwell_s: float | None = None         # a dwell's own length (default: the cell's dwell_s)
 
 
 @dataclass(frozen=True)
@@ -71,7 +73,8 @@ def durations_s(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed_m
     # one duration per segment: swings from their slowest joint, dwells fixed, moves from their length
     rate, speed = peak_rate(scaling), speed_mm_s * speed_scale
     need = np.array([_swing_s(seg, arm, speed_scale) * rate * _SPEED_MARGIN if seg.joints_rad is not None
-                     else dwell_s if seg.path is None else seg.path.length_mm * rate / speed for seg in segments])
+                     else (dwell_s if seg.dwell_s is None else seg.dwell_s) if seg.path is None
+                     else seg.path.length_mm * rate / speed for seg in segments])
     moving = np.array([seg.path is not None or seg.joints_rad is not None for seg in segments], bool)
     return _round_up(np.where(moving, np.maximum(need, dt_s), need), dt_s).tolist()
 
@@ -126,7 +129,6 @@ def timed_samples(segments: list[Segment], arm: Arm, scaling: TimeScaling, speed
 
 
 _ZERO3 = np.zeros(3)
-_STILL = (_ZERO3, _ZERO3, _ZERO3, 0.0)     # d, e1, e2, w of a dwell or swing (c is where it holds)
 
 
 def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, scaling: TimeScaling,
@@ -147,17 +149,18 @@ def sample_segments(segments: list[Segment], durations: list[float], arm: Arm, s
     for k, seg in enumerate(segments):
         if seg.joints_rad is not None:
             swings.append(k)
-            terms.append((_ZERO3, *_STILL))
+            terms.append(PathTerms(_ZERO3, _ZERO3, _ZERO3, _ZERO3, 0.0))
             ends.append((_ZERO3, _ZERO3))
         elif seg.path is None:
-            terms.append((seg.hold_mm, *_STILL))
+            terms.append(PathTerms(np.asarray(seg.hold_mm, float), _ZERO3, _ZERO3, _ZERO3, 0.0))
             ends.append((seg.hold_mm, seg.hold_mm))
         else:
             terms.append(seg.path.terms())
             ends.append((seg.path.p0, seg.path.p1))
-    c, d, e1, e2 = (np.array([t[i] for t in terms])[seg_of] for i in range(4))
-    w = np.array([t[4] for t in terms])[seg_of]
-    xyz = path_points((c, d, e1, e2, w), s)
+    # every segment's terms repeated per sample: one evaluation for the whole chain
+    per_sample = PathTerms(*(np.array([getattr(t, f) for t in terms])[seg_of]
+                             for f in ("c_mm", "d_mm", "e1_mm", "e2_mm", "sweep_rad")))
+    xyz = path_points(per_sample, s)
     xyz[first] = [e[0] for e in ends]                 # the ends exact (last wins for one-sample segments)
     xyz[last] = [e[1] for e in ends]
     swung = []

@@ -20,8 +20,9 @@ from enum import Enum
 import numpy as np
 
 from gripsight.planning.errors import PlanningError
+from gripsight.planning.points import as_n_by_3
 
-__all__ = ["ArcPath", "PathGeometryError", "StraightPath", "TimeScaling", "path_points", "peak_rate", "time_scaling"]
+__all__ = ["ArcPath", "PathGeometryError", "PathTerms", "StraightPath", "TimeScaling", "path_points", "peak_rate", "time_scaling"]
 
 
 class PathGeometryError(PlanningError, ValueError):
@@ -78,15 +79,6 @@ def time_scaling(kind: TimeScaling | str, tau) -> tuple[np.ndarray, np.ndarray, 
     return s, ds, dds
 
 
-def _as_point(p, name: str) -> np.ndarray:
-    arr = np.asarray(p, dtype=float)
-    if arr.shape != (3,):
-        raise ValueError(f"{name}: expected shape (3,), got {arr.shape}")
-    if not all(math.isfinite(v) for v in arr.tolist()):
-        raise ValueError(f"{name}: must be finite, got {arr.tolist()}")
-    return arr
-
-
 def _cross(a, b) -> tuple[float, float, float]:
     """a x b for two 3-vectors as float tuples (numpy costs many times more for one pair)."""
     return (a[1] * b[2] - a[2] * b[1], a[2] * b[0] - a[0] * b[2], a[0] * b[1] - a[1] * b[0])
@@ -103,14 +95,28 @@ def _fmt(p) -> str:
 _ZERO = np.zeros(3)
 
 
-def path_points(terms, s) -> np.ndarray:
-    """Points c + s d + cos(s w) e1 + sin(s w) e2 of a path's :meth:`terms` (M, 3), at path parameters
-    s (M,); every term may be one row for all samples or one row per sample, so segments of a whole
-    plan are evaluated in one pass (straight: c = p0, d = p1 - p0; arc: c = centre, w = sweep)."""
-    c, d, e1, e2, w = terms
+@dataclass(frozen=True)
+class PathTerms:
+    """A path as p(s) = c + s d + cos(s w) e1 + sin(s w) e2 (straight: c = p0, d = p1 - p0, e1 = e2 = 0,
+    w = 0; arc: c = centre, d = 0, e1 and e2 the radius along the arc's frame, w = sweep in rad).
+
+    Each field is one row for every sample, or one row per sample (so the segments of a whole plan are
+    evaluated in one pass: see :func:`path_points`).
+    """
+
+    c_mm: np.ndarray
+    d_mm: np.ndarray
+    e1_mm: np.ndarray
+    e2_mm: np.ndarray
+    sweep_rad: np.ndarray | float
+
+
+def path_points(terms: PathTerms, s) -> np.ndarray:
+    """Points (M, 3) of a path's :class:`PathTerms` at path parameters s (M,), table mm."""
     s = np.asarray(s, dtype=float)
-    ang = s * w
-    return c + s[:, None] * d + np.cos(ang)[:, None] * e1 + np.sin(ang)[:, None] * e2
+    ang = s * terms.sweep_rad
+    return (terms.c_mm + s[:, None] * terms.d_mm + np.cos(ang)[:, None] * terms.e1_mm
+            + np.sin(ang)[:, None] * terms.e2_mm)
 
 
 @dataclass(frozen=True)
@@ -121,16 +127,16 @@ class StraightPath:
     p1: np.ndarray
 
     def __post_init__(self):
-        object.__setattr__(self, "p0", _as_point(self.p0, "p0"))
-        object.__setattr__(self, "p1", _as_point(self.p1, "p1"))
+        object.__setattr__(self, "p0", as_n_by_3(self.p0, one=True, name="p0"))
+        object.__setattr__(self, "p1", as_n_by_3(self.p1, one=True, name="p1"))
 
     @property
     def length_mm(self) -> float:
         return math.dist(self.p1, self.p0)
 
-    def terms(self) -> tuple:
-        """(c, d, e1, e2, w) of :func:`path_points`."""
-        return self.p0, self.p1 - self.p0, _ZERO, _ZERO, 0.0
+    def terms(self) -> PathTerms:
+        """The path's :class:`PathTerms`."""
+        return PathTerms(self.p0, self.p1 - self.p0, _ZERO, _ZERO, 0.0)
 
     def points(self, s) -> np.ndarray:
         """Points for path parameters s, shape (M,) -> (M, 3), table mm (the ends exact)."""
@@ -169,7 +175,7 @@ class ArcPath:
     _e2: np.ndarray = field(init=False, repr=False)
 
     def __post_init__(self):
-        arrays = [_as_point(p, n) for p, n in ((self.p0, "p0"), (self.via, "via"), (self.p1, "p1"))]
+        arrays = [as_n_by_3(p, one=True, name=n) for p, n in ((self.p0, "p0"), (self.via, "via"), (self.p1, "p1"))]
         p0, via, p1 = (a.tolist() for a in arrays)
         for (a, na), (b, nb) in (((p0, "p0"), (via, "via")), ((via, "via"), (p1, "p1")), ((p0, "p0"), (p1, "p1"))):
             if math.dist(a, b) < 1e-9:
@@ -204,9 +210,9 @@ class ArcPath:
     def length_mm(self) -> float:
         return self.radius_mm * self.sweep_rad
 
-    def terms(self) -> tuple:
-        """(c, d, e1, e2, w) of :func:`path_points`."""
-        return self.centre, _ZERO, self.radius_mm * self._e1, self.radius_mm * self._e2, self.sweep_rad
+    def terms(self) -> PathTerms:
+        """The path's :class:`PathTerms`."""
+        return PathTerms(self.centre, _ZERO, self.radius_mm * self._e1, self.radius_mm * self._e2, self.sweep_rad)
 
     def points(self, s) -> np.ndarray:
         """Points for path parameters s, shape (M,) -> (M, 3), table mm (the ends exact)."""

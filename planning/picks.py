@@ -17,30 +17,40 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from enum import StrEnum
 
 import numpy as np
 
 from gripsight.planning.arm import Arm
 from gripsight.planning.cellcheck import cell_problems
-from gripsight.planning.checks import CheckContext, Rejection, first_failing_segment, first_failure, grip_fit_rejection
+from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
+                                       first_failure, grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
+from gripsight.planning.held import HeldSpec, PickHeights, held_part_failure, part_obstacle, pick_heights, static_obstacles
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["Planner", "Plan", "PartOutcome", "PlannedPick", "JointSamples"]
+__all__ = ["Planner", "Plan", "PartOutcome", "PickStatus", "PlannedPick", "JointSamples"]
 
 _MIN_ARC_BULGE_MM = 0.5     # a transfer whose via point is closer than this to the chord is straight
 _SAME_POINT_MM = 1e-6
 
 
+class PickStatus(StrEnum):
+    """What became of one part."""
+
+    PLANNED = "planned"
+    REJECTED = "rejected"
+
+
 @dataclass(frozen=True)
 class PartOutcome:
-    """What became of one part: ``planned``, or ``rejected`` with a :class:`Rejection`."""
+    """What became of one part: planned, or rejected with a :class:`Rejection`."""
 
     part: PartTarget
-    status: str
+    status: PickStatus
     bin_name: str | None
     rejection: Rejection | None = None
 
@@ -115,6 +125,9 @@ class Planner:
         self.home_rad = np.radians([m.home_deg.base, m.home_deg.shoulder, m.home_deg.elbow])
         self.home_mm = self.arm.forward(self.home_rad[None])[0]
         self._ik_poses: dict[tuple, bool] = {}
+        self._raised_ends: dict[tuple, bool] = {}      # pick ends above safe height (over a released tall part)
+        self._obstacles = static_obstacles(cell)
+        self._table: dict[str, PartTarget] = {}        # parts still on the table (for the held-part check)
         self._check_cell()
 
     # ------------------------------------------------------------ cell-level checks
@@ -150,28 +163,53 @@ class Planner:
         return [Segment(SegmentKind.TRANSFER, path, part_id=part_id, gripper_closed=closed)]
 
     def _to_safe(self, p0, part_id, closed) -> tuple[list[Segment], np.ndarray]:
+        if p0[2] > self.safe_z + 1e-9 and self._raised_ends.get(tuple(np.round(p0, 9))):
+            # above a tall part just released into its tray: never lower onto it; the transfer descends
+            return [], np.asarray(p0, float)
         p_safe = np.array([p0[0], p0[1], self.safe_z])
         kind = SegmentKind.RISE if p_safe[2] > p0[2] else SegmentKind.LOWER
         return self._straight(kind, p0, p_safe, part_id, closed), p_safe
 
-    def pick_segments(self, part: PartTarget, bin_name: str, start_mm: np.ndarray) -> list[Segment]:
-        """The segments of one pick from tool point ``start_mm`` (gripper open at the start)."""
+    def heights_for(self, part: PartTarget, tallest_other_mm: float = 0.0) -> PickHeights:
+        """The tool heights of a pick of ``part`` (:func:`planning.held.pick_heights`): approach, grip,
+        carry and release, raised where the held part needs it."""
+        return pick_heights(self.cell, part.height_mm, self.bin_for(part), tallest_other_mm)
+
+    def pick_end_mm(self, part: PartTarget, heights: PickHeights | None = None) -> np.ndarray:
+        """Where a pick leaves the tool: above its tray at safe height, or above the released part's top."""
+        b = self.cell.bins[self.bin_for(part)]
+        top = b.z + part.height_mm + self.cell.motion.floor_clearance_mm
+        return np.array([b.x, b.y, max(self.safe_z, top)])
+
+    def pick_segments(self, part: PartTarget, bin_name: str, start_mm: np.ndarray,
+                      heights: PickHeights | None = None) -> list[Segment]:
+        """The segments of one pick from tool point ``start_mm`` (gripper open at the start), at the
+        heights of :meth:`heights_for` (default: no other part on the table)."""
         x, y = part.xy_mm
-        grip_z = part.height_mm - self.cell.motion.grip_depth_mm
+        h = heights or pick_heights(self.cell, part.height_mm, bin_name, 0.0)
+        grip_z, carry_z, drop_z = h.grip_z_mm, h.carry_z_mm, h.release_z_mm
         b = self.cell.bins[bin_name]
-        drop_z = b.z + self.cell.motion.drop_z_mm
         pid = part.id
         segs, p = self._to_safe(start_mm, pid, False)
-        above_part = np.array([x, y, self.safe_z])
-        above_bin = self._above_bin(bin_name)
+        above_part = np.array([x, y, h.approach_z_mm])
+        lifted = np.array([x, y, carry_z])
+        above_bin = np.array([b.x, b.y, carry_z])
+        end = self.pick_end_mm(part, h)
         segs += self._transfer(p, above_part, pid, False)
         segs += self._straight(SegmentKind.DESCEND, above_part, [x, y, grip_z], pid, False)
         segs.append(Segment(SegmentKind.CLOSE, None, np.array([x, y, grip_z]), pid, True))
-        segs += self._straight(SegmentKind.RISE, [x, y, grip_z], above_part, pid, True)
-        segs += self._transfer(above_part, above_bin, pid, True)
+        segs += self._straight(SegmentKind.RISE, [x, y, grip_z], lifted, pid, True)
+        segs += self._transfer(lifted, above_bin, pid, True)
         segs += self._straight(SegmentKind.DESCEND, above_bin, [b.x, b.y, drop_z], pid, True)
         segs.append(Segment(SegmentKind.OPEN, None, np.array([b.x, b.y, drop_z]), pid, False))
-        segs += self._straight(SegmentKind.RISE, [b.x, b.y, drop_z], above_bin, pid, False)
+        segs += self._straight(SegmentKind.RISE, [b.x, b.y, drop_z], end, pid, False)
+        if end[2] > self.safe_z + 1e-9:
+            self._raised_ends[tuple(np.round(end, 9))] = True
+        for seg in segs:        # a descent descends, a rise rises (a bug otherwise, never a motion)
+            if seg.path is not None and seg.kind in (SegmentKind.DESCEND, SegmentKind.RISE, SegmentKind.LOWER):
+                dz = seg.path.p1[2] - seg.path.p0[2]
+                if (dz > 0) != (seg.kind is SegmentKind.RISE):
+                    raise AssertionError(f"internal: a {seg.kind.value} segment of part {pid} moves z by {dz:+.1f} mm")
         return segs
 
     def _ik_pose(self, q) -> bool:
@@ -199,7 +237,44 @@ class Planner:
         failure is (index of the first failing segment, its Rejection), or None."""
         m = self.cell.motion
         chain = timed_samples(segments, self.arm, self.scaling, m.speed_mm_s, m.dwell_s, self.dt_s, self.speed_scale)
-        return chain.pieces(), first_failing_segment(self.ctx, chain, t0_s)
+        link = first_failing_segment(self.ctx, chain, t0_s)
+        held = held_part_failure(chain, self._held_specs(segments), t0_s)
+        failures = [f for f in (link, held) if f is not None]
+        failure = min(failures, key=lambda f: (f[0], f[1].time_s if f[1].time_s is not None else -1.0)) if failures else None
+        return chain.pieces(), failure
+
+    def _held_specs(self, segments: list[Segment]) -> list[HeldSpec | None]:
+        """Per segment, what the gripper holds and what it must clear: the part of a closed-gripper
+        move (not the close dwell, where it still stands), the floor under it, the obstacles (static
+        ones and the parts still on the table: those of picks earlier in the chain are gone)."""
+        m = self.cell.motion
+        clearance = m.floor_clearance_mm
+        carry_floor = clearance + max([0.0] + [b.z for b in self.cell.bins.values()])
+        gone: set[str] = set()
+        current, specs, prev = None, [], None
+        for seg in segments:
+            if seg.part_id != current:
+                if current is not None:
+                    gone.add(current)
+                current = seg.part_id
+            part = self._table.get(seg.part_id) if seg.part_id is not None else None
+            if part is None or not seg.gripper_closed or seg.kind is SegmentKind.CLOSE:
+                specs.append(None)
+                prev = seg
+                continue
+            if prev is not None and prev.kind is SegmentKind.CLOSE:
+                floor = None                                            # the lift off its own place
+            elif seg.kind is SegmentKind.DESCEND:
+                floor = self.cell.bins[self.bin_for(part)].z + clearance
+            else:
+                floor = carry_floor
+            others = tuple(part_obstacle(p, clearance) for pid, p in self._table.items()
+                           if pid != part.id and pid not in gone)
+            base = float(np.arctan2(part.xy_mm[1], part.xy_mm[0]))
+            specs.append(HeldSpec(part, part.height_mm - m.grip_depth_mm, m.grip_depth_mm, base, floor,
+                                  tuple(self._obstacles) + others))
+            prev = seg
+        return specs
 
     def _above_bin(self, bin_name: str) -> np.ndarray:
         """Above a bin at safe height: where every pick into it leaves the tool."""
@@ -213,7 +288,7 @@ class Planner:
         return "reject" if "reject" in self.cell.bins else None
 
     def plan(self, parts: list[PartTarget], order: str = "nearest", start_joints_rad=None,
-             end_at_home: bool = True, t0_s: float = 0.0) -> Plan:
+             end_at_home: bool = True, t0_s: float = 0.0, bin_room: dict[str, int] | None = None) -> Plan:
         """Plan every part; rejected parts carry their reason, the rest form one checked sequence.
 
         Parameters
@@ -227,6 +302,9 @@ class Planner:
             Finish with a move back to the home pose.
         t0_s : float
             Clock time of the first sample (for runs that continue a previous plan).
+        bin_room : dict of str to int, optional
+            Places left per bin (bins with a capacity): parts beyond it, in the given order, are rejected
+            ``bin_full``.
         """
         if order not in ("nearest", "detected"):
             raise ValueError(f"order: expected 'nearest' or 'detected', got {order!r}")
@@ -234,9 +312,16 @@ class Planner:
         start_mm = self.arm.forward(q0[None])[0]
         outcomes: dict[str, PartOutcome] = {}
         candidates: list[PartTarget] = []
-        for part, rej in zip(parts, self._precheck(parts)):
+        self._table = {p.id: p for p in parts}
+        all_heights = [p.height_mm for p in parts]
+        heights: dict[str, PickHeights] = {}
+        for k, part in enumerate(parts):
+            if self.bin_for(part) is not None:
+                tallest_other = max(all_heights[:k] + all_heights[k + 1:], default=0.0)
+                heights[part.id] = self.heights_for(part, tallest_other)
+        for part, rej in zip(parts, self._precheck(parts, bin_room, heights)):
             if rej is not None:
-                outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), rej)
+                outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), rej)
             else:
                 candidates.append(part)
         if order == "nearest" and len(candidates) > 1:
@@ -265,8 +350,8 @@ class Planner:
             # rest go again
             runs, start_here, first_lead = [], here, lead
             for part in candidates:
-                runs.append(first_lead + self.pick_segments(part, self.bin_for(part), start_here))
-                start_here, first_lead = self._above_bin(self.bin_for(part)), []
+                runs.append(first_lead + self.pick_segments(part, self.bin_for(part), start_here, heights[part.id]))
+                start_here, first_lead = self.pick_end_mm(part, heights[part.id]), []
             home = [] if home_done else self._home_segments(start_here)
             flat = [seg for segs in runs for seg in segs] + home
             sampled, failure = self._check_all(flat, t)
@@ -275,7 +360,8 @@ class Planner:
             for k in range(min(failed, len(runs))):
                 part, own = candidates[k], sampled[bounds[k]:bounds[k + 1]]
                 picks.append(PlannedPick(part.id, part.class_name, self.bin_for(part), own, t))
-                outcomes[part.id] = PartOutcome(part, "planned", self.bin_for(part))
+                outcomes[part.id] = PartOutcome(part, PickStatus.PLANNED, self.bin_for(part))
+                self._table.pop(part.id, None)
                 accepted += own
                 t += sum(s.duration_s for s in own)
                 here, lead = own[-1].xyz_mm[-1], []
@@ -287,7 +373,7 @@ class Planner:
                     warnings.append(self._home_failed(failure[1]))
                 break
             part = candidates[failed]
-            outcomes[part.id] = PartOutcome(part, "rejected", self.bin_for(part), failure[1])
+            outcomes[part.id] = PartOutcome(part, PickStatus.REJECTED, self.bin_for(part), failure[1])
             candidates = candidates[failed + 1:]
         q_here = accepted[-1].joints_rad[-1] if accepted else q0
         if not home_done and float(np.abs(np.asarray(q_here) - self.home_rad).max()) > 1e-9:
@@ -316,43 +402,70 @@ class Planner:
     def _home_failed(rejection: Rejection) -> str:
         return f"the move back to the home pose failed a check and was left out: {rejection.describe()}"
 
-    def _precheck(self, parts: list[PartTarget]) -> list[Rejection | None]:
-        """Reasons known before any motion, per part: the photo's verdict, no bin, grip fit, grip or
-        above-part point unreachable (every part's two points through one IK call and one check pass,
-        again after each point that fails)."""
+    def _precheck(self, parts: list[PartTarget], bin_room: dict[str, int] | None,
+                  heights: dict[str, PickHeights]) -> list[Rejection | None]:
+        """Reasons known before any motion, per part: the photo's verdict, no bin, a full bin, grip fit,
+        grip or above-part point unreachable (every part's two points through one IK call and one check
+        pass, again after each point that fails), the held part's carry or release height out of reach."""
         out: list[Rejection | None] = [None] * len(parts)
+        room = dict(bin_room or {})
         probed = []
         for k, part in enumerate(parts):
-            if part.vision_status not in ("ok", "unknown_colour"):
-                out[k] = Rejection(part.vision_status, part.vision_detail or "rejected by the photo analysis")
-            elif self.bin_for(part) is None:
-                out[k] = Rejection("unknown_class", f"class '{part.class_name}' has no bin and the cell has no "
-                                                    f"'reject' bin")
+            name = self.bin_for(part)
+            if not part.pickable:
+                out[k] = Rejection(Check.PHOTO, part.vision_detail or "rejected by the photo analysis",
+                                   subject=part.vision_status)
+            elif name is None:
+                out[k] = Rejection(Check.UNKNOWN_CLASS, f"class '{part.class_name}' has no bin and the cell has no "
+                                                        f"'reject' bin")
+            elif name in room and room[name] <= 0:
+                out[k] = Rejection(Check.BIN_FULL, f"bin '{name}' is full")
             else:
+                if name in room:
+                    room[name] -= 1
                 out[k] = grip_fit_rejection(part, self.cell.arm.gripper)
                 if out[k] is None:
                     probed.append(k)
         if not probed:
             return out
-        grip_depth = self.cell.motion.grip_depth_mm
         pts = np.array([[*parts[k].xy_mm, z] for k in probed
-                        for z in (parts[k].height_mm - grip_depth, self.safe_z)], float)
+                        for z in (heights[parts[k].id].grip_z_mm, heights[parts[k].id].approach_z_mm)], float)
         sol = self.arm.inverse(pts)
         first = 0
         while first < len(pts):
-            # the probes are separate points, not a motion: no speeds or branch flips between them; the
-            # sample "times" are their indices, so the failure says which point it is
-            n = len(pts) - first
-            probe = SampledSegment(Segment(SegmentKind.DESCEND, None, pts[first]), 0.0, np.arange(n, dtype=float),
-                                   pts[first:], sol.joints_rad[first:], sol.reason[first:])
-            bad = first_failure(self.ctx, probe, dt_steps=np.zeros(n - 1), flip_allowed=np.ones(n - 1, bool))
+            # the probes are separate points, not a motion: no speeds or branch changes between them
+            bad = first_failing_sample(self.ctx, pts[first:], sol.joints_rad[first:], sol.reason[first:], timed=False)
             if bad is None:
                 break
-            i = first + int(round(bad.time_s))
-            out[probed[i // 2]] = Rejection(bad.check, bad.detail, ("descend", "transfer")[i % 2], None,
-                                            bad.value, bad.limit, bad.unit)
+            i = first + bad.index
+            out[probed[i // 2]] = bad.rejection.at(("descend", "transfer")[i % 2], None)
             first = (i // 2 + 1) * 2
+        self._precheck_held(parts, heights, [k for k in probed if out[k] is None], out)
         return out
+
+    def _precheck_held(self, parts, heights, probed, out) -> None:
+        """Reject parts whose adapted heights (carry above the part and the tray, release) are out of
+        reach, saying what the height is for."""
+        places = []
+        for k in probed:
+            part, h = parts[k], heights[parts[k].id]
+            b = self.cell.bins[self.bin_for(part)]
+            places += [(k, "carry", (*part.xy_mm, h.carry_z_mm)), (k, "carry", (b.x, b.y, h.carry_z_mm)),
+                       (k, "release", (b.x, b.y, h.release_z_mm))]
+        if not places:
+            return
+        sol = self.arm.inverse(np.array([p for _, _, p in places], float))
+        labels = sol.reason_labels()
+        for (k, label, (x, y, z)), ok, why in zip(places, sol.ok, labels):
+            if ok or out[k] is not None:
+                continue
+            h = heights[parts[k].id]
+            need = ("pass over the table, trays, raised markers and other parts" if label == "carry"
+                    else "stay above the tray floor")
+            out[k] = Rejection(Check.HELD_PART, f"a part {parts[k].height_mm:g} mm tall hangs {h.hang_mm:g} mm below "
+                                            f"the tool; to {need} the tool must be at z={z:.1f} mm at "
+                                            f"({x:.1f}, {y:.1f}) mm: {why}", "rise" if label == "carry" else "descend",
+                               None, z, None, "mm")
 
     def _join(self, sampled: list[SampledSegment], q0, start_mm, t0_s):
         """Concatenate segments on one clock (each segment's first sample is the previous one's last)."""

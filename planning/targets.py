@@ -34,9 +34,11 @@ class PartTarget:
         False for a class the cell does not know (planned to the ``reject`` bin).
     pixel_uv : tuple of float or None
         Where it was seen in the photo (u, v px), if it came from one.
+    pickable : bool
+        False when the photo analysis set the part aside (cut by an edge, too small, ...): the planner
+        rejects it with ``vision_status`` as the reason.
     vision_status, vision_detail : str
-        What the photo analysis said (``ok``, ``unknown_colour``, ``cut_by_edge``, ``too_small``,
-        ``too_large``, ``touching``); a part that is not ``ok`` or ``unknown_colour`` is rejected with it.
+        What the photo analysis said (``ok``, ``unknown_colour``, ``cut_by_edge``, ...), as labels.
     """
 
     id: str
@@ -49,5 +51,6 @@ class PartTarget:
     round: bool = False
     known_class: bool = True
     pixel_uv: tuple[float, float] | None = None
+    pickable: bool = True
     vision_status: str = "ok"
     vision_detail: str = ""

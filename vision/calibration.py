@@ -19,17 +19,21 @@ Every corner of every marker lying on the table is a correspondence (photo pixel
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from enum import StrEnum
 
 import numpy as np
 from scipy.optimize import least_squares
 
+from gripsight.vision.camerapose import centre_for_height, centre_from_raised
 from gripsight.vision.errors import CalibrationError
 from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
 from gripsight.vision.lens import DivisionLens, NoLens
+from gripsight.vision.settings import LensMode
 from gripsight.vision.markers import MarkerDetection
 from gripsight.vision.markergeom import marker_paper_corners_mm
 
-__all__ = ["Calibration", "CalibrationError", "MarkerFit", "calibrate", "camera_centre_from_raised", "VERDICTS"]
+__all__ = ["Calibration", "CalibrationError", "MarkerFit", "MarkerRole", "CentreSource", "Verdict", "calibrate",
+           "camera_centre_from_raised", "VERDICTS"]
 
 _MOVED_MIN_MM = 1.0
 _LENS_GAIN = 0.8            # keep the division model if it brings the RMS below 80 % of the plain fit
@@ -37,7 +41,33 @@ _LENS_MIN_REACH = 0.55      # ... and used corners reach this fraction of the ha
 _CENTRE_MIN_MARKERS = 6     # markers needed to fit the distortion centre as well
 _CENTRE_GAIN = 0.85         # ... kept if it brings the RMS below 85 % of the centred model's
 _DEFAULT_HEIGHT_MM = 750.0
-VERDICTS = ("good", "fair", "poor")
+class Verdict(StrEnum):
+    """How good a calibration is (see :func:`_verdict`)."""
+
+    GOOD = "good"
+    FAIR = "fair"
+    POOR = "poor"
+
+
+class CentreSource(StrEnum):
+    """Where the camera centre came from."""
+
+    MEASURED = "measured"                  # camera.centre_mm in the cell
+    RAISED_MARKERS = "raised_markers"      # fitted from the raised markers' corners
+    ASSUMED = "assumed"                    # nadir under the image centre, camera.height_mm or a default
+
+
+class MarkerRole(StrEnum):
+    """What a detected marker did in a calibration."""
+
+    USED = "used"                          # its corners went into the table mapping
+    RAISED = "raised"                      # above the table: used for the camera centre
+    MOVED = "moved"                        # set aside: the others put it elsewhere (moved on the table?)
+    NOT_IN_LAYOUT = "not_in_layout"        # an id the cell's layout does not have
+    DUPLICATE = "duplicate"                # an id seen more than once in the photo
+
+
+VERDICTS = tuple(v.value for v in Verdict)
 
 
 @dataclass
@@ -49,6 +79,7 @@ class MarkerFit:
     corners_mm: np.ndarray | None          # (4, 3) from the layout, None if not in it
     used: bool
     reason: str = ""
+    role: MarkerRole = MarkerRole.USED
     residual_mm: float | None = None       # RMS over its corners
     residual_px: float | None = None
     vectors_px: np.ndarray | None = None   # (4, 2) predicted - observed, for the overlay
@@ -64,14 +95,14 @@ class Calibration:
 
     mapping: TableMapping
     camera_centre_mm: np.ndarray
-    centre_source: str                    # measured | raised_markers | assumed
+    centre_source: CentreSource
     markers: list[MarkerFit]
     image_size: tuple[int, int]           # (width, height) px
     rms_mm: float
     max_mm: float
     rms_px: float
     max_px: float
-    verdict: str
+    verdict: Verdict
     notes: list[str] = field(default_factory=list)
 
     @property
@@ -90,11 +121,13 @@ def _table_markers(detections: list[MarkerDetection], cell):
         if d.id in layout:
             corners_mm = marker_paper_corners_mm(layout[d.id], cell.markers.size_mm)
         if d.id not in layout:
-            fits.append(MarkerFit(d.id, d.corners_px, None, False, "not in the cell's layout"))
+            fits.append(MarkerFit(d.id, d.corners_px, None, False, "not in the cell's layout", MarkerRole.NOT_IN_LAYOUT))
         elif counts[d.id] > 1:
-            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, f"id seen {counts[d.id]} times in the photo"))
+            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, f"id seen {counts[d.id]} times in the photo",
+                                  MarkerRole.DUPLICATE))
         elif layout[d.id].z > 0:
-            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, "raised: used for the camera centre"))
+            fits.append(MarkerFit(d.id, d.corners_px, corners_mm, False, "raised: used for the camera centre",
+                                  MarkerRole.RAISED))
         else:
             fits.append(MarkerFit(d.id, d.corners_px, corners_mm, True))
     return fits
@@ -191,6 +224,7 @@ def _fit_with_outliers(fits, lens_kind, image_size, fixed_lens, photo):
         typical = float(np.median(_marker_residuals(others, rest)))
         if predicted > max(_MOVED_MIN_MM, 5.0 * typical):
             worst.reason = f"moved on the table? {predicted:.1f} mm from where the other markers put it"
+            worst.role = MarkerRole.MOVED
             continue
         worst.used = True
         return mapping, res
@@ -220,12 +254,12 @@ def camera_centre_from_raised(mapping: TableMapping, raised: list[MarkerFit]) ->
     return least_squares(residual, c0, method="lm").x
 
 
-def _verdict(rms_mm: float, max_mm: float, n_used: int) -> str:
+def _verdict(rms_mm: float, max_mm: float, n_used: int) -> Verdict:
     if rms_mm <= 0.25 and max_mm <= 1.0 and n_used >= 4:
-        return "good"
+        return Verdict.GOOD
     if rms_mm <= 0.6 and max_mm <= 2.0:
-        return "fair"
-    return "poor"
+        return Verdict.FAIR
+    return Verdict.POOR
 
 
 def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, int], photo: str = "photo",
@@ -253,7 +287,7 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     fits = _table_markers(detections, cell)
     mode = cell.camera.lens
     notes = []
-    if lens is not None or mode == "none":
+    if lens is not None or mode == LensMode.NONE:
         kind, fixed = "fixed", lens
     else:
         kind, fixed = "division", None
@@ -303,18 +337,28 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     rms_mm, max_mm = float(np.sqrt((err_mm ** 2).mean())), float(err_mm.max())
     rms_px, max_px = float(np.sqrt((err_px ** 2).mean())), float(err_px.max())
 
-    raised = [f for f in fits if f.raised and f.reason.startswith("raised")]
+    raised = [f for f in fits if f.role is MarkerRole.RAISED]
     if cell.camera.centre_mm is not None:
-        centre, source = np.array(cell.camera.centre_mm, float), "measured"
+        centre, source = np.array(cell.camera.centre_mm, float), CentreSource.MEASURED
     elif raised:
-        centre, source = camera_centre_from_raised(mapping, raised), "raised_markers"
+        # one parameter (the pinhole's focal length) for all raised corners; the free centre where that fails
+        corners_px = np.concatenate([f.corners_px for f in raised])
+        corners_mm = np.concatenate([f.corners_mm for f in raised])
+        centre = centre_from_raised(mapping, image_size, corners_px, corners_mm,
+                                    cell.camera.height_mm or _DEFAULT_HEIGHT_MM)
+        if not (np.all(np.isfinite(centre)) and centre[2] > 2 * float(corners_mm[:, 2].max())):
+            centre = camera_centre_from_raised(mapping, raised)
+        source = CentreSource.RAISED_MARKERS
     else:
-        w, h = image_size
-        nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
         height = cell.camera.height_mm or _DEFAULT_HEIGHT_MM
-        centre, source = np.array([nadir[0], nadir[1], height]), "assumed"
-        notes.append(f"camera centre assumed: nadir under the image centre, height {height:g} mm "
-                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}")
+        centre, source = centre_for_height(mapping, image_size, height), CentreSource.ASSUMED
+        if not np.all(np.isfinite(centre)):
+            w, h = image_size
+            nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
+            centre = np.array([nadir[0], nadir[1], height])
+        notes.append(f"camera centre assumed: {height:g} mm up "
+                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}"
+                     f", over the nadir the table's perspective shows ({centre[0]:.0f}, {centre[1]:.0f}) mm")
     return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
                        rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes)
 

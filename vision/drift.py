@@ -14,16 +14,34 @@ from __future__ import annotations
 
 from collections import Counter
 from dataclasses import dataclass, field
+from enum import StrEnum
 
 import numpy as np
 
-from gripsight.vision.calibration import Calibration, CalibrationError, calibrate
+from gripsight.vision.calibration import Calibration, CalibrationError, CentreSource, Verdict, calibrate
+from gripsight.vision.settings import LensMode, OnMove
 from gripsight.vision.markers import MarkerDetection
 from gripsight.vision.polygon import points_in_polygon
 
 _STILL_PX = 0.3            # markers closer than this to their calibrated corners have not moved
 
-__all__ = ["DriftReport", "MarkerShift", "check_drift", "register", "Registration", "work_area_grid_mm"]
+__all__ = ["DriftReport", "DriftVerdict", "MarkerShift", "check_drift", "register", "Registration", "RegistrationAction",
+           "work_area_grid_mm"]
+
+
+class DriftVerdict(StrEnum):
+    """Has the camera moved against its calibration (beyond ``camera.drift_tolerance_mm``)?"""
+
+    OK = "ok"
+    MOVED = "moved"
+
+
+class RegistrationAction(StrEnum):
+    """What ``camera.on_move`` made of one photo."""
+
+    CALIBRATED = "calibrated"      # the stored calibration holds
+    REFIT = "refit"                # the camera moved; mapped from this photo's own markers
+    REFUSED = "refused"            # no usable mapping: nothing is planned for this photo
 
 
 @dataclass(frozen=True)
@@ -35,7 +53,7 @@ class MarkerShift:
 
 @dataclass
 class DriftReport:
-    verdict: str                      # ok | moved
+    verdict: DriftVerdict
     tolerance_mm: float
     grid_max_mm: float | None
     grid_mean_mm: float | None
@@ -95,7 +113,7 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
     if not missing and shifts and max(sh.shift_px for sh in shifts) < _STILL_PX:
         # every calibrated marker is where it was: the mapping has not moved (no refit needed)
         bound = max(sh.shift_mm for sh in shifts)
-        return DriftReport("ok", tol, bound, float(np.mean([sh.shift_mm for sh in shifts])), shifts, missing, None,
+        return DriftReport(DriftVerdict.OK, tol, bound, float(np.mean([sh.shift_mm for sh in shifts])), shifts, missing, None,
                            ["no marker moved (all within 0.3 px): mapping unchanged"])
     try:
         refit = calibrate(detections, cell, image_size, photo, lens=_fixed_lens(old.lens))
@@ -103,7 +121,7 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
         refit = None
         notes.append(f"no refit from this photo: {exc}")
     stored_rms = float(stored.data.residual.get("rms_mm", 0.1)) if hasattr(stored, "data") else 0.1
-    if refit is not None and cell.camera.lens == "estimate" and refit.rms_mm > max(0.15, 2 * stored_rms):
+    if refit is not None and cell.camera.lens == LensMode.ESTIMATE and refit.rms_mm > max(0.15, 2 * stored_rms):
         # the calibrated lens does not fit this photo's markers: another lens, or a zoom; estimate it again
         again = calibrate(detections, cell, image_size, photo)
         if again.rms_mm < refit.rms_mm:
@@ -120,7 +138,7 @@ def check_drift(stored, detections: list[MarkerDetection], cell, image_size, pho
         moved = any(s.shift_mm > tol for s in shifts) or not shifts
     if missing:
         notes.append(f"markers not seen: {', '.join(map(str, missing))}")
-    return DriftReport("moved" if moved else "ok", tol, grid_max, grid_mean, shifts, missing, refit, notes)
+    return DriftReport(DriftVerdict.MOVED if moved else DriftVerdict.OK, tol, grid_max, grid_mean, shifts, missing, refit, notes)
 
 
 def _fixed_lens(lens):
@@ -133,7 +151,7 @@ def _fixed_lens(lens):
 class Registration:
     """How one photo is mapped to the table: the mapping and camera centre to use, and why."""
 
-    action: str                       # calibrated | refit | refused
+    action: RegistrationAction
     mapping: object | None
     camera_centre_mm: np.ndarray | None
     drift: DriftReport | None
@@ -143,28 +161,28 @@ class Registration:
 def register(stored, detections, cell, image_size, photo: str = "photo") -> Registration:
     """Apply ``camera.on_move`` to one photo: use the calibration, refit from the photo, or refuse it."""
     if not detections:
-        return Registration("refused", None, None, None,
+        return Registration(RegistrationAction.REFUSED, None, None, None,
                             f"{photo}: no {cell.markers.dictionary} markers seen, so the camera cannot be checked; "
                             "check the light and that the markers are in view")
     try:
         report = check_drift(stored, detections, cell, image_size, photo)
     except CalibrationError as exc:
-        return Registration("refused", None, None, None, str(exc))
-    if report.verdict == "ok":
-        return Registration("calibrated", stored.mapping, stored.camera_centre_mm, report)
+        return Registration(RegistrationAction.REFUSED, None, None, None, str(exc))
+    if report.verdict is DriftVerdict.OK:
+        return Registration(RegistrationAction.CALIBRATED, stored.mapping, stored.camera_centre_mm, report)
     moved = (f"camera moved: the calibration is off by up to {report.grid_max_mm:.2f} mm over the work area"
              if report.grid_max_mm is not None else "camera moved (markers shifted)")
-    if cell.camera.on_move == "stop":
-        return Registration("refused", None, None, report, f"{moved}; camera.on_move is 'stop': nothing planned for "
+    if cell.camera.on_move == OnMove.STOP:
+        return Registration(RegistrationAction.REFUSED, None, None, report, f"{moved}; camera.on_move is 'stop': nothing planned for "
                                                            f"{photo}; recalibrate with: gripsight calibrate {photo}")
     if report.refit is None:
-        return Registration("refused", None, None, report, f"{moved}, and this photo cannot be refitted: "
+        return Registration(RegistrationAction.REFUSED, None, None, report, f"{moved}, and this photo cannot be refitted: "
                                                            f"{report.notes[0] if report.notes else ''}")
-    if report.refit.verdict == "poor":
-        return Registration("refused", None, None, report,
+    if report.refit.verdict is Verdict.POOR:
+        return Registration(RegistrationAction.REFUSED, None, None, report,
                             f"{moved}, and this photo's markers do not fit the cell file's layout (refit RMS "
                             f"{report.refit.rms_mm:.1f} mm): wrong cell file, or a photo of another cell? Nothing "
                             "planned; check the cell file, or recalibrate if markers were moved on purpose")
-    centre = report.refit.camera_centre_mm if report.refit.centre_source != "assumed" else stored.camera_centre_mm
-    return Registration("refit", report.refit.mapping, centre, report,
+    centre = report.refit.camera_centre_mm if report.refit.centre_source is not CentreSource.ASSUMED else stored.camera_centre_mm
+    return Registration(RegistrationAction.REFIT, report.refit.mapping, centre, report,
                         f"{moved}; refitted from this photo's markers (RMS {report.refit.rms_mm:.3f} mm)")

@@ -24,6 +24,7 @@ import numpy as np
 __all__ = ["NoLens", "DivisionLens", "OpenCVLens", "lens_from_dict", "load_opencv_lens"]
 
 
+
 def _pts(uv) -> np.ndarray:
     a = np.asarray(uv, dtype=float)
     if a.ndim != 2 or a.shape[1] != 2:

@@ -5,6 +5,8 @@ from __future__ import annotations
 import cv2
 import numpy as np
 
+from gripsight.vision.calibration import MarkerRole
+
 __all__ = ["calibration_overlay", "detection_overlay", "drift_overlay", "draw_panel", "draw_path_3d", "draw_polyline_mm",
            "table_point_px", "top_centre_px"]
 
@@ -52,7 +54,7 @@ def calibration_overlay(image_bgr, cal, cell) -> np.ndarray:
     gain = float(np.clip(30.0 / max(longest, 1e-6), 1.0, 500.0))
     draw_polyline_mm(out, cal.mapping, cell.work_area, (255, 200, 0), thickness=2)
     for m in cal.markers:
-        colour = _USED if m.used else (_MOVED if m.reason.startswith("moved") else _SET_ASIDE)
+        colour = _USED if m.used else (_MOVED if m.role is MarkerRole.MOVED else _SET_ASIDE)
         pts = np.round(m.corners_px * 16).astype(np.int32)
         cv2.polylines(out, [pts], True, colour, 2, cv2.LINE_AA, shift=4)
         c = m.corners_px.mean(axis=0)
@@ -72,7 +74,7 @@ def calibration_overlay(image_bgr, cal, cell) -> np.ndarray:
         f"calibration: {cal.verdict}   RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm",
         f"markers used {len(cal.used)} of {len(cal.markers)}   lens: {lens_text}",
         f"camera centre ({cal.camera_centre_mm[0]:.0f}, {cal.camera_centre_mm[1]:.0f}, {cal.camera_centre_mm[2]:.0f}) mm"
-        f" from {cal.centre_source.replace('_', ' ')}",
+        f" from {cal.centre_source.value.replace('_', ' ')}",
         f"magenta arrows: residual x{gain:.0f}; green used, orange set aside, red moved",
     ], corner="centre")
     return out
@@ -119,7 +121,7 @@ def detection_overlay(image_bgr, detection, mapping, camera_centre_mm, cell) -> 
     counts: dict[str, int] = {}
     for p in detection.parts:
         counts[p.status] = counts.get(p.status, 0) + 1
-        ok = p.status == "ok"
+        ok = p.status == "ok"  # PartStatus.OK (a StrEnum; overlay takes any detection with a status)
         colour = _class_bgr(cell, p.class_name) if ok else _MOVED
         if p.outline_px is not None:
             cv2.polylines(out, [np.round(p.outline_px * 16).astype(np.int32)], True, (255, 255, 255), 3, cv2.LINE_AA, shift=4)

@@ -25,6 +25,7 @@ Per photo (see DESIGN.md sec. 6):
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
+from enum import StrEnum
 
 import cv2
 import numpy as np
@@ -40,13 +41,33 @@ from gripsight.vision.topface import (
     footprint_centre,
     min_rect,
     outlines_geometry,
+    score_top_faces,
     top_face_guess,
 )
+from gripsight.vision.shapes import ColourGroup, colour_groups
 from gripsight.vision.whitebalance import Illumination, fit_illumination
 
-__all__ = ["DetectedPart", "Detection", "detect_parts", "STATUSES"]
+__all__ = ["DetectedPart", "Detection", "PartStatus", "detect_parts", "STATUSES"]
 
-STATUSES = ("ok", "cut_by_edge", "too_small", "too_large", "touching", "unknown_colour")
+
+class PartStatus(StrEnum):
+    """What the photo analysis made of a blob."""
+
+    OK = "ok"                              # a part of a known class
+    CUT_BY_EDGE = "cut_by_edge"            # cut by the photo's edge, a marker or the searched area
+    TOO_SMALL = "too_small"
+    TOO_LARGE = "too_large"
+    TOUCHING = "touching"                  # touching parts that could not be split
+    UNKNOWN_COLOUR = "unknown_colour"      # a part of no class's colour: goes to the reject bin
+    UNKNOWN_SHAPE = "unknown_shape"        # a class's colour but no class's shape and size: the reject bin
+
+    @property
+    def pickable(self) -> bool:
+        """Goes to a bin (its class's, or the reject bin); the others stay on the table."""
+        return self in (PartStatus.OK, PartStatus.UNKNOWN_COLOUR, PartStatus.UNKNOWN_SHAPE)
+
+
+STATUSES = tuple(s.value for s in PartStatus)
 _UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
 _MIN_RATIO, _MAX_RATIO = 0.45, 1.6
 _NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
@@ -59,7 +80,7 @@ class DetectedPart:
 
     id: str
     class_name: str
-    status: str
+    status: PartStatus
     reason: str
     pixel_uv: tuple[float, float]
     xy_mm: tuple[float, float]
@@ -73,7 +94,7 @@ class DetectedPart:
     outline_px: np.ndarray = field(repr=False, compare=False, default=None)
 
     def as_dict(self) -> dict:
-        return {"id": self.id, "class": self.class_name, "status": self.status, "reason": self.reason,
+        return {"id": self.id, "class": self.class_name, "status": self.status.value, "reason": self.reason,
                 "pixel": [round(self.pixel_uv[0], 2), round(self.pixel_uv[1], 2)],
                 "table_mm": [round(self.xy_mm[0], 3), round(self.xy_mm[1], 3)], "height_mm": self.height_mm,
                 "area_mm2": round(self.area_mm2, 1), "yaw_deg": round(self.yaw_deg, 2),
@@ -122,10 +143,10 @@ _REGION_CACHE: dict = {}
 
 def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     """The searched region, cached: in a run every photo of one calibration shares it."""
-    key = (shape, id(mapping), id(cell), tuple(sorted(d.id for d in detections)))
+    key = _region_key(shape, mapping, cell, detections)
     cached = _REGION_CACHE.get(key)
-    if cached is not None and cached[0] is mapping and cached[1] is cell:
-        return cached[2]
+    if cached is not None:
+        return cached
     mask = _build_valid_mask(shape, mapping, cell, detections)
     u0, v0, w, h = cv2.boundingRect(mask)
     valid = mask[v0:v0 + h, u0:u0 + w] > 0
@@ -135,8 +156,19 @@ def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
     if len(_REGION_CACHE) > 8:
         _REGION_CACHE.clear()
-    _REGION_CACHE[key] = (mapping, cell, region)
+    _REGION_CACHE[key] = region
     return region
+
+
+def _region_key(shape, mapping, cell, detections) -> tuple:
+    """Everything the searched region depends on, by value: the photo size, the mapping, the cell's work
+    area, markers and part sizes, and where the markers were seen (to the pixel)."""
+    corners_px = np.round(np.array([d.corners_px for d in detections], float).reshape(-1, 2)).astype(np.int32)
+    sizes = tuple((name, tuple(c.footprint_mm)) for name, c in cell.parts.items())
+    layout = tuple((i, m.x, m.y, m.z, m.yaw_deg) for i, m in cell.markers.layout.items())
+    return (tuple(shape), mapping.H_table_from_pixel.tobytes(), repr(mapping.lens.as_dict()),
+            tuple(map(tuple, cell.work_area)), cell.markers.size_mm, cell.markers.margin_mm, layout, sizes,
+            tuple(d.id for d in detections), corners_px.tobytes())
 
 
 def _smallest_part_px(mapping, cell) -> float:
@@ -159,12 +191,14 @@ def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
     grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(centre_px[None])[0])
     outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
     mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
+    # markers on the table are left in: their paper and ink are not a part's colour, and a part beside or
+    # on one is whole (whether it lies on a marker is decided from its footprint, in table mm). A raised
+    # marker's box hides what is behind it: the marker as seen is masked, and any marker not in the layout.
     pad = 2.0
-    for marker_id, m in cell.markers.layout.items():
-        paper = marker_paper_corners_mm(m, cell.markers.size_mm, cell.markers.margin_mm + pad)[:, :2]
-        if m.z == 0:
-            cv2.fillPoly(mask, [np.round(_poly_px(mapping, paper, 4) * 8).astype(np.int32)], 0, shift=3)
-    for d in detections:          # raised markers (and any marker) as seen
+    for d in detections:
+        placement = cell.markers.layout.get(d.id)
+        if placement is not None and placement.z == 0:
+            continue
         c = d.corners_px.mean(axis=0)
         grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + pad) / cell.markers.size_mm)
         cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
@@ -198,9 +232,10 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     if min(region.valid_small.shape) == 0 or not cell.parts:
         notes.append("the work area is not in the photo" if cell.parts else "the cell has no part classes")
         return Detection([], illumination, notes)
-    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, cell.parts,
+    groups = colour_groups(cell.parts)
+    classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, parallax, seen_as, camera_centre_mm)
+    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -212,12 +247,53 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
         found += _parts_of_blob(b, top_fit, nadir, parallax)
     if found:                                   # a footprint centre outside the work area: not pickable
         outside = ~points_in_polygon([p.xy_mm for p in found], cell.work_area)
-        found = [replace(p, status="cut_by_edge", reason="lies across the edge of the work area")
-                 if out and p.status == "ok" else p for p, out in zip(found, outside)]
+        found = [replace(p, status=PartStatus.CUT_BY_EDGE, reason="lies across the edge of the work area")
+                 if out and p.status is PartStatus.OK else p for p, out in zip(found, outside)]
+        found = _on_markers(found, cell)
     found.sort(key=lambda p: (round(p.xy_mm[0], 1), round(p.xy_mm[1], 1)))
     parts = [DetectedPart(f"p{i + 1}", *[getattr(p, f) for f in DetectedPart.__dataclass_fields__ if f != "id"])
              for i, p in enumerate(found)]
     return Detection(parts, illumination, notes)
+
+
+def _footprint_points_mm(part: DetectedPart, cls) -> np.ndarray:
+    """Points (N, 2) on and inside a found part's footprint (its class's size and shape, its yaw)."""
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    s = np.linspace(-0.5, 0.5, 7)
+    gx, gy = np.meshgrid(s * fp[0], s * fp[1])
+    local = np.column_stack([gx.ravel(), gy.ravel()])
+    if cls.shape == "cylinder":
+        local = local[(local[:, 0] / fp[0]) ** 2 + (local[:, 1] / fp[1]) ** 2 <= 0.25 + 1e-9]
+    yaw = np.radians(part.yaw_deg)
+    rot = np.array([[np.cos(yaw), -np.sin(yaw)], [np.sin(yaw), np.cos(yaw)]])
+    return local @ rot.T + np.asarray(part.xy_mm, float)
+
+
+def _on_markers(found: list[DetectedPart], cell) -> list[DetectedPart]:
+    """A part whose footprint (in table mm) overlaps a marker lies on it: cut. The marker is its black
+    square and the inner half of its white margin (the quiet zone its detection needs); a part on the
+    outer edge of the paper (0.02 mm thick) is whole and is picked."""
+    if not cell.markers.layout:
+        return found
+    ids = list(cell.markers.layout)
+    papers = np.array([marker_paper_corners_mm(cell.markers.layout[i], cell.markers.size_mm,
+                                               0.5 * cell.markers.margin_mm)[:, :2] for i in ids])
+    paper_centres = papers.mean(axis=1)
+    paper_reach = np.linalg.norm(papers[:, 0] - paper_centres, axis=1)          # half diagonals
+    xy = np.array([p.xy_mm for p in found], float)
+    reach_of = {n: 0.5 * float(np.hypot(c.footprint_mm[0], c.footprint_mm[-1])) for n, c in cell.parts.items()}
+    part_reach = np.array([reach_of.get(p.class_name, 0.0) for p in found])
+    near = np.linalg.norm(xy[:, None, :] - paper_centres[None], axis=2) < part_reach[:, None] + paper_reach[None]
+    out = []
+    for p, close in zip(found, near):
+        cls = cell.parts.get(p.class_name)
+        if p.status is PartStatus.OK and cls is not None and close.any():
+            pts = _footprint_points_mm(p, cls)
+            hit = next((ids[j] for j in np.flatnonzero(close) if points_in_polygon(pts, papers[j]).any()), None)
+            if hit is not None:
+                p = replace(p, status=PartStatus.CUT_BY_EDGE, reason=f"lies on marker {hit}")
+        out.append(p)
+    return out
 
 
 @dataclass
@@ -230,7 +306,7 @@ class _Blob:
     height_mm: float
     k: float
     mode: str
-    status: str
+    status: PartStatus
     reason: str
     pieces: list
     outline_mm: np.ndarray
@@ -239,21 +315,28 @@ class _Blob:
     delta_e: float
     rect: tuple[float, float, float]            # the outline's length, width (footprint mm) and yaw
     problem: TopFaceProblem | None = None
+    piece_classes: list | None = None           # per piece of a split blob of several classes' colour:
+    #                                             (name, class, k, top-face fit or None)
 
 
 class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, parallax, seen_as, camera_centre_mm):
+    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
-        self.names = list(cell.parts)
+        self.groups: dict[str, ColourGroup] = groups
+        self.names = list(groups)
         self.nadir = np.asarray(camera_centre_mm[:2], float)
         self.cz = float(camera_centre_mm[2])
         self.kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
         self.tallest = max(c.height_mm for c in cell.parts.values())
         self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
+
+    def k_of(self, height_mm: float) -> float:
+        """The top face's scale about the nadir for a part of this height (1 without parallax)."""
+        return self.cz / (self.cz - height_mm) if self.parallax else 1.0
 
 
 @dataclass
@@ -269,6 +352,9 @@ class _Outline:
     sub: np.ndarray
     x: int
     y: int
+    group: ColourGroup | None = None          # its colour group, when that holds several classes
+    members: tuple[str, ...] = ()             # once a class is chosen: the classes of its colour
+    split_into: int = 0                       # parts side by side its outline's length says it holds
 
 
 def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
@@ -287,10 +373,13 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
         mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, search.kernel)
         contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
         unknown = k_label == len(names) + 1
-        name = "unknown" if unknown else names[k_label - 1]
-        cls = None if unknown else search.cell.parts[name]
-        height = search.tallest if unknown else cls.height_mm
-        k = cz / (cz - height) if search.parallax else 1.0
+        colour = None if unknown else search.groups[names[k_label - 1]]
+        several = colour is not None and len(colour.members) > 1
+        name = "unknown" if unknown else (colour.name if several else colour.members[0])
+        cls = None if unknown or several else search.cell.parts[name]
+        height = cls.height_mm if cls is not None else (
+            max(search.cell.parts[n].height_mm for n in colour.members) if several else search.tallest)
+        k = search.k_of(height)
         for contour in contours:
             if len(contour) < 10:                             # a speck of a few pixels
                 continue
@@ -301,7 +390,7 @@ def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
             sub = np.zeros((h, w), np.uint8)
             cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
             out.append(_Outline(name, cls, float(height), k, (outline + (x0 + u0, y0 + v0)).astype(float), sub,
-                                x + x0, y + y0))
+                                x + x0, y + y0, colour if several else None))
     return out
 
 
@@ -315,10 +404,14 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
     outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
+    outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
     for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
+        shape_misfit = unknown and o.group is not None
+        if shape_misfit:
+            name = "unknown"                    # no class: the reject bin
         area = float(area_mapped) / (k * k)
         if unknown and area < _MIN_UNKNOWN_MM2:
             continue
@@ -329,33 +422,150 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
         moments = cv2.moments(sub, binaryImage=True)
         pixel_uv = (moments["m10"] / moments["m00"] + x + u0, moments["m01"] / moments["m00"] + y + v0)
         whole = [(m, outline_mm, o.outline_px, area, pixel_uv)]
-        de = float("nan") if unknown else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
+        de = float("nan") if unknown and not shape_misfit else float(classified.delta_e[y:y + h, x:x + w][inside].mean())
         cut = bool(search.edge_band[y:y + h, x:x + w][inside].any())
         mode = search.seen_as or (cls.seen_as if cls is not None else "auto")
-        pieces, status, reason = whole, "ok", ""
+        pieces, status, reason = whole, PartStatus.OK, ""
         if unknown:
+            what = f"a part of {o.group.name.replace('+', ' or ')}'s colour" if shape_misfit else "an unknown colour"
             if cut:
-                status, reason = "cut_by_edge", "an unknown colour cut by the edge of the photo or a marker"
+                status, reason = PartStatus.CUT_BY_EDGE, f"{what} cut by the edge of the photo or a marker"
             elif area > _UNKNOWN_MAX_RATIO * search.typical:
-                status, reason = "too_large", f"a coloured region of {area:.0f} mm², not a part"
+                status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
+            elif shape_misfit:
+                status, reason = PartStatus.UNKNOWN_SHAPE, (f"colour of {', '.join(o.group.members)} but the shape or "
+                                                            f"size of none ({_shape_words(o, outline_mm, k)})")
             else:
-                status, reason = "unknown_colour", "colour matches no class"
+                status, reason = PartStatus.UNKNOWN_COLOUR, "colour matches no class"
         elif cut:
-            status, reason = "cut_by_edge", "cut by the edge of the photo, a marker or the searched area"
+            status, reason = PartStatus.CUT_BY_EDGE, "cut by the edge of the photo, a marker or the searched area"
         else:
             expected = expected_area_mm2(cls)
             ratio = area / expected
             if ratio < _MIN_RATIO:
-                status, reason = "too_small", f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
-            elif ratio > _MAX_RATIO:
-                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected, ratio, name, whole)
+                status, reason = PartStatus.TOO_SMALL, f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
+            elif ratio > _MAX_RATIO or o.split_into >= 2:
+                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected,
+                                                max(ratio, o.split_into), name, whole)
         blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
                      min_rect(outline_mm, k))
+        if len(pieces) > 1 and o.members and parallax:
+            blob.piece_classes = _classify_pieces(search, blob, o.members)
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
             blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
+
+
+def _choose_classes(search: _Search, outlines, outlines_mm, areas, centroids, normals) -> list[_Outline]:
+    """Give each blob of a colour group of several classes the class whose shape and size fit it
+    (:mod:`vision.shapes`), all blobs' candidate fits at once. A blob of a part's size that no class
+    fits stays ``unknown`` (with its group: ``unknown_shape``); one too large or too small for every
+    class takes the class whose area it is nearest a whole number of (touching parts, or a speck)."""
+    problems, owners, fallback = [], [], {}
+    for i, o in enumerate(outlines):
+        if o.group is None:
+            continue
+        ratios = []
+        for name in o.group.members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            expected = expected_area_mm2(cls)
+            ratio = float(areas[i]) / (k * k) / expected
+            ratios.append(ratio)
+            if _MIN_RATIO < ratio < _MAX_RATIO:
+                guess = top_face_guess(centroids[i], areas[i], search.nadir, k, expected)
+                problems.append(TopFaceProblem.of_class(outlines_mm[i], normals[i], guess, search.nadir, k, cls,
+                                                        min_rect(outlines_mm[i], k)[2]))
+                owners.append((i, name))
+        if not any(_MIN_RATIO < r < _MAX_RATIO for r in ratios):
+            off = [abs(r - max(round(r), 1)) / max(round(r), 1) for r in ratios]
+            fallback[i] = o.group.members[int(np.argmin(off))]
+    best: dict[int, tuple[str, float]] = {}
+    for (i, name), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (i not in best or score.median_mm < best[i][1]):
+            best[i] = (name, score.median_mm)
+    out = []
+    for i, o in enumerate(outlines):
+        name = best[i][0] if i in best else fallback.get(i)
+        split_into = 0
+        if o.group is not None and name is None:
+            # no top face fits (shading, a shadow): its size alone, if that says one class and no other
+            name = _by_size(search, o.group.members, outlines_mm[i])
+        if o.group is not None and name is None:
+            # no class fits it as one part: is it parts side by side (an outline a whole number of parts long)?
+            name, split_into = _row_of_parts(search, o.group.members, outlines_mm[i])
+        if o.group is None or name is None:
+            out.append(o)
+            continue
+        cls = search.cell.parts[name]
+        out.append(replace(o, name=name, cls=cls, height_mm=float(cls.height_mm), k=search.k_of(cls.height_mm),
+                           group=None, members=o.group.members, split_into=split_into))
+    return out
+
+
+_SIZE_FIT = 0.15          # a footprint side within 15 % of a class's: that size
+
+
+def _by_size(search: _Search, members, outline_mm) -> str | None:
+    """The one class of the colour whose footprint sides the outline's (length and width, as a top face)
+    are within 15 % of, when every other class's are farther than that; None otherwise."""
+    fits = []
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = sorted(list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1), reverse=True)
+        fits.append(abs(length / fp[0] - 1.0) <= _SIZE_FIT and abs(width / fp[1] - 1.0) <= _SIZE_FIT)
+    return members[fits.index(True)] if sum(fits) == 1 else None
+
+
+def _row_of_parts(search: _Search, members, outline_mm) -> tuple[str | None, int]:
+    """(class, n) when a blob's outline is about n >= 2 parts of a class long and one wide (touching parts
+    whose colour was partly lost to shading, so their area alone does not say so), else (None, 0)."""
+    best = (None, 0, np.inf)
+    for name in members:
+        cls = search.cell.parts[name]
+        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
+        fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+        n = int(round(length / max(fp)))
+        off = abs(length / max(fp) - n) + abs(width / min(fp) - 1.0)
+        if n >= 2 and abs(length / max(fp) - n) < 0.3 and abs(width / min(fp) - 1.0) < 0.3 and off < best[2]:
+            best = (name, n, off)
+    return best[0], best[1]
+
+
+def _classify_pieces(search: _Search, b: _Blob, members) -> list:
+    """The class of each piece of a blob split from touching parts of one colour's several classes: the
+    blob's outline points nearest each piece's centre are that piece's own edge (the cut between pieces
+    has none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
+    A piece no class fits keeps the blob's class and its area-based centre."""
+    centres = np.array([p[0] for p in b.pieces])
+    owner = np.linalg.norm(b.outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
+    problems, owners = [], []
+    for j, piece in enumerate(b.pieces):
+        sel = owner == j
+        if sel.sum() < 12:
+            continue
+        for name in members:
+            cls = search.cell.parts[name]
+            k = search.k_of(cls.height_mm)
+            guess = top_face_guess(piece[0], piece[3] * b.k * b.k, search.nadir, k, expected_area_mm2(cls))
+            problems.append(TopFaceProblem.of_class(b.outline_mm[sel], b.normals[sel], guess, search.nadir, k, cls,
+                                                    min_rect(piece[1], k)[2]))
+            owners.append((j, name, k))
+    best: dict[int, tuple] = {}
+    for (j, name, k), score in zip(owners, score_top_faces(problems)):
+        if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
+            best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
+    return [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else (b.name, b.cls, b.k, None)
+            for j in range(len(b.pieces))]
+
+
+def _shape_words(o: _Outline, outline_mm, k: float) -> str:
+    """The measured footprint of a blob that fits no class, in words for its reason."""
+    length, width, _ = min_rect(outline_mm, k)
+    return f"its outline measures {length:.0f} x {width:.0f} mm"
 
 
 def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:
@@ -366,8 +576,22 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
         area_mapped = sum(p[3] for p in b.pieces) * b.k * b.k
         tops = fit_row_of_tops(b.outline_mm, b.normals, b.m, area_mapped, nadir, b.k, b.cls, b.pieces) or [None] * len(b.pieces)
     parts = []
-    for (piece_m, piece_mm, piece_px, piece_area, piece_uv), top in zip(b.pieces, tops * (len(b.pieces) // len(tops))):
+    for j, ((piece_m, piece_mm, piece_px, piece_area, piece_uv), top) in enumerate(
+            zip(b.pieces, tops * (len(b.pieces) // len(tops)))):
         length, width, yaw = b.rect if len(b.pieces) == 1 else min_rect(piece_mm, b.k)
+        if top_fit is not None and len(b.pieces) == 1 and b.cls is not None:
+            # the top face's own size (the fitted scale of the class's footprint), not the outline's, which
+            # holds the visible sides wherever they kept the class's colour
+            fp = sorted(list(b.cls.footprint_mm) * (2 if len(b.cls.footprint_mm) == 1 else 1), reverse=True)
+            length, width = fp[0] * top_fit[2] / b.k, fp[1] * top_fit[2] / b.k
+        if b.piece_classes is not None:
+            name, cls, k, fit = b.piece_classes[j]
+            if fit is not None:
+                centre = nadir + (fit[0] - nadir) / k
+                parts.append(DetectedPart("", name, b.status, b.reason, piece_uv, (float(centre[0]), float(centre[1])),
+                                          float(cls.height_mm), float(piece_area), yaw, length, width, "top_outline",
+                                          b.delta_e, piece_px))
+                continue
         if top is not None:
             centre, used = nadir + (top - nadir) / b.k, "top_outline"
             by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")
@@ -389,7 +613,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
     ``whole`` is the blob as one piece, returned when it cannot be split."""
     n = int(round(ratio))
     if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
-        return whole, "too_large", \
+        return whole, PartStatus.TOO_LARGE, \
             f"{ratio:.1f}x a {name} part's area and not a whole number of parts"
     py, px = np.nonzero(sub)
     uv = np.column_stack([px + ox, py + oy]).astype(float)
@@ -407,10 +631,10 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
         sel = labels == j
         area = sel.sum() * per_px / (k * k)
         if not _MIN_RATIO < area / expected < 1.4:
-            return whole, "touching", \
+            return whole, PartStatus.TOUCHING, \
                 f"{n} touching {name} parts that could not be split into parts of the right size"
         pts_mm = xy[sel].astype(float)
         hull = cv2.convexHull(pts_mm.astype(np.float32)).reshape(-1, 2).astype(float)
         pieces.append((pts_mm.mean(axis=0), hull, mapping.inverse(hull), float(area),
                        (float(uv[sel, 0].mean()), float(uv[sel, 1].mean()))))
-    return pieces, "ok", f"split from {n} touching parts"
+    return pieces, PartStatus.OK, f"split from {n} touching parts"

@@ -4,6 +4,14 @@ Each pixel takes the class whose reference colour is nearest in CIEDE2000, if wi
 tolerance. Saturated pixels (chroma > 30) near no class and unlike the table are an unknown colour.
 Every colour is white-balanced first (:mod:`vision.whitebalance`).
 
+The distance weighs lightness half (CIEDE2000's parametric factor kL = 2, the value the CIE gives for
+textiles, as CMC l:c = 2:1 does; from memory, common practice for surfaces whose lightness varies with
+the light): the white balance takes the light's colour and level out at the marker paper, but a
+part's faces are lit otherwise (a spot light's falloff, the angle of each face, shadows), which moves
+their lightness and hardly their hue and chroma. Measured on photos of another renderer under dim warm
+light: a class's own pixels lay up to 11.4 from its colour with kL = 1 and 6.9 with kL = 2, while a
+purple part stayed 17 from blue and an orange one 18-21 from red either way (DEVELOPERS.md, issue 15).
+
 Parts cover a few per cent of the work area, so the search runs at two resolutions:
 
 1. At a coarse resolution, one pixel a block of 8, 4 or 2 px (the largest across which the smallest
@@ -30,13 +38,15 @@ import numpy as np
 from gripsight.vision.colour import delta_e_2000
 from gripsight.vision.whitebalance import balanced_lab, white_gain
 
-__all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "coarse_mask", "label_dtype"]
+__all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "class_distance", "coarse_mask",
+           "LIGHTNESS_WEIGHT_KL", "label_dtype"]
 
 _UNKNOWN_CHROMA = 30.0
 _UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
 _FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at least this much
 _BLOCKS = (8, 4, 2)           # coarse block sizes (px) to choose from, largest first
 _NEAR = 2.5                   # CIE76 candidates: within this many times a class's tolerance
+LIGHTNESS_WEIGHT_KL = 2.0     # CIEDE2000's kL for class colours (see the module docstring)
 
 
 def _planes(lab: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -53,6 +63,11 @@ def _distance2(planes, ref) -> np.ndarray:
         t *= t
         d += t
     return d
+
+
+def class_distance(lab, ref_lab):
+    """The colour distance of pixels to a class colour: CIEDE2000 with lightness weighed half (kL = 2)."""
+    return delta_e_2000(lab, ref_lab, kL=LIGHTNESS_WEIGHT_KL)
 
 
 def _table_masks(planes, background) -> tuple[np.ndarray, np.ndarray]:
@@ -85,7 +100,7 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     pairs = [part[_distance2(part_planes, ref) < (_NEAR * tol) ** 2] for ref, tol in zip(refs, tolerances)]
     pixel = np.concatenate(pairs)
     which = np.repeat(np.arange(len(refs)), [len(p) for p in pairs])
-    d00 = delta_e_2000(lab[pixel], refs[which]).astype(np.float32)
+    d00 = class_distance(lab[pixel], refs[which]).astype(np.float32)
     ok = d00 < tolerances[which]
     pixel, which, d00 = pixel[ok], which[ok], d00[ok]
     best = np.full(len(lab), np.inf, np.float32)

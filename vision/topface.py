@@ -20,7 +20,7 @@ import numpy as np
 from gripsight.vision.robust import masked_median, robust_lm, soft_l1
 
 __all__ = ["outlines_geometry", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "TopFaceProblem", "top_face_guess", "fit_top_faces", "fit_row_of_tops", "min_rect"]
+           "TopFaceProblem", "TopFaceScore", "top_face_guess", "fit_top_faces", "score_top_faces", "fit_row_of_tops", "min_rect"]
 
 
 def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
@@ -54,7 +54,7 @@ def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
 
 
 def expected_area_mm2(cls) -> float:
-    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    fp = list(cls.length_width_mm)
     return float(np.pi / 4 * fp[0] * fp[1]) if cls.shape == "cylinder" else float(fp[0] * fp[1])
 
 
@@ -103,7 +103,7 @@ class TopFaceProblem:
     @classmethod
     def of_class(cls, outline_mm, normals, centre, nadir, k, part_class, yaw_guess_deg=0.0):
         """The problem for a part class; ``centre`` is the first guess of the top face's centre."""
-        fp = list(part_class.footprint_mm) * (2 if len(part_class.footprint_mm) == 1 else 1)
+        fp = list(part_class.length_width_mm)
         return cls(outline_mm, normals, np.asarray(centre, float), np.asarray(nadir, float), float(k),
                    part_class.shape == "cylinder", (fp[0] / 2.0, fp[1] / 2.0), float(yaw_guess_deg))
 
@@ -164,7 +164,24 @@ def fit_top_faces(problems: list[TopFaceProblem]) -> list:
     Returns, per problem, None if the outline does not look like the shape (fewer than 12 points, a
     scale off k by more than 15 %, or a median residual over 0.4 mm), else (top face centre in
     table-mapped mm, unit vector of the footprint's first axis, fitted scale)."""
-    results: list = [None] * len(problems)
+    return [s.fit for s in score_top_faces(problems)]
+
+
+@dataclass(frozen=True)
+class TopFaceScore:
+    """How well one problem's shape fits its blob: the fit (as :func:`fit_top_faces` returns it, None
+    when it does not hold), the median absolute residual (mm) and the fitted scale over k (nan when
+    there were too few outline points to fit)."""
+
+    fit: tuple | None
+    median_mm: float
+    scale_ratio: float
+
+
+def score_top_faces(problems: list[TopFaceProblem]) -> list[TopFaceScore]:
+    """:func:`fit_top_faces` with the figures its verdict rests on, per problem (all fitted together)."""
+    nan = float("nan")
+    results = [TopFaceScore(None, nan, nan)] * len(problems)
     rows, starts, sets = [], [], []
     for i, p in enumerate(problems):
         pts = _outer_points(p, p.centre)
@@ -185,9 +202,12 @@ def fit_top_faces(problems: list[TopFaceProblem]) -> list:
             best[i] = j
     for i, j in best.items():
         params = x[j]
-        if 0.85 < params[3] / problems[i].k < 1.15 and median[j] <= 0.4:
+        ratio = float(params[3] / problems[i].k)
+        fit = None
+        if 0.85 < ratio < 1.15 and median[j] <= 0.4:
             yaw = 0.0 if problems[i].round else params[2]
-            results[i] = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), float(params[3]))
+            fit = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), float(params[3]))
+        results[i] = TopFaceScore(fit, float(median[j]), ratio)
     return results
 
 
@@ -203,7 +223,7 @@ def fit_row_of_tops(outline_mm, normals, m, area_mapped, nadir, k, cls, pieces):
     top faces. Returns each piece's top-face centre (table-mapped mm), in the pieces' order, or None if
     the row does not fit."""
     n = len(pieces)
-    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    fp = list(cls.length_width_mm)
     _, _, yaw_guess = min_rect(outline_mm, k)
     nadir = np.asarray(nadir, float)
     guess = top_face_guess(m, area_mapped, nadir, k, n * expected_area_mm2(cls))

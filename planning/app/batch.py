@@ -7,14 +7,19 @@ A photo that cannot be read or fails becomes a row with its error; the batch goe
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
+import signal
+import sys
+import threading
+import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from gripsight.app.fileio import child_folder, output_dir, strict_json, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, write_text_atomic
 
-__all__ = ["BatchJob", "process_photo", "run_batch", "write_batch_tables"]
+__all__ = ["BatchJob", "BatchInterrupted", "process_photo", "run_batch", "write_batch_tables"]
 
 _CACHE: dict = {}
 
@@ -61,7 +66,7 @@ def process_photo(job: BatchJob) -> dict:
         out = child_folder(job.out_dir, name)
         _, overlay = write_photo_outputs(out, pp, cell, arm, stored)
         reg = pp.analysis.registration
-        row.update(registration=reg.action, drift="" if reg.drift is None else reg.drift.verdict,
+        row.update(registration=reg.action.value, drift="" if reg.drift is None else reg.drift.verdict.value,
                    warnings=list(pp.analysis.warnings or []))
         if pp.plan is None:
             row.update(status="refused", error=pp.message)
@@ -73,7 +78,7 @@ def process_photo(job: BatchJob) -> dict:
             row["planned"] = len(pp.plan.picks)
             for o in pp.plan.parts:
                 if o.rejection is not None:
-                    row["rejected"][o.rejection.check] = row["rejected"].get(o.rejection.check, 0) + 1
+                    row["rejected"][o.rejection.label] = row["rejected"].get(o.rejection.label, 0) + 1
             row["cycle_s"] = round(pp.plan.cycle_s, 3)
             row["truth"] = _truth_stats(job.photo, pp, cell)
         row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
@@ -82,6 +87,9 @@ def process_photo(job: BatchJob) -> dict:
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
         row["error"] = f"internal error ({type(exc).__name__}: {exc})"
     row["photo_sha256"] = _sha256(job.photo)
+    with contextlib.suppress(Exception):        # what the row was made with, for --resume
+        cell, _, _, stored = _context(job.cell_path, job.calibration_path)
+        row["cell_sha256"], row["calibration_sha256"] = cell.sha256, stored.sha256
     try:
         write_text_atomic(child_folder(job.out_dir, name) / "row.json", strict_json(row, indent=None))   # what --resume reads
     except (OSError, ValueError):
@@ -98,9 +106,10 @@ def _sha256(path) -> str:
         return ""
 
 
-def _finished_row(job: BatchJob, warn=None) -> dict | None:
-    """The row a previous (interrupted) batch wrote for this photo, if the photo is unchanged; a damaged
-    row.json is said through ``warn`` (a callable) and the photo is done again."""
+def _finished_row(job: BatchJob, cell_sha256: str | None, calibration_sha256: str | None, warn=None) -> dict | None:
+    """The row a previous (interrupted) batch wrote for this photo, if the photo, the cell file and the
+    calibration file are byte for byte the ones it was made with (their SHA-256); a damaged row.json is
+    said through ``warn`` (a callable) and the photo is done again."""
     path = child_folder(job.out_dir, Path(job.photo).name) / "row.json"
     if not path.is_file():
         return None
@@ -113,7 +122,11 @@ def _finished_row(job: BatchJob, warn=None) -> dict | None:
         if warn is not None:
             warn(f"{path}: damaged ({problem}); {Path(job.photo).name} is done again")
         return None
-    return row if row.get("photo_sha256") == _sha256(job.photo) else None
+    if not isinstance(row, dict):
+        return None
+    same = (row.get("photo_sha256") == _sha256(job.photo) and row.get("cell_sha256") == cell_sha256
+            and row.get("calibration_sha256") == calibration_sha256 and cell_sha256 is not None)
+    return row if same else None
 
 
 def _row_problem(row) -> str:
@@ -141,9 +154,9 @@ def _row_problem(row) -> str:
 def _truth_stats(photo: str, pp, cell) -> dict | None:
     import yaml
 
-    from gripsight.app.truthcheck import compare_with_truth
+    from gripsight.app.truthcheck import compare_with_truth, truth_path
 
-    truth_file = Path(photo).with_name(Path(photo).stem + ".truth.yaml")
+    truth_file = truth_path(Path(photo))
     if not truth_file.is_file():
         return None
     try:
@@ -174,13 +187,14 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     out = output_dir(out)
     photos = photos_in(folder)
     pool_context = _start_workers_early() if workers > 1 and not scheduler else None
-    _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early, make calibration
+    cell, _, _, stored = _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early
+    remove_leftover_temps(out)
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out))
             for p in photos]
     rows: dict[str, dict] = {}
     if resume:
         for job in list(jobs):
-            row = _finished_row(job, warn)
+            row = _finished_row(job, cell.sha256, stored.sha256, warn)
             if row is not None:
                 rows[row["photo"]] = row
                 jobs.remove(job)
@@ -197,16 +211,89 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             if progress:
                 progress(row)
     else:
-        from concurrent.futures import ProcessPoolExecutor, as_completed
-
-        with ProcessPoolExecutor(max_workers=workers, mp_context=pool_context) as pool:
-            futures = [pool.submit(process_photo, job) for job in jobs]
-            for fut in as_completed(futures):
-                row = fut.result()
+        pool = pool_context.Pool(workers, initializer=_worker_start, initargs=(os.getpid(),))
+        try:
+            for row in pool.imap_unordered(process_photo, jobs):
                 rows[row["photo"]] = row
                 if progress:
                     progress(row)
+        except KeyboardInterrupt:
+            # Ctrl-C: the workers (which ignore SIGINT) are stopped at once; a second Ctrl-C while they
+            # go must not leave them behind or print a trace
+            previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+            try:
+                pool.terminate()
+                pool.join()
+                _stop_fork_server()
+            finally:
+                signal.signal(signal.SIGINT, previous)
+            raise BatchInterrupted(len(rows), len(photos)) from None
+        else:
+            pool.close()
+            pool.join()
     return [rows[p.name] for p in photos]
+
+
+class BatchInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a batch: the workers are gone, every finished photo's row.json is kept."""
+
+    def __init__(self, done: int, total: int):
+        super().__init__(f"{done} of {total}")
+        self.done, self.total = done, total
+
+
+def _stop_fork_server() -> None:
+    """End the fork server now rather than when it notices the batch is gone (it would first unload
+    the workers' modules, a second or more): the batch is stopping and starts no more workers."""
+    from multiprocessing import forkserver
+
+    pid = getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None)
+    if pid:
+        with contextlib.suppress(OSError):
+            os.kill(pid, signal.SIGKILL)
+            os.waitpid(pid, 0)
+
+
+def _worker_start(parent_pid: int) -> None:
+    """In each worker: Ctrl-C is the parent's to handle (it stops the pool), and the worker ends when
+    the batch process ends, however it ends (kill -9 included): on Linux the kernel kills it when its
+    parent goes (prctl PR_SET_PDEATHSIG), and everywhere a watchdog thread ends it when the batch
+    process is gone."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    signal.signal(signal.SIGTERM, _exit_on_term)      # the pool's stop: unwind, so a write in progress is removed
+    if sys.platform.startswith("linux"):
+        with contextlib.suppress(OSError, AttributeError):
+            import ctypes
+
+            ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)     # 1 = PR_SET_PDEATHSIG
+    ppid = os.getppid()
+
+    def watch() -> None:
+        while True:
+            time.sleep(0.2)
+            if os.getppid() != ppid or not _alive(parent_pid):
+                os._exit(1)
+
+    threading.Thread(target=watch, name="gripsight-parent-watch", daemon=True).start()
+
+
+def _exit_on_term(signum, frame) -> None:
+    raise SystemExit(1)
+
+
+def _alive(pid: int) -> bool:
+    """True while ``pid`` runs (a zombie, killed but not yet reaped, counts as gone on Linux)."""
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
+    except (OSError, IndexError):
+        return True
 
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell
@@ -260,6 +347,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     import io
 
     from gripsight.app.report import write_report
+    from gripsight.app.textsafe import one_line
 
     classes = list(cell.parts) + ["unknown"]
     reasons = sorted({r for row in rows for r in row["rejected"]})
@@ -271,14 +359,15 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     w.writerow(header)
     for row in rows:
         t = row["truth"] or {}
-        w.writerow([row["photo"], row["status"], row["error"], row["registration"], row["drift"], row["parts"]]
+        w.writerow([one_line(row["photo"]), row["status"], one_line(row["error"]), row["registration"], row["drift"], row["parts"]]
                    + [row["found"].get(c, 0) for c in classes]
                    + [row["planned"], sum(row["rejected"].values())] + [row["rejected"].get(r, 0) for r in reasons]
                    + [row["cycle_s"], t.get("recall", ""), t.get("precision", ""), t.get("pick_error_rms_mm", ""),
                       t.get("pick_error_max_mm", ""), "; ".join(row.get("warnings", []))])
     totals = _totals(rows)
     write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
-    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256")} for r in rows]
+    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256", "cell_sha256", "calibration_sha256")}
+             for r in rows]
     write_text_atomic(Path(out) / "batch.json", strict_json({"cell": cell.cell, "totals": totals, "photos": clean},
                                                            indent=1) + "\n")
     write_report(Path(out) / "report.html", rows, totals, cell)

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import hashlib
 import os
+import shutil
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Annotated, Literal
@@ -18,8 +19,8 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
-from gripsight.app.fileio import write_text_atomic
-from gripsight.vision.calibration import Calibration, MarkerFit
+from gripsight.app.fileio import atomic_output, utc_now
+from gripsight.vision.calibration import Calibration, CentreSource, MarkerFit, Verdict
 from gripsight.vision.homography import TableMapping
 from gripsight.vision.lens import lens_from_dict
 
@@ -44,6 +45,7 @@ class _Marker(_Model):
     id: int
     used: bool
     reason: str = ""
+    role: str = ""
     residual_mm: Finite | None = None
     residual_px: Finite | None = None
     corners_px: Annotated[list[Annotated[list[Finite], Field(min_length=2, max_length=2)]], Field(min_length=4, max_length=4)]
@@ -69,10 +71,10 @@ class _File(_Model):
     H_table_from_pixel: Annotated[list[Annotated[list[Finite], Field(min_length=3, max_length=3)]], Field(min_length=3, max_length=3)]
     lens: _Lens
     camera_centre_mm: Annotated[list[Finite], Field(min_length=3, max_length=3)]
-    camera_centre_source: Literal["measured", "raised_markers", "assumed"]
+    camera_centre_source: Annotated[CentreSource, Field(strict=False)]
     markers: list[_Marker]
     residual: dict[str, Finite]
-    verdict: Literal["good", "fair", "poor"]
+    verdict: Annotated[Verdict, Field(strict=False)]
     notes: list[str] = []
 
 
@@ -88,6 +90,12 @@ class StoredCalibration:
         self.image_size = (data.photo.width_px, data.photo.height_px)
         self.marker_corners_px = {m.id: np.array(m.corners_px, float) for m in data.markers if m.used}
         self.verdict = data.verdict
+        self.sha256: str | None = None           # SHA-256 of the file's bytes, set by read_calibration
+
+
+def default_calibration_path(cell) -> Path:
+    """``calibration.yaml`` beside the cell file."""
+    return Path(cell.source_path).parent / "calibration.yaml" if cell.source_path else Path("calibration.yaml")
 
 
 def history_path(path: Path, when: datetime) -> Path:
@@ -103,7 +111,7 @@ def history_path(path: Path, when: datetime) -> Path:
 
 
 def _marker_record(m: MarkerFit) -> dict:
-    return {"id": int(m.id), "used": bool(m.used), "reason": m.reason,
+    return {"id": int(m.id), "used": bool(m.used), "reason": m.reason, "role": m.role.value,
             "residual_mm": None if m.residual_mm is None else round(m.residual_mm, 4),
             "residual_px": None if m.residual_px is None else round(m.residual_px, 4),
             "corners_px": np.round(m.corners_px, 4).tolist()}
@@ -113,37 +121,47 @@ def calibration_record(cal: Calibration, cell, photo_path) -> dict:
     w, h = cal.image_size
     return {
         "gripsight": "calibration",
-        "created": datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z"),
+        "created": utc_now(),
         "cell": cell.cell,
         "photo": {"path": str(photo_path), "sha256": file_sha256(photo_path), "width_px": int(w), "height_px": int(h)},
         "H_table_from_pixel": [[float(v) for v in row] for row in cal.mapping.H_table_from_pixel],
         "lens": cal.mapping.lens.as_dict(),
         "camera_centre_mm": [round(float(v), 3) for v in cal.camera_centre_mm],
-        "camera_centre_source": cal.centre_source,
+        "camera_centre_source": cal.centre_source.value,
         "markers": [_marker_record(m) for m in sorted(cal.markers, key=lambda m: m.id)],
         "residual": {"rms_mm": round(cal.rms_mm, 4), "max_mm": round(cal.max_mm, 4),
                      "rms_px": round(cal.rms_px, 4), "max_px": round(cal.max_px, 4),
                      "markers_used": len(cal.used)},
-        "verdict": cal.verdict,
+        "verdict": cal.verdict.value,
         "notes": list(cal.notes),
     }
 
 
 def write_calibration(path, cal: Calibration, cell, photo_path) -> Path | None:
-    """Write the calibration atomically; an existing file is first moved to its history folder.
+    """Write the calibration atomically, the new file first: it is written and flushed beside the old
+    one, the old one is then linked (or copied) into its history folder, and only then the new one takes
+    its name. A failure anywhere leaves the old calibration where it was.
 
     Returns the history file the old calibration went to, or None.
     """
+    from gripsight.app.errors import GripsightError
+
     path = Path(path)
+    if path.is_dir():
+        raise GripsightError(f"{path}: is a folder; a calibration needs a file name inside or beside it")
     record = calibration_record(cal, cell, photo_path)
     text = "# gripsight calibration: table frame in mm, pixels as in the photo (OpenCV's convention)\n" + \
         yaml.safe_dump(record, sort_keys=False, default_flow_style=None, width=140)
     moved = None
-    if path.exists():
-        moved = history_path(path, datetime.now(timezone.utc))
-        moved.parent.mkdir(parents=True, exist_ok=True)
-        os.replace(path, moved)
-    write_text_atomic(path, text)
+    with atomic_output(path) as tmp:
+        Path(tmp).write_bytes(text.encode("utf-8"))
+        if path.is_file():
+            moved = history_path(path, datetime.now(timezone.utc))
+            moved.parent.mkdir(parents=True, exist_ok=True)
+            try:
+                os.link(path, moved)           # the old bytes keep their name until the new file replaces it
+            except OSError:
+                shutil.copy2(path, moved)
     return moved
 
 
@@ -157,7 +175,7 @@ def read_calibration(path) -> StoredCalibration:
     """
     from gripsight.app.cellfile import _pydantic_problems, read_yaml
 
-    data, _ = read_yaml(path, "calibration file")
+    data, raw = read_yaml(path, "calibration file")
     if not isinstance(data, dict):
         raise CellFileError(str(path), [Problem("", "not a gripsight calibration file; make one with `gripsight calibrate`")])
     try:
@@ -167,7 +185,9 @@ def read_calibration(path) -> StoredCalibration:
     problems = _content_problems(parsed)
     if problems:
         raise CellFileError(str(path), problems + [Problem("", "make a new one with `gripsight calibrate`")])
-    return StoredCalibration(str(path), parsed)
+    stored = StoredCalibration(str(path), parsed)
+    stored.sha256 = hashlib.sha256(raw).hexdigest()       # what a resumed run or batch compares
+    return stored
 
 
 def _content_problems(parsed: _File) -> list[Problem]:

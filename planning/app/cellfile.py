@@ -23,9 +23,10 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
+from gripsight.vision.markerdict import DICTIONARY_NAMES, dictionary_size
+from gripsight.vision.settings import LensMode, OnMove
 
 __all__ = [
-    "ARUCO_DICTIONARY_SIZES",
     "Cell",
     "ArmConfig",
     "JointConfig",
@@ -53,20 +54,8 @@ SpeedDegS = Annotated[float, Field(ge=1, le=1.0e4, allow_inf_nan=False)]
 Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
 Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
 
-# Published ArUco / AprilTag dictionaries and how many ids each holds (OpenCV's predefined set).
-ARUCO_DICTIONARY_SIZES = {
-    "aruco_4x4_50": 50, "aruco_4x4_100": 100, "aruco_4x4_250": 250, "aruco_4x4_1000": 1000,
-    "aruco_5x5_50": 50, "aruco_5x5_100": 100, "aruco_5x5_250": 250, "aruco_5x5_1000": 1000,
-    "aruco_6x6_50": 50, "aruco_6x6_100": 100, "aruco_6x6_250": 250, "aruco_6x6_1000": 1000,
-    "aruco_original": 1024, "apriltag_16h5": 30, "apriltag_25h9": 35, "apriltag_36h10": 2320,
-    "apriltag_36h11": 587,
-}
-DictionaryName = Literal[
-    "aruco_4x4_50", "aruco_4x4_100", "aruco_4x4_250", "aruco_4x4_1000",
-    "aruco_5x5_50", "aruco_5x5_100", "aruco_5x5_250", "aruco_5x5_1000",
-    "aruco_6x6_50", "aruco_6x6_100", "aruco_6x6_250", "aruco_6x6_1000",
-    "aruco_original", "apriltag_16h5", "apriltag_25h9", "apriltag_36h10", "apriltag_36h11",
-]
+# Every dictionary OpenCV predefines, by our name (the vision library owns the list).
+DictionaryName = Literal[DICTIONARY_NAMES]
 
 
 class _Model(BaseModel):
@@ -81,21 +70,33 @@ class MarkerPlacement(_Model):
     yaw_deg: Number = 0.0
 
 
+class GripperMarker(_Model):
+    """A marker fixed to the gripper, for fitting the servo maps and base placement from photos
+    (``gripsight arm-poses`` / ``arm-fit``). Same dictionary as the table markers."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: PositiveMm
+    margin_mm: NonNegativeMm = 5.0
+    offset_mm: Point3 = [0.0, 0.0, 0.0]     # its centre from the tool point: forward, left, up (tool frame)
+    level: bool | None = None              # faces up; false: tilts with the forearm; default: as arm.tool.level
+
+
 class MarkersConfig(_Model):
     dictionary: DictionaryName = "aruco_4x4_50"
     size_mm: PositiveMm
     margin_mm: NonNegativeMm = 10.0
     paper_srgb: Annotated[float, Field(ge=100, le=255, allow_inf_nan=False)] = 232.0   # paper's grey level in a well-lit photo
     layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1, max_length=MAX_MARKERS)
+    on_gripper: GripperMarker | None = None
 
 
 class CameraConfig(_Model):
-    lens: Literal["none", "estimate", "file"] = "estimate"
+    lens: Annotated[LensMode, Field(strict=False)] = LensMode.ESTIMATE
     lens_file: str | None = None
     centre_mm: Point3 | None = None
     height_mm: PositiveMm | None = None
     drift_tolerance_mm: PositiveMm = 1.0
-    on_move: Literal["refit", "stop"] = "refit"
+    on_move: Annotated[OnMove, Field(strict=False)] = OnMove.REFIT
 
 
 # ---------------------------------------------------------------- arm
@@ -146,6 +147,7 @@ class GripperConfig(_Model):
 
 class ArmConfig(_Model):
     base_height_mm: Number
+    base_xy_mm: Point2 = [0.0, 0.0]   # where the base axis stands in the markers' frame (written by arm-fit)
     shoulder_offset_mm: Number = 0.0
     upper_arm_mm: PositiveMm
     forearm_mm: PositiveMm
@@ -165,6 +167,12 @@ class PartClass(_Model):
     shape: Literal["box", "cylinder"] = "box"
     footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
     seen_as: Literal["auto", "top", "silhouette"] = "auto"
+
+    @property
+    def length_width_mm(self) -> tuple[float, float]:
+        """The footprint as (length, width): one value (a cylinder's diameter, a square) is both."""
+        fp = self.footprint_mm
+        return (float(fp[0]), float(fp[-1]))
 
 
 class BinConfig(_Model):
@@ -348,7 +356,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if joint.min_deg < joint.max_deg and not joint.min_deg <= value <= joint.max_deg:
             out.append(Problem(f"motion.home_deg.{name}", f"{value:g} is outside the joint limits [{joint.min_deg:g}, {joint.max_deg:g}]"))
 
-    size = ARUCO_DICTIONARY_SIZES[cell.markers.dictionary]
+    size = dictionary_size(cell.markers.dictionary)
     layout = cell.markers.layout
     for marker_id in layout:
         if marker_id >= size:
@@ -359,6 +367,17 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
             pa, pb = layout[a], layout[b]
             if math.hypot(pa.x - pb.x, pa.y - pb.y) < cell.markers.size_mm:
                 out.append(Problem(f"markers.layout.{b}", f"overlaps marker {a} (centres closer than size_mm)"))
+
+    grip_marker = cell.markers.on_gripper
+    if grip_marker is not None:
+        if grip_marker.id >= size:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} does not exist in {cell.markers.dictionary} (ids 0-{size - 1})"))
+        if grip_marker.id in layout:
+            out.append(Problem("markers.on_gripper.id", f"id {grip_marker.id} is already a table marker (markers.layout); "
+                                                        "give the gripper its own id"))
+        if grip_marker.level and not cell.arm.tool.level:
+            out.append(Problem("markers.on_gripper.level", "the tool is fixed to the forearm (arm.tool.level: false), "
+                                                           "so a marker on it tilts with it; remove the key or set false"))
 
     if abs(_polygon_area(cell.work_area)) < 1.0:
         out.append(Problem("work_area", "the polygon has no area (points collinear or repeated)"))
@@ -378,10 +397,9 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
         if name != "reject" and name not in cell.parts:
             out.append(Problem(f"bins.{name}", f"no part class '{name}' (bins are named after classes, or 'reject')"))
 
-    tallest = max((p.height_mm for p in cell.parts.values()), default=0.0)
+    # a part taller than safe_z_mm is approached, carried and released at adapted heights; a class that
+    # cannot be carried at all is named by the planning core's cell check (parts.<class>.height_mm)
     motion = cell.motion
-    if motion.safe_z_mm <= tallest + motion.floor_clearance_mm:
-        out.append(Problem("motion.safe_z_mm", f"must be above the tallest part ({tallest:g} mm) plus floor_clearance_mm"))
     if motion.drop_z_mm >= motion.safe_z_mm:
         out.append(Problem("motion.drop_z_mm", f"must be below safe_z_mm ({motion.safe_z_mm:g})"))
     for name, part in cell.parts.items():
@@ -399,7 +417,7 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
                 out.append(Problem(f"{where}", "a box zone needs min_mm and max_mm"))
             elif any(a >= b for a, b in zip(zone.min_mm, zone.max_mm)):
                 out.append(Problem(f"{where}.min_mm", "every coordinate must be less than max_mm's"))
-    if cell.camera.lens == "file" and not cell.camera.lens_file:
+    if cell.camera.lens == LensMode.FILE and not cell.camera.lens_file:
         out.append(Problem("camera.lens_file", "required when camera.lens is 'file'"))
     return out
 
@@ -461,6 +479,13 @@ def parse_cell(data, source: str = "<cell>") -> Cell:
     if not isinstance(data, dict):
         kind = "empty" if data is None else f"a {type(data).__name__}, not a mapping of keys"
         raise CellFileError(source, [Problem("", f"the file is {kind}; start from `gripsight init`")])
+    from gripsight.app.textsafe import control_character_paths
+
+    controls = control_character_paths(data)
+    if controls:      # a name that reaches a CSV, a comment line or HTML must not carry a line break
+        raise CellFileError(source, [Problem(".".join(str(k) for k in where) or "<top>",
+                                             f"contains a control character or line break ({text[:40]}); "
+                                             "use plain text on one line") for where, text in controls])
     try:
         cell = Cell.model_validate(data)
     except ValidationError as exc:

@@ -11,7 +11,7 @@ from typing import Optional
 
 import typer
 
-from gripsight.app.commands import camera, cell, jobs  # noqa: F401 - the commands register on `app`
+from gripsight.app.commands import arm, camera, cell, jobs  # noqa: F401 - the commands register on `app`
 from gripsight.app.commands.common import _echo_err, app
 
 __all__ = ["app", "main", "entry"]
@@ -35,8 +35,26 @@ def main(argv: Optional[list[str]] = None) -> int:
 
 
 def entry() -> None:
-    """The ``gripsight`` console script."""
-    sys.exit(main())
+    """The ``gripsight`` console script. After an interrupt (exit 130) it leaves at once: every output is
+    already whole (atomic writes) and the workers are stopped, and the interpreter's teardown of the
+    loaded modules (a second or more on a busy machine) would only delay the prompt, and a second Ctrl-C
+    during it would print a trace."""
+    code = main()
+    if code == 130:
+        import os
+
+        if "multiprocessing.util" in sys.modules:       # release the pool's semaphores (no leak warnings)
+            try:
+                sys.modules["multiprocessing.util"]._exit_function()
+            except Exception:  # noqa: BLE001 - leaving anyway
+                pass
+        for stream in (sys.stdout, sys.stderr):
+            try:
+                stream.flush()
+            except (OSError, ValueError):
+                pass
+        os._exit(130)
+    sys.exit(code)
 
 
 if __name__ == "__main__":

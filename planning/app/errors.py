@@ -26,24 +26,18 @@ class GripsightError(Exception):
     exit_code = 1
 
 
-class CellFileError(GripsightError):
+class CellFileError(CellProblems):
     """A cell file (or another YAML input: parts file, calibration) cannot be used.
 
-    Carries every problem found, each with its key path or YAML line.
+    The planner's :class:`~gripsight.planning.errors.CellProblems` for what only the app reads: every
+    problem found, each with its key path or YAML line; ``path`` is the file.
     """
 
     exit_code = 2
 
-    def __init__(self, path: str, problems: list[Problem]):
-        self.path = str(path)
-        self.problems = list(problems)
-        first = self.problems[0] if self.problems else Problem("", "invalid")
-        more = f" (and {len(self.problems) - 1} more)" if len(self.problems) > 1 else ""
-        super().__init__(f"{self.path}: {first}{more}")
-
-    def lines(self) -> list[str]:
-        """One line per problem, each prefixed with the file name."""
-        return [f"{self.path}: {p}" for p in self.problems]
+    @property
+    def path(self) -> str:
+        return self.source
 
 
 class InputError(GripsightError):
@@ -68,13 +62,13 @@ def exit_code_for(exc: BaseException) -> int:
     missing or unusable (cell, parts, calibration, photo, lens, state file), else the error's own (1)."""
     from gripsight.vision.errors import LensFileError, PhotoError
 
-    if isinstance(exc, (CellFileError, CellProblems, PhotoError, LensFileError)):
+    if isinstance(exc, (CellProblems, PhotoError, LensFileError)):                   # CellFileError included
         return 2
     return int(getattr(exc, "exit_code", 1))
 
 
 def message_lines(exc: BaseException) -> list[str]:
     """The lines to print for an expected error (one per problem for a file with several)."""
-    if isinstance(exc, (CellFileError, CellProblems)):
+    if isinstance(exc, CellProblems):
         return exc.lines()
     return [str(exc).replace("\r", "\\r").replace("\n", "\\n")]

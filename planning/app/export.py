@@ -15,18 +15,18 @@ from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, strict_json, write_text_atomic
+from gripsight.app.fileio import output_dir, strict_json, utc_now, write_files_atomic
+from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
-__all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs", "utc_now"]
+__all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs"]
 
 CSV_COLUMNS = ["time_s", "segment", "part", "x_mm", "y_mm", "z_mm", "base_deg", "shoulder_deg", "elbow_deg",
                "gripper", "base_us", "shoulder_us", "elbow_us", "gripper_us"]
 
 
-def utc_now() -> str:
-    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")
+
 
 
 def _r(values, nd=4):
@@ -54,13 +54,13 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
                       "pixel": None if p.pixel_uv is None else _r(p.pixel_uv, 2),
                       "table_mm": _r(p.xy_mm, 3), "height_mm": round(p.height_mm, 3),
                       "yaw_deg": round(p.yaw_deg, 2), "width_mm": round(p.width_mm, 3), "length_mm": round(p.length_mm, 3),
-                      "bin": o.bin_name, "status": o.status,
-                      "reason": None if o.rejection is None else o.rejection.check,
+                      "bin": o.bin_name, "status": o.status.value,
+                      "reason": None if o.rejection is None else o.rejection.label,
                       "rejection": None if o.rejection is None else o.rejection.as_dict()})
     rejected: dict[str, int] = {}
     for o in plan.parts:
         if o.rejection is not None:
-            rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
+            rejected[o.rejection.label] = rejected.get(o.rejection.label, 0) + 1
     return {
         "gripsight": "plan",
         "status": "planned",
@@ -91,16 +91,18 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None, photo: st
     out.write("# gripsight joint sequence\n")
     for line in SAFETY_LINES:
         out.write(f"# SAFETY: {line}\n")
-    out.write(f"# cell: {cell.cell}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    out.write(f"# cell: {one_line(cell.cell)}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
     if photo is not None:
-        out.write(f"# photo: {photo}\n")
+        out.write(f"# photo: {one_line(str(photo))}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
     if plan.speed_scale != 1.0:
         out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
+    names = {pid: one_line(pid) for pid in set(s.part_id)}      # ids from a parts file or a photo: one line each
+    part_ids = [names[pid] for pid in s.part_id]
     for i in range(len(s.t_s)):
-        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], s.part_id[i],
+        writer.writerow([f"{s.t_s[i]:.4f}", s.segment_kind[i], part_ids[i],
                          f"{s.xyz_mm[i, 0]:.4f}", f"{s.xyz_mm[i, 1]:.4f}", f"{s.xyz_mm[i, 2]:.4f}",
                          f"{q_deg[i, 0]:.6f}", f"{q_deg[i, 1]:.6f}", f"{q_deg[i, 2]:.6f}",
                          "closed" if s.gripper_closed[i] else "open",
@@ -112,12 +114,17 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
                        calibration: dict | None = None, plots: bool = True) -> dict:
     """Write plan.json, joints.csv (and the two plots) under ``out_dir``; return the plan dict."""
 
+    from gripsight.app.jointcheck import check_joint_file_text
+
     out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
-    write_text_atomic(out / "joints.csv", joints_csv_text(plan, cell, arm, created,
-                                                          photo=None if photo is None else photo.get("path")))
-    write_text_atomic(out / "plan.json", strict_json(data) + "\n")
+    text = joints_csv_text(plan, cell, arm, created, photo=None if photo is None else photo.get("path"))
+    check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
+    # both new files written and flushed before either takes its name: a failure (a full disk) leaves
+    # the old pair, never a new joints.csv beside an old plan.json
+    write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
+                        (out / "plan.json", (strict_json(data) + "\n").encode("utf-8"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

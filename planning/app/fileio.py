@@ -7,11 +7,34 @@ from __future__ import annotations
 
 import contextlib
 import errno
+from datetime import datetime, timezone
 import os
+import re
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "cannot_write", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder"]
+__all__ = ["atomic_output", "cannot_write", "strict_json", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder",
+           "remove_leftover_temps", "write_files_atomic"]
+
+# the temporary names of atomic_output: ".<stem>.<8 random chars from mkstemp>.tmp<suffix>"
+_TEMP_NAME = re.compile(r"^\..*\.[A-Za-z0-9_]{8}\.tmp(\.[^./]*)?$")
+
+
+def remove_leftover_temps(folder) -> list[Path]:
+    """Remove the temporary files an interrupted writer left in ``folder`` and its direct subfolders
+    (the caller holds the folder's output lock, so no writer of ours is using them); return them."""
+    removed = []
+    folder = Path(folder)
+    if not folder.is_dir():
+        return removed
+    places = [folder] + [p for p in folder.iterdir() if p.is_dir() and not p.is_symlink()]
+    for place in places:
+        for path in place.iterdir():
+            if _TEMP_NAME.match(path.name) and path.is_file() and not path.is_symlink():
+                with contextlib.suppress(OSError):
+                    path.unlink()
+                    removed.append(path)
+    return removed
 
 
 def child_folder(out, name: str) -> Path:
@@ -128,3 +151,37 @@ def strict_json(data, indent: int | None = 2) -> str:
         return value
 
     return json.dumps(clean(data), indent=indent, allow_nan=False)
+
+
+def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
+    """Write several files as one step: every new file is written and flushed under a temporary name
+    first, and only when all are on disk do they take their names (renames, which need no space). A
+    failure before that (a full disk) removes the temporaries and leaves every old file as it was."""
+    temps: list[tuple[str, Path]] = []
+    try:
+        for path, data in items:
+            target = Path(path)
+            fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
+            temps.append((tmp, target))
+            with os.fdopen(fd, "wb") as fh:
+                fh.write(data)
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.chmod(tmp, 0o666 & ~_umask())             # as any new file, not mkstemp's 0600
+        for tmp, target in temps:
+            os.replace(tmp, target)
+    except OSError as exc:
+        for tmp, _ in temps:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+        raise cannot_write(temps[-1][1] if temps else Path(items[0][0]), exc) from None
+    except BaseException:
+        for tmp, _ in temps:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+        raise
+
+
+def utc_now() -> str:
+    """The time now in UTC, ISO 8601 to the second (``2026-12-02T15:30:00Z``): the one stamp of every output."""
+    return datetime.now(timezone.utc).replace(microsecond=0).isoformat().replace("+00:00", "Z")

@@ -1,7 +1,11 @@
-"""One writer per output folder: a lock file made with O_CREAT | O_EXCL, holding the owner's pid.
+"""One writer per output folder: the operating system's lock on ``OUT/.gripsight.lock``.
 
-A second ``batch`` or ``run`` into the same folder refuses with a clear message instead of interleaving
-its outputs. A lock left by a process that no longer exists (killed) is taken over.
+A ``run`` or ``batch`` takes an exclusive, non-blocking lock (``flock`` on POSIX, ``msvcrt.locking`` on
+Windows) on the lock file and holds it while it writes; a second command into the same folder finds it
+taken and refuses with a clear message instead of interleaving its outputs. The kernel releases the lock
+when the holding process ends, however it ends (``kill -9`` included), so there is no stale lock and no
+guess about one. The file itself stays (removing it would let a third process lock a new file while the
+second still holds the old one); it holds the owner's pid and command, for the message only.
 """
 
 from __future__ import annotations
@@ -16,39 +20,63 @@ __all__ = ["output_lock", "LOCK_NAME"]
 
 LOCK_NAME = ".gripsight.lock"
 
+try:
+    import fcntl
 
-def _alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
+    def _try_lock(fd: int) -> bool:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return False
         return True
-    return True
+
+    def _unlock(fd: int) -> None:
+        fcntl.flock(fd, fcntl.LOCK_UN)
+except ImportError:          # Windows
+    import msvcrt
+
+    def _try_lock(fd: int) -> bool:
+        os.lseek(fd, 0, os.SEEK_SET)
+        try:
+            msvcrt.locking(fd, msvcrt.LK_NBLCK, 1)
+        except OSError:
+            return False
+        return True
+
+    def _unlock(fd: int) -> None:
+        os.lseek(fd, 0, os.SEEK_SET)
+        msvcrt.locking(fd, msvcrt.LK_UNLCK, 1)
+
+
+def _owner(fd: int) -> str:
+    try:
+        os.lseek(fd, 0, os.SEEK_SET)
+        words = os.read(fd, 200).decode("ascii", "replace").split()
+    except OSError:
+        return ""
+    return f" (pid {words[0]})" if words and words[0].isdigit() else ""
 
 
 @contextlib.contextmanager
 def output_lock(folder, command: str):
+    """Hold the output folder's lock for the block; raise :class:`GripsightError` if another process
+    holds it."""
     path = Path(folder) / LOCK_NAME
-    for _ in range(2):
-        try:
-            fd = os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-        except FileExistsError:
-            try:
-                owner = int(path.read_text().split()[0])
-            except (OSError, ValueError, IndexError):
-                owner = -1
-            if owner > 0 and _alive(owner) and owner != os.getpid():
-                raise GripsightError(f"{folder}: another gripsight command (pid {owner}) is writing here; wait for "
-                                     "it to finish or give another --out") from None
-            path.unlink(missing_ok=True)          # a stale lock from a process that is gone
-            continue
-        with os.fdopen(fd, "w") as fh:
-            fh.write(f"{os.getpid()} {command}\n")
-        break
-    else:
-        raise GripsightError(f"{folder}: cannot take the output lock {path}")
     try:
-        yield path
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    except OSError as exc:
+        raise GripsightError(f"{folder}: cannot make the output lock {path} ({exc.strerror or exc})") from None
+    try:
+        if not _try_lock(fd):
+            raise GripsightError(f"{folder}: another gripsight command{_owner(fd)} is writing here; wait for "
+                                 "it to finish or give another --out")
+        try:
+            with contextlib.suppress(OSError):
+                os.ftruncate(fd, 0)
+                os.lseek(fd, 0, os.SEEK_SET)
+                os.write(fd, f"{os.getpid()} {command}\n".encode("ascii", "replace"))
+            yield path
+        finally:
+            _unlock(fd)
     finally:
-        path.unlink(missing_ok=True)
+        os.close(fd)

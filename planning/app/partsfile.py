@@ -96,7 +96,7 @@ def parse_parts(data, cell, source: str = "<parts>") -> list[PartTarget]:
             targets.append(PartTarget(part_id, e.class_name, (e.x_mm, e.y_mm), e.height_mm, e.yaw_deg,
                                       length, width, round=False, known_class=False))
             continue
-        foot = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+        foot = list(cls.length_width_mm)
         length = e.length_mm if e.length_mm is not None else foot[0]
         width = e.width_mm if e.width_mm is not None else foot[1]
         height = e.height_mm if e.height_mm is not None else cls.height_mm

@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from gripsight.app.export import utc_now, write_plan_outputs
-from gripsight.app.fileio import output_dir, strict_json, write_bytes_atomic, write_text_atomic
+from gripsight.app.export import write_plan_outputs
+from gripsight.app.fileio import output_dir, strict_json, write_bytes_atomic, write_text_atomic, utc_now
 
 __all__ = ["write_photo_outputs", "plan_overlay"]
 
@@ -58,13 +58,13 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
     for o in plan.parts:
         if o.rejection is None:
             continue
-        by_reason[o.rejection.check] = by_reason.get(o.rejection.check, 0) + 1
-        if o.part.vision_status not in ("ok", "unknown_colour"):
+        by_reason[o.rejection.label] = by_reason.get(o.rejection.label, 0) + 1
+        if not o.part.pickable:
             continue                            # the detection overlay already says why
         uv = table_point_px(reg.mapping, reg.camera_centre_mm, [[*o.part.xy_mm, o.part.height_mm]])[0]
         c = tuple(np.round(uv).astype(int))
         cv2.drawMarker(out, c, (40, 40, 220), cv2.MARKER_TILTED_CROSS, 22, 3, cv2.LINE_AA)
-        text = f"{o.part.id}: {o.rejection.check}"
+        text = f"{o.part.id}: {o.rejection.label}"
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (80, 80, 255), 1, cv2.LINE_AA)
     rejected = ", ".join(f"{n} {r}" for r, n in sorted(by_reason.items())) or "none"

@@ -17,18 +17,13 @@ import numpy as np
 import yaml
 
 from gripsight.app.fileio import write_bytes_atomic, write_text_atomic
+from gripsight.app.truthcheck import truth_path
 from gripsight.vision.synth.render import Rendered, encode_photo, render_scene
 from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, ScenePart, SensorSpec, make_camera, random_scene
 
 __all__ = ["write_photo", "read_truth", "truth_path", "demo_camera_spec", "write_sample_set", "UNKNOWN_LAB"]
 
 UNKNOWN_LAB = [55.0, 65.0, -25.0]       # a magenta token: no class of the demo cell
-
-
-def truth_path(photo: Path) -> Path:
-    """``demo/demo_01.jpg`` -> ``demo/demo_01.truth.yaml``."""
-    photo = Path(photo)
-    return photo.with_name(photo.stem + ".truth.yaml")
 
 
 def write_photo(path, rendered: Rendered, jpeg_quality: int) -> Path:

@@ -11,11 +11,11 @@ from pathlib import Path
 import numpy as np
 
 from gripsight.app.errors import GripsightError
+from gripsight.vision.drift import RegistrationAction
 from gripsight.planning.targets import PartTarget
 
 __all__ = ["PhotoAnalysis", "PhotoPlan", "analyse_photo", "plan_photo", "photo_record", "targets_from_detection",
-           "default_calibration_path", "load_or_make_calibration", "check_photo_fits_calibration",
-           "check_calibration_fits_cell"]
+           "load_or_make_calibration", "check_photo_fits_calibration", "check_calibration_fits_cell"]
 
 
 @dataclass
@@ -31,18 +31,13 @@ class PhotoAnalysis:
 
     @property
     def refused(self) -> bool:
-        return self.registration.action == "refused"
-
-
-def default_calibration_path(cell) -> Path:
-    """``calibration.yaml`` beside the cell file."""
-    return Path(cell.source_path).parent / "calibration.yaml" if cell.source_path else Path("calibration.yaml")
+        return self.registration.action is RegistrationAction.REFUSED
 
 
 def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
     """Read the calibration; if there is none at the default place but ``calibration.jpg`` lies beside
     the cell file, calibrate from it first (the demo cell's first run) and tell ``say`` (a callable)."""
-    from gripsight.app.calfile import read_calibration, write_calibration
+    from gripsight.app.calfile import default_calibration_path, read_calibration, write_calibration
     from gripsight.vision.calibration import calibrate
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
@@ -78,7 +73,7 @@ def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     markers = detect_markers(image, cell.markers.dictionary, expected=expected)
     reg = register(stored, markers, cell, (image.shape[1], image.shape[0]), str(photo))
     detection = None
-    if reg.action != "refused":
+    if reg.action is not RegistrationAction.REFUSED:
         detection = detect_parts(image, reg.mapping, reg.camera_centre_mm, cell, markers)
     return PhotoAnalysis(str(photo), image, markers, reg, detection, photo_warnings(image, markers, reg, stored, cell))
 
@@ -151,13 +146,13 @@ def targets_from_detection(detection, cell) -> list[PartTarget]:
     for d in detection.parts:
         cls = cell.parts.get(d.class_name)
         if cls is not None:
-            fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+            fp = list(cls.length_width_mm)
             length, width, round_part = fp[0], fp[1], cls.shape == "cylinder"
         else:
             length, width, round_part = max(d.length_mm, d.width_mm), min(d.length_mm, d.width_mm), False
         out.append(PartTarget(d.id, d.class_name, d.xy_mm, d.height_mm, d.yaw_deg, length, width, round_part,
-                              known_class=cls is not None, pixel_uv=d.pixel_uv,
-                              vision_status=d.status, vision_detail=d.reason))
+                              known_class=cls is not None, pixel_uv=d.pixel_uv, pickable=d.status.pickable,
+                              vision_status=d.status.value, vision_detail=d.reason))
     return out
 
 
@@ -183,27 +178,9 @@ def plan_photo(photo, cell, stored, planner, start_joints_rad=None, t0_s: float 
 
     targets = targets_from_detection(analysis.detection, cell)
     check_plan_size(len(targets), cell, str(photo))
-    if bin_room is not None:
-        targets = _respect_capacity(targets, planner, bin_room)
-    plan = planner.plan(targets, order=order, start_joints_rad=start_joints_rad, end_at_home=end_at_home, t0_s=t0_s)
+    plan = planner.plan(targets, order=order, start_joints_rad=start_joints_rad, end_at_home=end_at_home, t0_s=t0_s,
+                        bin_room=bin_room)
     return PhotoPlan(analysis, plan, analysis.registration.message)
-
-
-def _respect_capacity(targets, planner, bin_room: dict):
-    """Mark parts whose bin has no room left (counting the parts before them) as rejected ``bin_full``."""
-    from dataclasses import replace
-
-    room = dict(bin_room)
-    out = []
-    for t in targets:
-        name = planner.bin_for(t)
-        if t.vision_status in ("ok", "unknown_colour") and name is not None and name in room:
-            if room[name] <= 0:
-                t = replace(t, vision_status="bin_full", vision_detail=f"bin '{name}' is full")
-            else:
-                room[name] -= 1
-        out.append(t)
-    return out
 
 
 def photo_record(analysis: PhotoAnalysis, stored) -> tuple[dict, dict]:
@@ -215,7 +192,7 @@ def photo_record(analysis: PhotoAnalysis, stored) -> tuple[dict, dict]:
              else analysis.detection.illumination.as_dict(),
              "notes": [] if analysis.detection is None else analysis.detection.notes,
              "warnings": list(analysis.warnings or [])}
-    calibration = {"file": stored.path, "verdict": stored.verdict, "registration": reg.action,
+    calibration = {"file": stored.path, "verdict": stored.verdict.value, "registration": reg.action.value,
                    "message": reg.message, "drift": None if reg.drift is None else reg.drift.as_dict(),
                    "camera_centre_mm": None if reg.camera_centre_mm is None else
                    [round(float(v), 3) for v in reg.camera_centre_mm]}

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from gripsight.planning.arm import JOINT_NAMES
+from gripsight.planning.picks import PickStatus
 from gripsight.app.fileio import atomic_output
 
 __all__ = ["draw_joint_plot", "draw_path_plot"]
@@ -78,12 +79,12 @@ def draw_path_plot(plan, cell, arm, out_path) -> None:
         top.annotate(name, (b.y, b.x), xytext=(0, -18), textcoords="offset points", ha="center", fontsize=8)
     for o in plan.parts:
         x, y = o.part.xy_mm
-        if o.status == "planned":
+        if o.status is PickStatus.PLANNED:
             top.plot(y, x, "o", color=_PLANNED, ms=8)
             top.annotate(o.part.id, (y, x), xytext=(5, 5), textcoords="offset points", fontsize=8)
         else:
             top.plot(y, x, "x", color=_REJECTED, ms=10, mew=3)
-            top.annotate(f"{o.part.id}: {o.rejection.check}", (y, x), xytext=(5, 5), textcoords="offset points",
+            top.annotate(f"{o.part.id}: {o.rejection.label}", (y, x), xytext=(5, 5), textcoords="offset points",
                          fontsize=8, color=_REJECTED)
     for zone in cell.keep_out:
         if zone.shape == "cylinder":

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import html
 from pathlib import Path
+from urllib.parse import quote
 
 from gripsight.app.fileio import write_text_atomic
 
@@ -69,7 +70,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
                                                "cycle s", "warnings"] + (["recall", "pick error mm"] if truth else []))
     body = []
     for r in rows:
-        link = f"{r['photo']}/overlay.png"
+        link = f"{quote(r['photo'])}/overlay.png"
         thumb = (f'<a href="{e(link)}"><img class="thumb" alt="overlay of {e(r["photo"])}" '
                  f'src="data:image/jpeg;base64,{r["thumbnail"]}"></a>' if r.get("thumbnail") else "")
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(r["rejected"].items()))

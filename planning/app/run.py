@@ -4,12 +4,14 @@ Per photo, a folder ``OUT/<photo name>/`` with plan.json, joints.csv, overlay.pn
 each photo the run's state (photos done, where the arm stopped, the clock, tray counts) is saved
 atomically in ``OUT/run_state.json``, so an interrupted run resumes where it stopped (``--resume``).
 ``OUT/run.csv`` is the whole run's joint sequence on one clock, ending with the move home; it is
-rebuilt from the finished photos whenever the run stops.
+rebuilt whenever the run stops from the joints.csv files this run wrote (known by their hashes in the
+run state), never from older files in the folder, and checked as a whole before it is written.
 """
 
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 from dataclasses import dataclass, field
@@ -18,8 +20,9 @@ from pathlib import Path
 import numpy as np
 
 from gripsight.app.errors import EXPECTED_ERRORS, GripsightError, InputError
-from gripsight.app.export import CSV_COLUMNS, joints_csv_text, utc_now
-from gripsight.app.fileio import child_folder, output_dir, strict_json, write_text_atomic
+from gripsight.app.export import CSV_COLUMNS, joints_csv_text
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, utc_now, write_text_atomic
+from gripsight.planning.checks import Check
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
 
@@ -49,13 +52,22 @@ def _state_path(out: Path) -> Path:
     return out / _STATE
 
 
-def _load_state(out: Path, folder: Path, cell) -> dict:
+def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
+    """The interrupted run's state, if it was made of the same folder, the same cell file and the same
+    calibration file, and every photo it finished is still byte for byte the one it planned (the run
+    carries the arm from photo to photo, so a changed photo changes everything after it)."""
     path = _state_path(out)
     if not path.is_file():
         raise GripsightError(f"{path}: nothing to resume (no run state); run without --resume")
     state = _read_state(path)
     if state.get("folder") != str(folder.resolve()) or state.get("cell_sha256") != cell.sha256:
         raise GripsightError(f"{path}: that run was of another folder or cell file; run without --resume")
+    if stored is not None and state.get("calibration_sha256") != getattr(stored, "sha256", None):
+        raise GripsightError(f"{path}: that run was made with another calibration file; run without --resume")
+    photo_hashes = state.get("photo_sha256", {})
+    for name in state.get("done", []):
+        if photo_hashes.get(name) != _file_sha256(folder / name):
+            raise GripsightError(f"{path}: photo {name} changed since that run planned it; run without --resume")
     return state
 
 
@@ -89,8 +101,11 @@ def _read_state(path: Path) -> dict:
         ("bins", lambda v: isinstance(v, dict) and all(isinstance(n, int) and not isinstance(n, bool) and n >= 0
                                                        for n in v.values())),
         ("speed_scale", lambda v: number(v) and 0 < v <= 1),
+        ("photo_sha256", lambda v: isinstance(v, dict)), ("joints_sha256", lambda v: isinstance(v, dict)),
     ]
     for key, ok in checks:
+        if key in ("photo_sha256", "joints_sha256") and key not in state:
+            continue                                # written from the first finished photo on
         if key not in state:
             raise damaged(f"'{key}' is missing")
         if not ok(state[key]):
@@ -100,20 +115,43 @@ def _read_state(path: Path) -> dict:
     return state
 
 
+def _file_sha256(path: Path) -> str | None:
+    try:
+        return _sha256(path.read_bytes())
+    except OSError:
+        return None
+
+
 def _csv_rows(text: str) -> list[list[str]]:
     lines = [line for line in text.splitlines() if line and not line.startswith("#")]
     return list(csv.reader(lines))[1:]
 
 
+def _sha256(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()
+
+
 def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
-    """run.csv from the finished photos' joints.csv (each photo's first row repeats the last one's end)."""
+    """run.csv from this run's checked plans only: the joints.csv each photo of this run wrote, known
+    by the hash recorded in the run state when it was written (each photo's first row repeats the last
+    one's end); a photo without one (an error, an old file) adds nothing. The whole file is checked
+    before it is written (:func:`gripsight.app.jointcheck.check_joint_file_text`)."""
+    from gripsight.app.jointcheck import refusal, check_joint_file_text
+
     buf = io.StringIO()
     header_done = False
+    written = state.get("joints_sha256", {})
     for name in state["done"]:
-        path = child_folder(out, name) / "joints.csv"
-        if not path.is_file():
+        if name not in written:
             continue
-        text = path.read_text()
+        path = child_folder(out, name) / "joints.csv"
+        try:
+            raw = path.read_bytes()
+        except OSError:
+            raw = b""
+        if _sha256(raw) != written[name]:
+            raise refusal(str(out / "run.csv"), f"{path} changed since this run wrote it")
+        text = raw.decode("utf-8")
         comments = [line for line in text.splitlines() if line.startswith("#")]
         rows = _csv_rows(text)
         if not header_done:
@@ -127,7 +165,9 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
     if home_csv and header_done:
         csv.writer(buf, lineterminator="\n").writerows(["", *row] for row in _csv_rows(home_csv)[1:])
     if header_done:
-        write_text_atomic(out / "run.csv", buf.getvalue())
+        text = buf.getvalue()
+        check_joint_file_text(text, cell, str(out / "run.csv"))
+        write_text_atomic(out / "run.csv", text)
 
 
 def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple = (), order: str = "nearest",
@@ -143,7 +183,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     photos = photos_in(folder)
     if not photos:
         raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
-    state = _load_state(out, folder, cell) if resume else None      # a damaged state is said before any work
+    state = _load_state(out, folder, cell, stored) if resume else None      # a damaged state is said before any work
     arm = Arm.from_config(cell.arm)
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
@@ -156,15 +196,19 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 raise GripsightError(f"--emptied: no bin '{name}' in the cell")
             state["bins"][name] = 0
     else:
-        _state_path(out).unlink(missing_ok=True)
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],
                  "joints_deg": np.degrees(planner.home_rad).tolist(), "t_s": 0.0,
-                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale}
+                 "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale,
+                 "calibration_sha256": getattr(stored, "sha256", None), "photo_sha256": {}}
+        # the new run's state replaces the old one in one step (never deleted first, never lost)
+        write_text_atomic(_state_path(out), strict_json(state, indent=1))
+    remove_leftover_temps(out)
     result = RunResult()
     try:
         for photo in photos:
             if photo.name in state["done"]:
                 continue
+            state.setdefault("photo_sha256", {})[photo.name] = _file_sha256(photo)
             room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
             try:
                 pp = plan_photo(photo, cell, stored, planner, start_joints_rad=np.radians(state["joints_deg"]),
@@ -180,6 +224,9 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 continue
             data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored)
             summary = _summary(photo.name, pp, data)
+            joints = child_folder(out, photo.name) / "joints.csv"
+            if pp.plan is not None and joints.is_file():       # written (and checked) just now by this run
+                state.setdefault("joints_sha256", {})[photo.name] = _sha256(joints.read_bytes())
             if pp.plan is not None:
                 for pick in pp.plan.picks:
                     state["bins"][pick.bin_name] = state["bins"].get(pick.bin_name, 0) + 1
@@ -190,7 +237,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
             write_text_atomic(_state_path(out), strict_json(state, indent=1))
             if progress is not None:
                 progress(photo, summary)
-            full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check == "bin_full"]
+            full = [o for o in (pp.plan.parts if pp.plan else []) if o.rejection and o.rejection.check is Check.BIN_FULL]
             if full:
                 name = full[0].bin_name
                 result.stopped = (f"bin '{name}' is full (capacity {cell.bins[name].capacity}); empty it, then resume "
@@ -222,8 +269,8 @@ def _summary(name: str, pp, data: dict) -> dict:
             picked[pick.class_name] = picked.get(pick.class_name, 0) + 1
         for o in pp.plan.parts:
             if o.rejection is not None:
-                rejected[o.rejection.check] = rejected.get(o.rejection.check, 0) + 1
-    return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action,
+                rejected[o.rejection.label] = rejected.get(o.rejection.label, 0) + 1
+    return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action.value,
             "message": pp.message, "picked": picked, "rejected": rejected,
             "cycle_s": 0.0 if pp.plan is None else round(sum(p.duration_s for p in pp.plan.picks), 3),
             "warnings": list(pp.analysis.warnings or [])}

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markerdict import aruco_dictionary
 
 __all__ = ["PAPER_MM", "write_marker_sheet", "page_layout"]
 
@@ -22,14 +22,14 @@ _FOOTER_MM = 28.0
 def page_layout(cell, paper: str) -> list[list[tuple[int, float, float]]]:
     """Pages of (marker id, left mm, top mm) for each marker's paper square (size + 2 margins)."""
     width, height = PAPER_MM[paper]
-    cell_mm = cell.markers.size_mm + 2 * cell.markers.margin_mm
+    cell_mm = max(_marker_paper_mm(cell, None), _marker_paper_mm(cell, cell.markers.on_gripper))
     cols = max(1, int((width - 2 * _PAGE_MARGIN_MM + _GAP_MM) // (cell_mm + _GAP_MM)))
     rows = max(1, int((height - 2 * _PAGE_MARGIN_MM - _FOOTER_MM + _GAP_MM) // (cell_mm + _LABEL_MM + _GAP_MM)))
     if cell_mm > width - 2 * _PAGE_MARGIN_MM or cell_mm + _LABEL_MM > height - 2 * _PAGE_MARGIN_MM - _FOOTER_MM:
         from gripsight.app.errors import GripsightError
 
         raise GripsightError(f"markers.size_mm: a {cell_mm:g} mm marker with its margin does not fit on {paper} paper")
-    ids = sorted(cell.markers.layout)
+    ids = sorted(cell.markers.layout) + ([cell.markers.on_gripper.id] if cell.markers.on_gripper else [])
     per_page = cols * rows
     pages = []
     for start in range(0, len(ids), per_page):
@@ -40,6 +40,13 @@ def page_layout(cell, paper: str) -> list[list[tuple[int, float, float]]]:
                          _PAGE_MARGIN_MM + r * (cell_mm + _LABEL_MM + _GAP_MM)))
         pages.append(page)
     return pages
+
+
+def _marker_paper_mm(cell, gripper) -> float:
+    """Side of a marker's paper (black square and margins): a table marker's, or the gripper marker's."""
+    if gripper is None:
+        return cell.markers.size_mm + 2 * cell.markers.margin_mm
+    return gripper.size_mm + 2 * gripper.margin_mm
 
 
 def _draw_page(fig, cell, paper, page, page_no, n_pages):
@@ -53,7 +60,10 @@ def _draw_page(fig, cell, paper, page, page_no, n_pages):
     ax.axis("off")
     size, margin = cell.markers.size_mm, cell.markers.margin_mm
     dictionary = aruco_dictionary(cell.markers.dictionary)
+    gripper = cell.markers.on_gripper
     for marker_id, left, top in page:
+        on_gripper = gripper is not None and marker_id == gripper.id and marker_id not in cell.markers.layout
+        size, margin = (gripper.size_mm, gripper.margin_mm) if on_gripper else (cell.markers.size_mm, cell.markers.margin_mm)
         bits = dictionary.markerSize + 2
         cells = cv2.aruco.generateImageMarker(dictionary, int(marker_id), bits, borderBits=1)
         cell_mm = size / bits
@@ -65,12 +75,16 @@ def _draw_page(fig, cell, paper, page, page_no, n_pages):
                 if cells[r, c] < 128:
                     ax.add_patch(patches.Rectangle((x0 + c * cell_mm, y0 + r * cell_mm), cell_mm, cell_mm,
                                                    fc="black", ec="black", lw=0.05))
-        placement = cell.markers.layout[marker_id]
-        label = f"id {marker_id}  ({placement.x:g}, {placement.y:g}) mm"
-        if placement.yaw_deg:
-            label += f"  yaw {placement.yaw_deg:g}°"
-        if placement.z:
-            label += f"  on a {placement.z:g} mm riser"
+        if on_gripper:
+            f, left_mm, up = gripper.offset_mm
+            label = f"id {marker_id}  on the gripper, ({f:g}, {left_mm:g}, {up:g}) mm from the tool"
+        else:
+            placement = cell.markers.layout[marker_id]
+            label = f"id {marker_id}  ({placement.x:g}, {placement.y:g}) mm"
+            if placement.yaw_deg:
+                label += f"  yaw {placement.yaw_deg:g}°"
+            if placement.z:
+                label += f"  on a {placement.z:g} mm riser"
         ax.text(left + (size + 2 * margin) / 2, top + size + 2 * margin + 2.0, label, ha="center", va="top", fontsize=6.5)
         ax.annotate("", xy=(x0 + size / 2, y0 - 0.5 * margin + 1.5), xytext=(x0 + size / 2, y0 - 1.0),
                     arrowprops=dict(arrowstyle="-|>", lw=0.4, color="0.5"))
@@ -84,7 +98,7 @@ def _draw_page(fig, cell, paper, page, page_no, n_pages):
             "This bar must measure exactly 100 mm. Measure it after printing; if it does not, print again at "
             "100 % ('actual size').", fontsize=7, va="top")
     ax.text(_PAGE_MARGIN_MM, bar_y + 9.0,
-            f"{cell.cell}: {cell.markers.dictionary}, black square {size:g} mm. Lay each marker with the small "
+            f"{cell.cell}: {cell.markers.dictionary}, black square {cell.markers.size_mm:g} mm. Lay each marker with the small "
             "arrow (top edge) toward +x, its centre at the given table coordinates.", fontsize=6, va="top")
     ax.text(width - _PAGE_MARGIN_MM, _PAGE_MARGIN_MM / 2, f"page {page_no}/{n_pages}", ha="right", fontsize=6)
 

@@ -9,9 +9,11 @@ error is the distance from the detected footprint centre (where the arm goes) to
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy as np
 
+from gripsight.vision.parts import PartStatus
 from gripsight.vision.polygon import points_in_polygon
 
 __all__ = ["TruthComparison", "compare_with_truth", "MATCH_MM"]
@@ -74,8 +76,8 @@ def compare_with_truth(parts, truth: dict, work_area=None) -> TruthComparison:
     centres = np.array([p["centre_mm"] for p in truth_parts], float).reshape(-1, 2)
     matched = set()
     for d in parts:
-        reported = d.status in ("ok", "unknown_colour")
-        s.reported_ok += d.status == "ok"
+        reported = PartStatus(d.status).pickable
+        s.reported_ok += d.status == PartStatus.OK
         if not len(centres):
             s.false_parts += reported
             continue
@@ -85,15 +87,21 @@ def compare_with_truth(parts, truth: dict, work_area=None) -> TruthComparison:
             s.false_parts += reported
             continue
         t = truth_parts[j]
-        if t["known_class"] and d.status == "ok" and d.class_name == t["class"] and j not in matched:
+        if t["known_class"] and d.status == PartStatus.OK and d.class_name == t["class"] and j not in matched:
             if inside[j]:
                 matched.add(j)
                 s.errors_mm.append(float(dist[j]))
             else:
                 s.reported_ok -= 1        # a part across the work-area edge counts neither way
-        if not t["known_class"] and d.status == "unknown_colour":
+        if not t["known_class"] and d.status == PartStatus.UNKNOWN_COLOUR:
             s.unknown_found += 1
     s.expected = sum(1 for p, ok in zip(truth_parts, inside) if p["known_class"] and ok)
     s.found = len(matched)
     s.unknown_expected = sum(1 for p in truth_parts if not p["known_class"])
     return s
+
+
+def truth_path(photo: Path) -> Path:
+    """``demo/demo_01.jpg`` -> ``demo/demo_01.truth.yaml``: the truth file that may sit beside a photo."""
+    photo = Path(photo)
+    return photo.with_name(photo.stem + ".truth.yaml")

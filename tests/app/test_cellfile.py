@@ -76,6 +76,8 @@ BROKEN = [
      "motion.home_deg.shoulder: 170 is outside the joint limits [0, 150]"),
     ("marker id not in dictionary", _mutate(["markers", "layout", 9], _DELETE).replace("  layout:\n", "  layout:\n    77: {x: 300, y: 0}\n"),
      "markers.layout.77: id 77 does not exist in aruco_4x4_50"),
+    ("unknown marker dictionary", _mutate(["markers", "dictionary"], "aruco_4x4_60"),
+     "markers.dictionary: must be one of 'aruco_4x4_50', 'aruco_4x4_100'"),
     ("bin without class", _mutate(["bins", "purple"], {"x": 1, "y": 2}), "bins.purple: no part class 'purple'"),
     ("yaml syntax error", "cell: x\narm: {upper_arm_mm: 150\nmarkers: [\n", "line "),
     ("duplicate key", "cell: a\ncell: b\n", "line 2, column 1: YAML error: duplicate key 'cell'"),
@@ -129,6 +131,15 @@ def test_validate_ok_summary(capsys):
     out = capsys.readouterr().out
     assert out.startswith("ok: print-farm-token-sorter: parallel arm 150+160 mm, 9 markers (1 raised)")
     assert "reach at grip height z=6 mm: r 118.1-351.0 mm" in out
+
+
+@pytest.mark.parametrize("name", ["aruco_mip_36h12", "aruco_7x7_1000", "apriltag_36h11"])
+def test_every_opencv_dictionary_accepted_by_name(tmp_path, name):
+    """Issue 19: a dictionary OpenCV predefines (cv2.aruco.DICT_ARUCO_MIP_36h12, DICT_7X7_1000) is a valid
+    cell; ids are checked against its size."""
+    path = tmp_path / "cell.yaml"
+    path.write_text(_mutate(["markers", "dictionary"], name))
+    assert main(["validate", str(path)]) == 0
 
 
 @pytest.mark.parametrize("change, key, fragment", [

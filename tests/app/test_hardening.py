@@ -236,8 +236,8 @@ def test_random_cells_emit_only_checked_samples(linkage, upper, fore, base_h, se
     cell = parse_cell(data)
     try:
         planner = Planner(cell)
-    except (CellFileError, CellProblems) as exc:            # a bin or the home pose out of reach: said before planning
-        assert all(p.where.startswith(("bins.", "motion.home_deg")) for p in exc.problems)
+    except (CellFileError, CellProblems) as exc:            # a bin, the home pose or a class out of reach: said before planning
+        assert all(p.where.startswith(("bins.", "motion.home_deg", "parts.")) for p in exc.problems)   # parts.<class>.height_mm: cannot be carried
         return
     rng = np.random.default_rng(seed)
     entries = [{"class": str(rng.choice(list(cell.parts))), "x_mm": float(rng.uniform(-50, 450)),
@@ -364,7 +364,7 @@ def test_a_second_batch_on_the_same_folder_refuses(tmp_path, capsys):
     first.wait()
     assert code == 1
     assert re.search(r"another gripsight command \(pid \d+\) is writing here", err)
-    assert first.returncode == 0 and not (out / ".gripsight.lock").exists()
+    assert first.returncode == 0      # the lock file stays; the kernel's lock on it ended with the process
 
 
 @pytest.mark.parametrize("name", ["../../etc/passwd", "/abs/photo.jpg", "..", ".", "a/../../b.jpg", "x\\..\\..\\y.jpg"])

@@ -60,7 +60,7 @@ def test_a_thin_wall_between_link_test_points_is_found():
     cell = parse_cell(data)
     plan = Planner(cell).plan(parse_parts([{"id": "a", "class": "red", "x_mm": 180, "y_mm": 0}], cell))
     rej = plan.parts[0].rejection
-    assert rej is not None and rej.check == "keep_out:wall" and rej.segment == "descend"
+    assert rej is not None and rej.label == "keep_out:wall" and rej.segment == "descend"
     assert rej.detail.startswith("forearm enters zone 'wall' at (")
     x, y, z = (float(v) for v in rej.detail.split("at (")[1].split(")")[0].split(","))
     assert 140 <= x <= 142 and abs(y) <= 60 and 120 <= z <= 150
@@ -82,4 +82,4 @@ def test_a_zone_is_still_tested_when_a_later_sample_cannot_be_reached(sample_cel
     seg = SampledSegment(Segment(SegmentKind.DESCEND, None, xyz[0]), 0.02, np.array([0.0, 0.02]), xyz, q,
                          np.array([Reason.OK, Reason.OUT_OF_REACH], dtype=np.int8))
     rej = first_failure(ctx, seg, t0_s=1.0)
-    assert rej.check == "keep_out:jig" and rej.time_s == pytest.approx(1.0)
+    assert rej.label == "keep_out:jig" and rej.time_s == pytest.approx(1.0)

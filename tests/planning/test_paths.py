@@ -52,7 +52,10 @@ def test_trapezoid_profile():
     assert np.all(np.diff(s) >= 0)
     assert v.max() == pytest.approx(1.5)
     assert np.abs(a).max() == pytest.approx(4.5)
-    assert 1.5**2 / 4.5 <= 1.0
+    # the three phases of the published form: accelerate over tau <= v/a = 1/3, cruise, decelerate
+    cruise = (tau > 1 / 3 + 1e-6) & (tau < 2 / 3 - 1e-6)
+    assert np.all(a[cruise] == 0) and np.allclose(v[cruise], 1.5)
+    np.testing.assert_allclose(a[tau < 1 / 3 - 1e-6], 4.5)
     # integral of v is s (trapezoid rule), and s is continuous at the corners
     np.testing.assert_allclose(np.concatenate([[0], np.cumsum((v[1:] + v[:-1]) / 2 * np.diff(tau))]), s, atol=1e-9)
 

@@ -13,7 +13,7 @@ import pytest
 import yaml
 
 from gripsight.planning.arm import Arm, Reason
-from gripsight.planning.checks import CheckContext, first_failure
+from gripsight.planning.checks import Check, CheckContext, first_failure
 from gripsight.app.cli import main
 from gripsight.app.cellfile import load_cell, parse_cell
 from gripsight.planning.errors import CellProblems
@@ -169,7 +169,7 @@ def test_part_on_keep_out_zone_is_rejected(tmp_path):
                                            {"id": "b", "class": "red", "x_mm": 250, "y_mm": 100}], cell))
     by_id = {o.part.id: o for o in plan.parts}
     assert by_id["a"].status == "rejected"
-    assert by_id["a"].rejection.check == "keep_out:feeder"
+    assert by_id["a"].rejection.label == "keep_out:feeder"
     assert by_id["a"].rejection.segment == "descend"
     assert by_id["b"].status == "planned"
 
@@ -206,7 +206,7 @@ def test_joint_speed_check_names_joint_and_value(sample_cell):
     seg = SampledSegment(Segment(SegmentKind.TRANSFER, None, pts[0]), 0.02, np.array([0, 0.02]), pts, q,
                          np.zeros(2, dtype=np.int8))
     rej = first_failure(ctx, seg, t0_s=3.0)
-    assert rej.check == "joint_speed:base"
+    assert rej.label == "joint_speed:base"
     assert rej.value == pytest.approx(250.0) and rej.limit == 240
     assert rej.describe() == "joint_speed:base: base 250.0 deg/s > 240 deg/s (transfer at t=3.02 s)"
 
@@ -337,7 +337,7 @@ def test_slow_joints_stretch_the_moves_instead_of_rejecting_parts():
     parts = parse_parts(SIX_REACHABLE_TWO_NOT, slow_cell)
     slow = Planner(slow_cell).plan(parts)
     assert [o.status for o in slow.parts].count("planned") == 6
-    assert not any(o.rejection and o.rejection.check.startswith("joint_speed") for o in slow.parts)
+    assert not any(o.rejection and o.rejection.check is Check.JOINT_SPEED for o in slow.parts)
     q = slow.samples.joints_rad
     step = np.diff(slow.samples.t_s)
     moving = step > 0

@@ -25,12 +25,14 @@ from dataclasses import dataclass
 
 import cv2
 import numpy as np
+from pydantic import BaseModel
 
 from gripsight.vision.camera import Camera
 from gripsight.vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.markerdict import aruco_dictionary
 from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.synth.scene import ResolvedPart, Scene, make_camera, resolve_parts
+from gripsight.vision.synth.surfaces import BUSY_PX_PER_MM, Surface, busy_texture
 
 __all__ = ["Rendered", "render_scene", "encode_photo"]
 
@@ -266,7 +268,24 @@ def _illumination_field(shape, lighting, cam, K_canvas) -> np.ndarray:
     r2_u, r2_v = (u / half_w) ** 2, (v / half_w) ** 2
     field = 1.0 + lighting.gradient * (ramp_u[None, :] + ramp_v[:, None]) \
         - lighting.vignette * 0.5 * (r2_u[None, :] + r2_v[:, None])
-    return np.clip(field, 0.05, None).astype(np.float32)
+    field = np.clip(field, 0.05, None).astype(np.float32)
+    if lighting.spot_radius_mm is not None:
+        field *= _spot_field(shape, lighting, cam, K_canvas)
+    return field
+
+
+def _spot_field(shape, lighting, cam, K_canvas) -> np.ndarray:
+    """A spot light's falloff on the table: 1 within about its radius of its centre, then down to the
+    floor (1 / (1 + (r / radius)^4) between them), from a coarse grid of table points."""
+    h, w = shape
+    step = 16
+    gv, gu = np.mgrid[0:h + step:step, 0:w + step:step].astype(float)
+    xy = _apply_h(np.linalg.inv(_plane_homography(cam, K_canvas, 0.0)), np.column_stack([gu.ravel(), gv.ravel()]))
+    centre = np.array(lighting.spot_centre_mm if lighting.spot_centre_mm is not None else cam.centre_mm[:2])
+    r = np.linalg.norm(xy - centre, axis=1) / lighting.spot_radius_mm
+    falloff = lighting.spot_floor + (1 - lighting.spot_floor) / (1 + r ** 4)
+    coarse = falloff.reshape(gv.shape).astype(np.float32)
+    return cv2.resize(coarse, (coarse.shape[1] * step, coarse.shape[0] * step), interpolation=cv2.INTER_LINEAR)[:h, :w]
 
 
 def render_scene(cell, scene: Scene) -> Rendered:
@@ -275,7 +294,7 @@ def render_scene(cell, scene: Scene) -> Rendered:
     rng = np.random.default_rng(scene.table_seed)
     parts = resolve_parts(scene, cell)
     K_canvas, (wc, hc), map_x, map_y = _lens_map(cam)
-    canvas = _table(cam, K_canvas, (hc, wc), rng, scene.table_lab or _TABLE_LAB)
+    canvas = _table(cam, K_canvas, (hc, wc), rng, scene.table_lab or _TABLE_LAB, Surface(scene.surface))
     for marker_id, m in cell.markers.layout.items():
         if m.z == 0:
             _draw_marker(canvas, cam, K_canvas, cell, marker_id, m)
@@ -291,16 +310,40 @@ def render_scene(cell, scene: Scene) -> Rendered:
         canvas *= (1.0 - scene.lighting.shadow * mask)[..., None]
     for s in sorted(solids, key=lambda s: -np.linalg.norm(s.centre - cam.centre_mm)):
         _draw_solid(canvas, cam, K_canvas, s, light, scene.lighting.ambient, cell)
+    if scene.gripper_marker is not None:
+        _draw_gripper(canvas, cam, K_canvas, cell, scene.gripper_marker, light, scene.lighting.ambient)
     gains = np.array(scene.lighting.white_balance, np.float32)[::-1] * scene.lighting.brightness   # BGR order below
     canvas = canvas[..., ::-1] * _illumination_field((hc, wc), scene.lighting, cam, K_canvas)[..., None] * gains
     fine = cv2.remap(np.ascontiguousarray(canvas, dtype=np.float32), map_x, map_y, cv2.INTER_LINEAR,
                      borderMode=cv2.BORDER_REPLICATE)
     linear = cv2.resize(fine, (cam.width_px, cam.height_px), interpolation=cv2.INTER_AREA)
+    if scene.sensor.blur_px > 0:
+        linear = cv2.GaussianBlur(linear, (0, 0), scene.sensor.blur_px)
     image = _sensor(linear, scene.sensor, rng)
-    return Rendered(image, cam, _truth(cell, scene, cam, parts))
+    truth = _truth(cell, scene, cam, parts)
+    if scene.gripper_marker is not None:
+        truth["gripper_marker"] = _gripper_truth(cam, scene.gripper_marker)
+    return Rendered(image, cam, truth)
 
 
-def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB) -> np.ndarray:
+def _draw_gripper(canvas, cam, K_canvas, cell, spec, light, ambient):
+    from gripsight.vision.synth.gripper import draw_gripper_marker, marker_axes
+
+    ex, ey = marker_axes(spec.yaw_deg, spec.pitch_deg)
+    draw_gripper_marker(canvas, cam, K_canvas, cell.markers.dictionary, spec, _warp_into,
+                        _shade(np.cross(ex, ey), light, ambient))
+
+
+def _gripper_truth(cam, spec) -> dict:
+    from gripsight.vision.synth.gripper import gripper_marker_corners_mm
+
+    corners = gripper_marker_corners_mm(spec)
+    return {"id": spec.id, "centre_mm": [float(v) for v in spec.centre_mm],
+            "centre_px": cam.project(np.asarray(spec.centre_mm, float)[None])[0].round(4).tolist(),
+            "corners_px": cam.project(corners).round(4).tolist(), "in_view": bool(cam.in_view(corners).all())}
+
+
+def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB, surface: Surface = Surface.PLYWOOD) -> np.ndarray:
     hc, wc = shape
     H0 = _plane_homography(cam, K_canvas, 0.0)
     corners = np.array([[0, 0], [wc, 0], [wc, hc], [0, hc]], float)
@@ -310,6 +353,12 @@ def _table(cam, K_canvas, shape, rng, base_lab=_TABLE_LAB) -> np.ndarray:
     res = _TEXTURE_PX_PER_MM
     th, tw = int((x1 - x0) * res) + 1, int((y1 - y0) * res) + 1
     texture = _table_texture(rng, (th, tw), base_lab)
+    if surface != Surface.PLYWOOD:
+        # finer, on its own random stream (drawn from the photo's)
+        res = BUSY_PX_PER_MM
+        th, tw = int((x1 - x0) * res) + 1, int((y1 - y0) * res) + 1
+        plain = cv2.resize(texture, (tw, th), interpolation=cv2.INTER_LINEAR)
+        texture = busy_texture(surface, np.random.default_rng(rng.integers(0, 2**63)), (th, tw), plain)
     A = np.array([[0, 1 / res, x0], [1 / res, 0, y0], [0, 0, 1.0]])    # texture (col, row) -> table (x, y)
     return cv2.warpPerspective(texture, H0 @ A, (wc, hc), flags=cv2.INTER_LINEAR, borderMode=cv2.BORDER_REFLECT)
 
@@ -358,6 +407,23 @@ def _truth(cell, scene: Scene, cam: Camera, parts: list[ResolvedPart]) -> dict:
     return {"gripsight": "render-truth", "cell": cell.cell,
             "image": {"width_px": cam.width_px, "height_px": cam.height_px},
             "camera": cam.as_dict(),
-            "lighting": scene.lighting.model_dump(), "sensor": scene.sensor.model_dump(),
+            "lighting": _record(scene.lighting), "sensor": _record(scene.sensor),
             "table_seed": scene.table_seed, "markers": markers, "parts": truth_parts,
-            "scene": scene.model_dump(by_alias=True)}
+            "scene": _record(scene)}
+
+
+_LATER_OPTIONS = ("surface", "blur_px", "spot_radius_mm", "spot_centre_mm", "spot_floor", "gripper_marker")
+
+
+def _record(model) -> dict:
+    """A scene or its part as plain data for the truth file; options added later are written only when
+    they are not at their defaults, so the truth of a scene that does not use them reads as it always
+    did (and the committed sample set stays byte for byte)."""
+    record = model.model_dump(by_alias=True, mode="json")
+    for key in _LATER_OPTIONS:
+        if key in record and getattr(model, key) == type(model).model_fields[key].default:
+            record.pop(key)
+    for key, value in record.items():
+        if isinstance(getattr(model, key, None), BaseModel):
+            record[key] = _record(getattr(model, key))
+    return record

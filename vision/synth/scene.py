@@ -6,6 +6,7 @@ A scene file (YAML) for ``gripsight render CELL --scene scene.yaml``::
     lighting: {brightness: 1.0, white_balance: [1, 1, 1], gradient: 0.15}
     sensor:   {noise: 1.5, jpeg_quality: 92}
     table_seed: 0
+    surface: plywood          # or wood_grain, cutting_mat, printed_text, checker_cloth
     parts:
       - {id: t1, class: red, x_mm: 200, y_mm: 10, yaw_deg: 15}           # size, height, shape from the cell
       - {id: t2, class: odd, lab: [55, 65, -25], shape: cylinder, size_mm: [30], height_mm: 14, x_mm: 250, y_mm: -60}
@@ -24,6 +25,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from gripsight.vision.camera import Camera
 from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.polygon import points_in_polygon
+from gripsight.vision.synth.surfaces import Surface
 
 __all__ = ["Scene", "ScenePart", "ResolvedPart", "resolve_parts", "make_camera", "random_scene",
            "marker_paper_corners_mm"]
@@ -60,11 +62,15 @@ class LightingSpec(_Model):
     ambient: Annotated[float, Field(ge=0, le=1)] = 0.35
     shadow: Annotated[float, Field(ge=0, le=0.9)] = 0.45
     shadow_blur_mm: Annotated[float, Field(ge=0, le=30)] = 3.0
+    spot_radius_mm: Positive | None = None     # a spot light: full light within about this radius ...
+    spot_centre_mm: Annotated[list[Number], Field(min_length=2, max_length=2)] | None = None   # ... of here
+    spot_floor: Annotated[float, Field(ge=0.05, le=1)] = 0.3   # light far outside the spot, as a fraction
 
 
 class SensorSpec(_Model):
     noise: Annotated[float, Field(ge=0, le=30)] = 1.5          # Gaussian sigma, 8-bit levels
     jpeg_quality: Annotated[int, Field(ge=30, le=100)] = 92
+    blur_px: Annotated[float, Field(ge=0, le=5)] = 0.0         # Gaussian lens/focus blur, sigma in photo px
 
 
 class ScenePart(_Model):
@@ -81,6 +87,18 @@ class ScenePart(_Model):
     model_config = ConfigDict(extra="forbid", allow_inf_nan=False, populate_by_name=True)
 
 
+class GripperMarkerSpec(_Model):
+    """A marker held by the gripper (drawn last, over everything): centre in table mm, yaw about z,
+    pitch of its top edge (see :mod:`vision.synth.gripper`)."""
+
+    id: Annotated[int, Field(ge=0)]
+    size_mm: Positive
+    margin_mm: Annotated[float, Field(ge=0, le=50)] = 5.0
+    centre_mm: Annotated[list[Number], Field(min_length=3, max_length=3)]
+    yaw_deg: Number = 0.0
+    pitch_deg: Annotated[float, Field(ge=-80, le=80)] = 0.0
+
+
 class Scene(_Model):
     camera: CameraSpec = CameraSpec()
     lighting: LightingSpec = LightingSpec()
@@ -89,6 +107,8 @@ class Scene(_Model):
     table_lab: Annotated[list[Number], Field(min_length=3, max_length=3)] | None = None   # bench colour
     parts: list[ScenePart] = []
     base_disc: bool = True            # draw the arm's base as a dark cylinder at the table origin
+    surface: Surface = Surface.PLYWOOD   # the bench under the markers (vision/synth/surfaces.py)
+    gripper_marker: GripperMarkerSpec | None = None
 
 
 @dataclass(frozen=True)
@@ -164,7 +184,8 @@ def make_camera(spec: CameraSpec, cell) -> Camera:
 
 def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 8), touching: bool = False,
                  unknown_lab: list[float] | None = None, camera: CameraSpec | None = None,
-                 lighting: LightingSpec | None = None, sensor: SensorSpec | None = None) -> Scene:
+                 lighting: LightingSpec | None = None, sensor: SensorSpec | None = None,
+                 surface: Surface = Surface.PLYWOOD) -> Scene:
     """A random valid scene: parts of the cell's classes spread over the work area without overlaps,
     optionally two same-class boxes touching face to face and one part of an unknown colour."""
     classes = list(cell.parts)
@@ -185,7 +206,7 @@ def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 
     if touching:
         box_classes = [c for c in classes if cell.parts[c].shape == "box"] or classes
         cls = str(rng.choice(box_classes))
-        fp = list(cell.parts[cls].footprint_mm) * (2 if len(cell.parts[cls].footprint_mm) == 1 else 1)
+        fp = list(cell.parts[cls].length_width_mm)
         for _ in range(200):
             x, y = rng.uniform(min(xs), max(xs)), rng.uniform(min(ys), max(ys))
             yaw = float(rng.uniform(-90, 90))
@@ -218,4 +239,5 @@ def random_scene(cell, rng: np.random.Generator, n_parts: tuple[int, int] = (4, 
     for i, p in enumerate(parts):
         p["id"] = f"t{i + 1}"
     return Scene(camera=camera or CameraSpec(), lighting=lighting or LightingSpec(), sensor=sensor or SensorSpec(),
-                 table_seed=int(rng.integers(0, 2**31 - 1)), parts=[ScenePart.model_validate(p) for p in parts])
+                 table_seed=int(rng.integers(0, 2**31 - 1)), parts=[ScenePart.model_validate(p) for p in parts],
+                 surface=Surface(surface))

@@ -30,6 +30,8 @@ def render(
     vary: bool = typer.Option(False, "--vary", help="Random light, white balance, noise and lens per scene."),
     touching: bool = typer.Option(False, "--touching", help="Put two touching tokens in every scene."),
     unknown: bool = typer.Option(False, "--unknown", help="Put one token of an unknown colour in every scene."),
+    hard: bool = typer.Option(False, "--hard", help="Unkind scenes: spot light with hard shadows, warm dim light from one side, wood grain or a busy table, orange/purple/white-card distractors, a token next to a marker, a class colour in the other shape."),
+    surface: Optional[str] = typer.Option(None, "--surface", help="Table: plywood, wood_grain, cutting_mat, printed_text or checker_cloth."),
     fmt: str = typer.Option("jpg", "--format", help="jpg or png."),
 ):
     """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
@@ -41,8 +43,13 @@ def render(
     from gripsight.vision.synth.render import render_scene
     from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
 
+    from gripsight.vision.synth.hard import add_hard_parts, hard_conditions
+    from gripsight.vision.synth.surfaces import Surface
+
     if fmt not in ("jpg", "png"):
         raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
+    if surface is not None and surface not in {s.value for s in Surface}:
+        raise GripsightError(f"--surface: expected one of {', '.join(s.value for s in Surface)}, got '{surface}'")
     cfg = load_cell(cell)
     if sample_set:
         total = 53
@@ -87,15 +94,23 @@ def render(
             if vary:
                 lighting, sensor, lens = _varied_conditions(rng)
                 cam.update(lens)
+            table = Surface(surface) if surface else Surface.PLYWOOD
+            if hard:
+                conditions = hard_conditions(rng, Surface(surface) if surface else None)
+                lighting, sensor, table = conditions["lighting"], conditions["sensor"], conditions["surface"]
             sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
-                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor)
+                              camera=CameraSpec(**cam), lighting=lighting, sensor=sensor, surface=table)
+            if hard:
+                sc = add_hard_parts(sc, cfg, rng)
             write_photo(out / f"render_{seed}_{i:03d}.{fmt}", render_scene(cfg, sc), sc.sensor.jpeg_quality)
             bar.advance(task)
     typer.echo(f"wrote {scenes} photos with truth files under {out}")
 
 
 def _lens_for(cfg, image_size=None):
-    if cfg.camera.lens != "file":
+    from gripsight.vision.settings import LensMode
+
+    if cfg.camera.lens != LensMode.FILE:
         return None
     from gripsight.vision.lens import load_opencv_lens
 
@@ -103,10 +118,6 @@ def _lens_for(cfg, image_size=None):
     if not path.is_absolute() and cfg.source_path:
         path = Path(cfg.source_path).parent / path
     return load_opencv_lens(path, image_size)
-
-
-def _default_calibration(cell_path: Path) -> Path:
-    return cell_path.parent / "calibration.yaml"
 
 
 @command()
@@ -123,23 +134,27 @@ def calibrate(
 
     from gripsight.app.cellfile import load_cell
     from gripsight.app.fileio import strict_json, write_bytes_atomic
-    from gripsight.app.calfile import calibration_record, write_calibration
+    from gripsight.app.calfile import calibration_record, default_calibration_path, write_calibration
     from gripsight.vision.calibration import calibrate as fit
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.overlay import calibration_overlay
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
-    out = out or _default_calibration(cell_path)
+    out = out or default_calibration_path(cfg)
     overlay = overlay or out.with_name(out.stem + "_overlay.png")
     for path, what in ((out, "--out"), (overlay, "--overlay")):
         if path.is_dir():
             raise GripsightError(f"{path}: is a folder; give {what} a file name")
+    check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
     try:
-        cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
+        cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo),
+                  lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
     except CalibrationError as exc:
         raise CalibrationError(f"{exc} (wrong cell file, or a photo of another cell?)") from None
     previous = _previous(out)
@@ -205,6 +220,8 @@ def _refuse_poor(cal, out: Path, previous, force: bool, photo, cell_path) -> Non
 
 
 def _print_calibration(cal, out, overlay, moved, layout_ids=()) -> None:
+    from gripsight.vision.calibration import MarkerRole
+
     from rich.console import Console
     from rich.table import Table
 
@@ -223,13 +240,13 @@ def _print_calibration(cal, out, overlay, moved, layout_ids=()) -> None:
     for note in cal.notes:
         console.print(f"note: {note}")
     c = cal.camera_centre_mm
-    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.replace('_', ' ')}")
+    console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.value.replace('_', ' ')}")
     console.print(f"verdict: {cal.verdict}: RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm "
                   f"over {len(cal.used)} markers")
     if cal.verdict == "poor":
         console.print("warning: this calibration is poor: part positions will be off; take a sharper photo with "
                       "every marker in view and calibrate again")
-    moved_markers = [m for m in cal.markers if m.reason.startswith("moved")]
+    moved_markers = [m for m in cal.markers if m.role is MarkerRole.MOVED]
     for m in moved_markers:
         console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
                       "where the cell file says, or update its position")
@@ -248,15 +265,19 @@ def check(
 ):
     """Has the camera moved since calibration? Exit 0 if ok, 3 if moved."""
     from gripsight.app.cellfile import load_cell
-    from gripsight.app.calfile import read_calibration
+    from gripsight.app.calfile import default_calibration_path, read_calibration
     from gripsight.app.fileio import strict_json
-    from gripsight.vision.drift import check_drift
+    from gripsight.vision.drift import DriftVerdict, check_drift
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, photo)
     cfg = load_cell(cell_path)
-    stored = read_calibration(calibration or _default_calibration(cell_path))
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "the calibration file": calibration or default_calibration_path(cfg)})
+    stored = read_calibration(calibration or default_calibration_path(cfg))
     from gripsight.app.pipeline import check_calibration_fits_cell, check_photo_fits_calibration
 
     check_calibration_fits_cell(stored, cfg)
@@ -278,11 +299,13 @@ def check(
         typer.echo(strict_json(dict(report.as_dict(), photo=str(photo), calibration=stored.path)))
     else:
         _print_drift(report, photo, cell_path)
-    if report.verdict == "moved":
+    if report.verdict is DriftVerdict.MOVED:
         raise typer.Exit(3)
 
 
 def _print_drift(report, photo, cell_path) -> None:
+    from gripsight.vision.drift import DriftVerdict
+
     from rich.console import Console
     from rich.table import Table
 
@@ -299,5 +322,5 @@ def _print_drift(report, photo, cell_path) -> None:
         console.print(f"work-area mapping moved by max {report.grid_max_mm:.2f} mm, mean {report.grid_mean_mm:.2f} mm "
                       f"(tolerance {report.tolerance_mm:g} mm)")
     console.print(f"verdict: {report.verdict}")
-    if report.verdict == "moved":
+    if report.verdict is DriftVerdict.MOVED:
         console.print(f"recalibrate with: gripsight calibrate {photo} --cell {cell_path}")

@@ -69,6 +69,9 @@ def reach(
     from gripsight.planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
     from gripsight.app.reach_plot import draw_reach
 
+    from gripsight.app.outpaths import check_output_paths
+
+    check_output_paths(files={"--out": out}, inputs={"the cell file": cell})
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
     with atomic_output(out) as tmp:
@@ -101,5 +104,7 @@ def markers(
         raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
     cfg = load_cell(cell)
     paths = write_marker_sheet(cfg, out, paper, dpi)
+    grip = cfg.markers.on_gripper
+    extra = "" if grip is None else f" and gripper marker {grip.id} ({grip.size_mm:g} mm)"
     typer.echo(f"wrote {', '.join(map(str, paths))}: {len(cfg.markers.layout)} markers, "
-               f"{cfg.markers.size_mm:g} mm; print at 100 % and check the 100 mm scale bar")
+               f"{cfg.markers.size_mm:g} mm{extra}; print at 100 % and check the 100 mm scale bar")

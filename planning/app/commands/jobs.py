@@ -30,7 +30,12 @@ def detect(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.errors import GripsightError
 
-    cfg = load_cell(_find_cell(cell, photo))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo)
+    cfg = load_cell(cell_path)
+    check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
+                                                              "--calibration": calibration})
     if sample is not None:
         _sample_colour(photo, cfg, sample)
         return
@@ -48,7 +53,7 @@ def detect(
         image = detection_overlay(result.image, det, result.registration.mapping,
                                   result.registration.camera_centre_mm, cfg)
         write_bytes_atomic(overlay, cv2.imencode(".png", image)[1].tobytes())
-    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action,
+    data = {"gripsight": "detect", "photo": str(photo), "registration": result.registration.action.value,
             "registration_note": result.registration.message,
             "drift": None if result.registration.drift is None else result.registration.drift.as_dict(),
             "white_balance": None if det.illumination is None else det.illumination.as_dict(),
@@ -61,6 +66,8 @@ def detect(
     from rich.console import Console
     from rich.table import Table
 
+    from gripsight.vision.parts import PartStatus
+
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     if result.registration.message and result.registration.message not in result.warnings:
         console.print(f"note: {result.registration.message}")
@@ -68,7 +75,7 @@ def detect(
     for col in ("id", "class", "x mm", "y mm", "yaw", "size mm", "ΔE", "status"):
         table.add_column(col, justify="right" if col not in ("id", "class", "status") else "left")
     for p in det.parts:
-        status = p.status if p.status == "ok" else f"{p.status}: {p.reason}"
+        status = p.status.value if p.status is PartStatus.OK else f"{p.status.value}: {p.reason}"
         table.add_row(p.id, p.class_name, f"{p.xy_mm[0]:.1f}", f"{p.xy_mm[1]:.1f}", f"{p.yaw_deg:.0f}",
                       f"{p.length_mm:.0f}x{p.width_mm:.0f}", "" if p.delta_e != p.delta_e else f"{p.delta_e:.1f}", status)
     console.print(table)
@@ -82,7 +89,7 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     """Print the white-balanced CIELAB (median of a 7x7 window) at a pixel and the nearest class."""
     import numpy as np
 
-    from gripsight.vision.colour import delta_e_2000
+    from gripsight.vision.pixelclass import class_distance
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
     from gripsight.vision.whitebalance import fit_illumination, lab_image
@@ -100,9 +107,10 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     lab = np.median(patch, axis=0)
     typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
                + ("" if ill is not None else " (no marker paper seen: not white-balanced)"))
-    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(delta_e_2000(lab, kv[1].lab))):
-        d = float(delta_e_2000(lab, cls.lab))
-        typer.echo(f"  {name}: dE2000 {d:.1f} (tolerance {cls.tolerance:g}){'  <- match' if d < cls.tolerance else ''}")
+    for name, cls in sorted(cfg.parts.items(), key=lambda kv: float(class_distance(lab, kv[1].lab))):
+        d = float(class_distance(lab, cls.lab))
+        typer.echo(f"  {name}: dE2000 {d:.1f} (lightness weighed half; tolerance {cls.tolerance:g})"
+                   f"{'  <- match' if d < cls.tolerance else ''}")
 
 
 @command()
@@ -132,9 +140,14 @@ def plan(
         raise UsageError(f"--order: expected 'nearest' or 'detected', got '{order}'")
     if (photo is None) == (parts is None):
         raise UsageError("plan: give either a PHOTO or --parts FILE (one of the two)")
-    cfg = load_cell(_find_cell(cell, photo if photo is not None else parts))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, photo if photo is not None else parts)
+    cfg = load_cell(cell_path)
     if out is None:             # never one shared ./out that each plan overwrites: a folder per input
         out = Path(f"{Path(photo if photo is not None else parts).stem}_plan")
+    check_output_paths(folders={"--out": out}, inputs={"the photo": photo, "--parts": parts, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     arm = Arm.from_config(cfg.arm)
     planner = Planner(cfg, arm, speed_scale=speed_scale)
     if parts is not None:
@@ -165,6 +178,8 @@ def plan(
 def _print_plan_summary(data: dict, out: Path) -> None:
     from rich.console import Console
     from rich.table import Table
+
+    from gripsight.vision.parts import PartStatus
 
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
@@ -208,11 +223,18 @@ def run(
     from rich.console import Console
     from rich.table import Table
 
+    from gripsight.vision.parts import PartStatus
+
     from gripsight.app.pipeline import load_or_make_calibration
     from gripsight.app.cellfile import load_cell
     from gripsight.app.run import photos_in, run_folder
 
-    cfg = load_cell(_find_cell(cell, folder))
+    from gripsight.app.outpaths import check_output_paths
+
+    cell_path = _find_cell(cell, folder)
+    cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
@@ -271,15 +293,27 @@ def batch(
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
 
+    from gripsight.app.outpaths import check_output_paths
+
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
+    check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
+                                                       "--calibration": calibration})
     n = len(photos_in(folder))
-    with output_lock(output_dir(out), "batch"), _progress() as bar:
-        task = bar.add_task("batch", total=n)
-        rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                         progress=lambda row: bar.advance(task), resume=resume,
-                         warn=lambda text: bar.console.print(f"warning: {text}", soft_wrap=True))
-        totals = write_batch_tables(out, rows, cfg)
+    from gripsight.app.batch import BatchInterrupted
+
+    try:
+        with output_lock(output_dir(out), "batch"), _progress() as bar:
+            task = bar.add_task("batch", total=n)
+            rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
+                             progress=lambda row: bar.advance(task), resume=resume,
+                             warn=lambda text: bar.console.print(f"warning: {text}", soft_wrap=True))
+            totals = write_batch_tables(out, rows, cfg)
+    except KeyboardInterrupt as exc:
+        done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
+        typer.echo(f"interrupted{done}; every finished photo's row and outputs are kept in {out}; resume with: "
+                   f"gripsight batch {folder} --out {out} --resume", err=True)
+        raise typer.Exit(130) from None
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)
@@ -288,6 +322,8 @@ def batch(
 def _print_batch(rows, totals, out) -> None:
     from rich.console import Console
     from rich.table import Table
+
+    from gripsight.vision.parts import PartStatus
 
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title="batch", title_justify="left")

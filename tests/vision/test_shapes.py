@@ -1,0 +1,103 @@
+"""Classes by colour and shape: colour groups, and blobs of one colour told apart by their outline."""
+
+from __future__ import annotations
+
+import copy
+from types import SimpleNamespace
+
+import cv2
+import numpy as np
+import pytest
+
+from gripsight.app.cellfile import parse_cell
+from gripsight.app.pipeline import targets_from_detection
+from gripsight.planning.picks import Planner
+from gripsight.vision.colour import delta_e_2000
+from gripsight.vision.shapes import colour_groups
+from gripsight.vision.synth.render import encode_photo, render_scene
+from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, ScenePart, SensorSpec, random_scene
+from tests.conftest import sample_cell_data
+from tests.vision.evaluation import Score, detect_with_own_calibration, score
+
+
+def _two_shape_cell(extra: dict | None = None):
+    """The demo cell with a second red class: a 30 mm disc 14 mm high of the red cube's colour."""
+    data = copy.deepcopy(sample_cell_data())
+    red = data["parts"]["red"]
+    data["parts"]["red_disc"] = {"lab": list(red["lab"]), "tolerance": red["tolerance"], "height_mm": 14,
+                                 "shape": "cylinder", "footprint_mm": [30]}
+    data["bins"]["red_disc"] = {"x": 150, "y": 240}
+    data["parts"].update(extra or {})
+    return parse_cell(data)
+
+
+def test_colour_groups_join_classes_of_one_colour_only():
+    demo = parse_cell(sample_cell_data())
+    assert [g.members for g in colour_groups(demo.parts).values()] == [("red",), ("blue",), ("green",), ("yellow",)]
+    # CIEDE2000 from red: 5.98 (under half its tolerance of 20: one colour) and 21.72 (another colour; 15.61
+    # from the near one), as colour-science computes them (colour.delta_E, method 'CIE 2000')
+    near, far = [52, 60, 42], [70, 60, 42]
+    assert float(delta_e_2000(np.array([46.0, 60, 42]), np.array(near, float))) == pytest.approx(5.98042, abs=1e-4)
+    assert float(delta_e_2000(np.array([46.0, 60, 42]), np.array(far, float))) == pytest.approx(21.72448, abs=1e-4)
+    classes = dict(_two_shape_cell().parts)
+    classes["red_near"] = SimpleNamespace(lab=near, tolerance=20.0)
+    classes["red_far"] = SimpleNamespace(lab=far, tolerance=20.0)
+    groups = colour_groups(classes)
+    assert groups["red+red_disc+red_near"].members == ("red", "red_disc", "red_near")
+    assert groups["red_far"].members == ("red_far",)
+
+
+def _photo(cell, scene):
+    r = render_scene(cell, scene)
+    image = cv2.imdecode(np.frombuffer(encode_photo(r.image_bgr, ".jpg", scene.sensor.jpeg_quality), np.uint8), 1)
+    return image, r.truth
+
+
+def test_cube_and_disc_of_one_colour_go_to_their_own_classes():
+    cell = _two_shape_cell()
+    rng = np.random.default_rng(1501)
+    total = Score()
+    for i in range(5):
+        cam = CameraSpec(tilt_deg=float(rng.uniform(0, 2.5)), tilt_azimuth_deg=float(rng.uniform(0, 360)),
+                         centre_mm=[float(rng.uniform(185, 220)), float(rng.uniform(-15, 15)), float(rng.uniform(700, 800))])
+        light = LightingSpec(light_azimuth_deg=float(rng.uniform(0, 360)), light_elevation_deg=float(rng.uniform(45, 80)))
+        scene = random_scene(cell, rng, n_parts=(6, 9), touching=i % 2 == 1, camera=cam, lighting=light,
+                             sensor=SensorSpec(noise=1.5, jpeg_quality=90))
+        image, truth = _photo(cell, scene)
+        detection, _ = detect_with_own_calibration(image, cell)
+        total = total.add(score(detection.parts, truth, cell.work_area))
+    reds = sum(p.class_name in ("red", "red_disc") for p in scene.parts)
+    assert reds >= 1
+    # a part counts only with its right class (tests.vision.evaluation): a disc taken for a cube is a miss
+    assert total.recall >= 0.98 and total.false_parts == 0
+    assert total.rms_mm <= 0.5
+
+
+def test_a_part_of_a_class_colour_and_no_class_shape_is_rejected():
+    cell = _two_shape_cell()
+    red = list(cell.parts["red"].lab)
+    parts = [ScenePart.model_validate(p) for p in (
+        {"id": "cube", "class": "red", "x_mm": 150, "y_mm": -60, "yaw_deg": 20},
+        {"id": "disc", "class": "red_disc", "x_mm": 250, "y_mm": -60},
+        {"id": "odd", "class": "odd", "lab": red, "shape": "box", "size_mm": [36, 12], "height_mm": 14,
+         "x_mm": 200, "y_mm": 70, "yaw_deg": 30})]
+    image, _ = _photo(cell, Scene(camera=CameraSpec(centre_mm=[200, 0, 760]), parts=parts))
+    detection, _ = detect_with_own_calibration(image, cell)
+    by_place = {(round(p.xy_mm[0] / 10), round(p.xy_mm[1] / 10)): p for p in detection.parts}
+    assert by_place[(15, -6)].class_name == "red" and by_place[(15, -6)].status == "ok"
+    assert by_place[(25, -6)].class_name == "red_disc" and by_place[(25, -6)].status == "ok"
+    odd = by_place[(20, 7)]
+    assert (odd.class_name, odd.status) == ("unknown", "unknown_shape")
+    assert "red, red_disc" in odd.reason
+    target = next(t for t in targets_from_detection(detection, cell) if t.id == odd.id)
+    assert Planner(cell).bin_for(target) == "reject"
+
+
+def test_class_colours_weigh_lightness_half():
+    # CIEDE2000 with kL = 2: colour-science's delta_E(method="CIE 2000", textiles=True) gives 6.99528 for
+    # this pair (13.76636 with kL = 1): a part in shade, 16 darker, stays within a tolerance of 12
+    from gripsight.vision.pixelclass import class_distance
+
+    lab, ref = np.array([30.0, 55, 40]), np.array([46.0, 60, 42])
+    assert float(class_distance(lab, ref)) == pytest.approx(6.99528, abs=1e-4)
+    assert float(delta_e_2000(lab, ref)) == pytest.approx(13.76636, abs=1e-4)

@@ -1,0 +1,109 @@
+"""Whether a decoded marker candidate is a printed marker: evidence a false candidate cannot have.
+
+OpenCV's detector decodes any dark quadrilateral whose thresholded inside happens to match a code
+(a cutting-mat cell with a printed number, a black label with white letters). A printed marker shows
+more than that, and each is read here on the linearised image through the refined corners:
+
+1. **cells read back with a margin**: every cell, averaged over its middle (a 3 x 3 grid at +-0.25
+   cell), is placed between the ink level (median of the border cells) and the white level (median of
+   the cells the id's pattern says are white). A cell is *decided* when its level is at least
+   :data:`DECIDED_MARGIN` from 0.5; no decided cell may contradict the id's pattern, and at most
+   :data:`MAX_UNDECIDED` (plus one per 16 bits beyond 16) may be undecided;
+2. **the border is ink**: every border cell below 0.5 (decided or not);
+3. **the quiet zone is paper**: a ring of samples half a cell outside the black square, one beside
+   each border cell, reads at least :data:`RING_LEVEL` of the way from ink to white on nearly all of
+   them (a cutting-mat cell is ringed by a thin grid line and the next dark cell);
+4. **contrast**: white minus ink at least 8 % of white (a flat smudge decodes to nothing real).
+
+The cell file's layout, duplicate ids and the size a calibration predicts are checked by the caller.
+"""
+
+from __future__ import annotations
+
+import functools
+import warnings
+from dataclasses import dataclass
+
+import cv2
+import numpy as np
+
+from gripsight.vision.markerdict import aruco_dictionary
+from gripsight.vision.markeredges import sample_image
+
+__all__ = ["MarkerEvidence", "marker_evidence", "DECIDED_MARGIN", "MAX_UNDECIDED", "RING_LEVEL"]
+
+DECIDED_MARGIN = 0.12       # a cell is decided when its level is this far from 0.5 (0 ink, 1 white)
+MAX_UNDECIDED = 2           # undecided cells allowed in a 16-bit code
+RING_LEVEL = 0.45           # quiet-zone samples must read at least this (0 ink, 1 white)
+RING_FRACTION = 0.85        # ... on at least this fraction of the ring
+
+
+@dataclass(frozen=True)
+class MarkerEvidence:
+    """Per candidate (arrays of length M): cells contradicting the pattern, undecided cells, the
+    fraction of the quiet-zone ring that reads as paper, the contrast (white - ink) / white, and whether
+    the candidate is accepted as a printed marker."""
+
+    wrong_cells: np.ndarray
+    undecided_cells: np.ndarray
+    ring_fraction: np.ndarray
+    contrast: np.ndarray
+    accepted: np.ndarray
+
+
+@functools.lru_cache(maxsize=256)
+def _pattern(dictionary_name: str, marker_id: int) -> np.ndarray:
+    """The marker's cells, border included ((n + 2)^2, True where ink), in its image's orientation."""
+    d = aruco_dictionary(dictionary_name)
+    return (d.generateImageMarker(marker_id, d.markerSize + 2) < 128).ravel()
+
+
+@functools.lru_cache(maxsize=8)
+def _grid(n: int):
+    """Sample points in cell units: 9 per cell over each cell's middle ((n * n * 9, 2)), then the ring
+    half a cell outside ((4 n, 2)); and which cells are border cells (n * n,)."""
+    centres = np.arange(n) + 0.5
+    sub = np.array([-0.25, 0.0, 0.25])
+    cy, cx, sy, sx = np.meshgrid(centres, centres, sub, sub, indexing="ij")
+    cells = np.column_stack([(cx + sx).ravel(), (cy + sy).ravel()])
+    ring = np.concatenate([np.column_stack([centres, np.full(n, -0.5)]), np.column_stack([centres, np.full(n, n + 0.5)]),
+                           np.column_stack([np.full(n, -0.5), centres]), np.column_stack([np.full(n, n + 0.5), centres])])
+    border = np.zeros((n, n), bool)
+    border[[0, -1], :] = border[:, [0, -1]] = True
+    return np.concatenate([cells, ring]).astype(np.float32), border.ravel()
+
+
+def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> MarkerEvidence:
+    """Read the evidence for M candidates with corners (M, 4, 2) (OpenCV's order) and decoded ``ids``
+    from ``lin``, the linearised photo (or patches of it, with each candidate's ``offsets_px`` (M, 2))."""
+    corners = np.asarray(corners_px, float).reshape(-1, 4, 2)
+    m = len(corners)
+    n = aruco_dictionary(dictionary_name).markerSize + 2
+    local, border = _grid(n)
+    square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
+    pts = np.stack([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
+                    for c in corners]) if m else np.zeros((0, len(local), 2), np.float32)
+    if offsets_px is not None:
+        pts = pts + np.asarray(offsets_px, np.float32)[:, None, :]
+    values = sample_image(lin, pts[..., 0], pts[..., 1])                          # (M, K)
+    cells = values[:, : n * n * 9].reshape(m, n * n, 9).mean(axis=-1)
+    ring = values[:, n * n * 9:]
+    expected = np.array([_pattern(dictionary_name, int(i)) for i in ids]).reshape(m, n * n)
+    ink = np.median(cells[:, border], axis=1)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)          # a code with no white cell: nan, refused
+        white = np.nanmedian(np.where(~expected, cells, np.nan), axis=1) if m else np.zeros(0)
+    white = np.nan_to_num(white, nan=-1.0)
+    span = np.where(white - ink > 1e-6, white - ink, 1e-6)
+    level = (cells - ink[:, None]) / span[:, None]
+    decided = np.abs(level - 0.5) >= DECIDED_MARGIN
+    wrong = (decided & ((level < 0.5) != expected)).sum(axis=1)
+    undecided = (~decided).sum(axis=1)
+    border_ink = ((level < 0.5) | ~border[None]).all(axis=1)
+    ring_level = (ring - ink[:, None]) / span[:, None]
+    ring_fraction = (ring_level >= RING_LEVEL).mean(axis=1)
+    contrast = (white - ink) / np.maximum(white, 1e-6)
+    bits = (n - 2) ** 2
+    allowed = MAX_UNDECIDED + max(0, bits - 16) // 16
+    accepted = (wrong == 0) & (undecided <= allowed) & border_ink & (ring_fraction >= RING_FRACTION) & (contrast >= 0.08)
+    return MarkerEvidence(wrong, undecided, ring_fraction, contrast, accepted)
