@@ -146,9 +146,6 @@ def calibrate(
     cfg = load_cell(cell_path)
     out = out or default_calibration_path(cfg)
     overlay = overlay or out.with_name(out.stem + "_overlay.png")
-    for path, what in ((out, "--out"), (overlay, "--overlay")):
-        if path.is_dir():
-            raise GripsightError(f"{path}: is a folder; give {what} a file name")
     check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
