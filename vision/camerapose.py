@@ -69,7 +69,8 @@ def centre_for_height(mapping, image_size, height_mm: float) -> np.ndarray:
 
     from scipy.optimize import least_squares     # 0.5 s to import: only when fitting
 
-    f = least_squares(residual, [_focal_guess(mapping, pp, height_mm)], x_scale=[100.0]).x[0]
+    f = least_squares(residual, [max(_focal_guess(mapping, pp, height_mm), 2.0)], x_scale=[100.0],
+                      bounds=([1.0], [np.inf])).x[0]      # a focal length is positive (markers that fit no pinhole)
     return pose_for_focal(mapping, pp, float(f))[1]
 
 
@@ -88,5 +89,6 @@ def centre_from_raised(mapping, image_size, corners_px: np.ndarray, corners_mm: 
 
     from scipy.optimize import least_squares
 
-    f = least_squares(residual, [_focal_guess(mapping, pp, height_guess_mm)], x_scale=[100.0]).x[0]
+    f = least_squares(residual, [max(_focal_guess(mapping, pp, height_guess_mm), 2.0)], x_scale=[100.0],
+                      bounds=([1.0], [np.inf])).x[0]      # a focal length is positive (markers that fit no pinhole)
     return pose_for_focal(mapping, pp, float(f))[1]

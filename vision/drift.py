@@ -18,7 +18,7 @@ from enum import StrEnum
 
 import numpy as np
 
-from gripsight.vision.calibration import Calibration, CalibrationError, CentreSource, calibrate
+from gripsight.vision.calibration import Calibration, CalibrationError, CentreSource, Verdict, calibrate
 from gripsight.vision.settings import LensMode, OnMove
 from gripsight.vision.markers import MarkerDetection
 from gripsight.vision.polygon import points_in_polygon
@@ -178,6 +178,11 @@ def register(stored, detections, cell, image_size, photo: str = "photo") -> Regi
     if report.refit is None:
         return Registration(RegistrationAction.REFUSED, None, None, report, f"{moved}, and this photo cannot be refitted: "
                                                            f"{report.notes[0] if report.notes else ''}")
+    if report.refit.verdict is Verdict.POOR:
+        return Registration(RegistrationAction.REFUSED, None, None, report,
+                            f"{moved}, and this photo's markers do not fit the cell file's layout (refit RMS "
+                            f"{report.refit.rms_mm:.1f} mm): wrong cell file, or a photo of another cell? Nothing "
+                            "planned; check the cell file, or recalibrate if markers were moved on purpose")
     centre = report.refit.camera_centre_mm if report.refit.centre_source is not CentreSource.ASSUMED else stored.camera_centre_mm
     return Registration(RegistrationAction.REFIT, report.refit.mapping, centre, report,
                         f"{moved}; refitted from this photo's markers (RMS {report.refit.rms_mm:.3f} mm)")

@@ -114,25 +114,41 @@ def lens_from_dict(d: dict | None):
     raise ValueError(f"lens.model: expected none, division or opencv, got {d['model']!r}")
 
 
-def load_opencv_lens(path) -> OpenCVLens:
+def load_opencv_lens(path, image_size: tuple[int, int] | None = None) -> OpenCVLens:
     """Read OpenCV intrinsics from YAML: ``camera_matrix`` (3x3 list or OpenCV's {rows, cols, data})
-    and ``distortion_coefficients`` (list or {data}); also accepts ``K`` and ``dist``."""
+    and ``distortion_coefficients`` (list or {data}); also accepts ``K`` and ``dist``.
+
+    When the file gives ``image_width`` and ``image_height`` (as OpenCV's calibration sample writes) and
+    ``image_size`` (width, height px) differs: the same aspect ratio scales the camera matrix (a photo
+    resized by the camera; the distortion coefficients are in normalised coordinates and stay), another
+    aspect ratio (a crop) is refused."""
     import yaml
 
     from gripsight.vision.errors import LensFileError
 
+    from pathlib import Path
+
+    if Path(path).exists() and not Path(path).is_file():
+        raise LensFileError(f"{path}: not a regular file; camera.lens_file must name OpenCV's intrinsics YAML")
     try:
+        if Path(path).stat().st_size > 1024 * 1024:
+            raise LensFileError(f"{path}: too large for a lens file (OpenCV's intrinsics YAML is a few hundred bytes)")
         with open(path, encoding="utf-8") as fh:
             text = fh.read()
     except OSError as exc:
-        raise LensFileError(f"{path}: cannot read the lens file ({exc.strerror})") from None
+        raise LensFileError(f"{path}: cannot read the lens file ({exc.strerror}); check camera.lens_file") from None
+    except UnicodeDecodeError:
+        raise LensFileError(f"{path}: not a YAML lens file (not UTF-8 text)") from None
     if text.startswith("%YAML"):
         text = "\n".join(line for line in text.splitlines() if not line.startswith("%YAML"))
         text = text.replace("!!opencv-matrix", "")
     try:
         data = yaml.safe_load(text) or {}
-    except yaml.YAMLError as exc:
-        raise LensFileError(f"{path}: not a YAML lens file ({exc})") from None
+    except (yaml.YAMLError, RecursionError) as exc:
+        raise LensFileError(f"{path}: not a YAML lens file ({str(exc).splitlines()[0] if str(exc) else 'too deep'})") from None
+    if not isinstance(data, dict):
+        raise LensFileError(f"{path}: not a lens file: needs camera_matrix (3x3) and distortion_coefficients "
+                            "(OpenCV's intrinsics YAML)")
 
     def matrix(value, shape):
         if isinstance(value, dict) and "data" in value:
@@ -145,7 +161,20 @@ def load_opencv_lens(path) -> OpenCVLens:
         dist = matrix(data.get("distortion_coefficients", data.get("dist")), None)
     except (TypeError, ValueError):
         raise LensFileError(f"{path}: needs camera_matrix (3x3) and distortion_coefficients") from None
-    if dist.size not in (4, 5, 8, 12, 14) or not np.isfinite(K).all() or K[0, 0] <= 0 or K[1, 1] <= 0:
+    if (dist.size not in (4, 5, 8, 12, 14) or not np.isfinite(K).all() or not np.isfinite(dist).all()
+            or K[0, 0] <= 0 or K[1, 1] <= 0):
         raise LensFileError(f"{path}: camera_matrix must be 3x3 with positive focal lengths and "
                              f"distortion_coefficients 4, 5, 8, 12 or 14 numbers")
+    made = (data.get("image_width"), data.get("image_height"))
+    if image_size is not None and all(isinstance(v, (int, float)) and v > 0 for v in made):
+        sx, sy = image_size[0] / made[0], image_size[1] / made[1]
+        if abs(sx / sy - 1) > 0.01:
+            raise LensFileError(f"{path}: made for {made[0]:g}x{made[1]:g} px photos, but the photo is "
+                                f"{image_size[0]}x{image_size[1]} px (another aspect ratio: a crop?); give the "
+                                "lens file of this camera mode")
+        if abs(sx - 1) > 1e-6:
+            K = K.copy()
+            K[0, :] *= sx
+            K[1, :] *= sy
+            K[2, :] = [0.0, 0.0, 1.0]
     return OpenCVLens(K, dist)

@@ -39,7 +39,7 @@ from gripsight.vision.colour import delta_e_2000
 from gripsight.vision.whitebalance import balanced_lab, white_gain
 
 __all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "class_distance", "coarse_mask",
-           "LIGHTNESS_WEIGHT_KL"]
+           "LIGHTNESS_WEIGHT_KL", "label_dtype"]
 
 _UNKNOWN_CHROMA = 30.0
 _UNKNOWN_FROM_TABLE = 25.0    # CIE76 from the table's median colour for an unknown part
@@ -106,10 +106,15 @@ def classify_pixels(lab: np.ndarray, classes: dict, background=None) -> tuple[np
     best = np.full(len(lab), np.inf, np.float32)
     np.minimum.at(best, pixel, d00)
     nearest = d00 == best[pixel]                          # per pixel, the nearest class
-    label = np.zeros(len(lab), np.uint8)
+    label = np.zeros(len(lab), label_dtype(len(classes)))
     label[pixel[nearest]] = which[nearest] + 1
     label[(label == 0) & _saturated(planes) & unlike_table] = len(classes) + 1
     return label, best
+
+
+def label_dtype(n_classes: int):
+    """The label image's type: class index + 1, 0 none and K + 1 unknown must fit (uint8 up to 253 classes)."""
+    return np.uint8 if n_classes + 1 <= np.iinfo(np.uint8).max else np.uint16
 
 
 def _candidates(planes, classes: dict, background) -> np.ndarray:
@@ -168,14 +173,14 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     candidate = _candidates(planes, classes, background) & valid_small
     near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
     n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)
-    label = np.zeros((h, w), np.uint8)
+    label = np.zeros((h, w), label_dtype(len(classes)))
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
         return ClassifiedRegion((u0, v0), label, delta_e, groups, [], f)
     # the candidates' classes at the coarse resolution; a block whose 4 neighbours all agree is inside
     # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
     cy, cx = np.nonzero(candidate)
-    coarse_label = np.zeros((hs, ws), np.uint8)
+    coarse_label = np.zeros((hs, ws), label_dtype(len(classes)))
     coarse_de = np.zeros((hs, ws), np.float32)
     coarse_label[cy, cx], coarse_de[cy, cx] = classify_pixels(lab_small[cy, cx], classes, background)
     kernel = cv2.getStructuringElement(cv2.MORPH_CROSS, (3, 3))

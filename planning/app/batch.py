@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from enum import Enum
 from pathlib import Path
 
-from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, write_text_atomic
 
 __all__ = ["BatchJob", "BatchInterrupted", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch",
            "write_batch_tables"]
@@ -86,7 +86,7 @@ def _process_photo(job: BatchJob) -> dict:
 
     name = Path(job.photo).name
     row = {"photo": name, "status": "error", "error": "", "registration": "", "drift": "", "parts": 0,
-           "found": {}, "planned": 0, "rejected": {}, "cycle_s": 0.0, "truth": None, "thumbnail": ""}
+           "found": {}, "planned": 0, "rejected": {}, "cycle_s": 0.0, "truth": None, "thumbnail": "", "warnings": []}
     try:
         from gripsight.app.pipeline import plan_photo
         from gripsight.app.photo_outputs import write_photo_outputs
@@ -95,7 +95,8 @@ def _process_photo(job: BatchJob) -> dict:
         pp = plan_photo(job.photo, cell, stored, planner)
         out = child_folder(job.out_dir, name)
         reg = pp.analysis.registration
-        row.update(registration=reg.action.value, drift="" if reg.drift is None else reg.drift.verdict.value)
+        row.update(registration=reg.action.value, drift="" if reg.drift is None else reg.drift.verdict.value,
+                   warnings=list(pp.analysis.warnings or []))
         if pp.plan is None:
             row.update(status="refused", error=pp.message)
         else:
@@ -127,7 +128,7 @@ def _process_photo(job: BatchJob) -> dict:
         cell, _, _, stored = _context(job.cell_path, job.calibration_path)
         row["cell_sha256"], row["calibration_sha256"] = cell.sha256, stored.sha256
     try:
-        write_text_atomic(child_folder(job.out_dir, name) / "row.json", json.dumps(row))   # what --resume reads
+        write_text_atomic(child_folder(job.out_dir, name) / "row.json", strict_json(row, indent=None))   # what --resume reads
     except (OSError, ValueError):
         pass
     return row
@@ -152,19 +153,49 @@ def _sha256(path) -> str:
         return ""
 
 
-def _finished_row(job: BatchJob, cell_sha256: str | None, calibration_sha256: str | None) -> dict | None:
+def _finished_row(job: BatchJob, cell_sha256: str | None, calibration_sha256: str | None, warn=None) -> dict | None:
     """The row a previous (interrupted) batch wrote for this photo, if the photo, the cell file and the
-    calibration file are byte for byte the ones it was made with (their SHA-256)."""
+    calibration file are byte for byte the ones it was made with (their SHA-256); a damaged row.json is
+    said through ``warn`` (a callable) and the photo is done again."""
     path = child_folder(job.out_dir, Path(job.photo).name) / "row.json"
+    if not path.is_file():
+        return None
     try:
-        row = json.loads(path.read_text())
-    except (OSError, ValueError):
+        row = json.loads(path.read_text(encoding="utf-8"), parse_constant=lambda c: float("nan"))
+        problem = _row_problem(row)
+    except (OSError, UnicodeDecodeError, ValueError) as exc:
+        problem = f"not JSON: {exc}"
+    if problem:
+        if warn is not None:
+            warn(f"{path}: damaged ({problem}); {Path(job.photo).name} is done again")
         return None
     if not isinstance(row, dict):
         return None
     same = (row.get("photo_sha256") == _sha256(job.photo) and row.get("cell_sha256") == cell_sha256
             and row.get("calibration_sha256") == calibration_sha256 and cell_sha256 is not None)
     return row if same else None
+
+
+def _row_problem(row) -> str:
+    """What is wrong with a row read back from row.json ('' if nothing)."""
+    import math
+
+    def count(v) -> bool:
+        return isinstance(v, int) and not isinstance(v, bool) and v >= 0
+
+    if not isinstance(row, dict):
+        return "not a JSON object"
+    for key, ok in (("photo", lambda v: isinstance(v, str)), ("status", lambda v: v in ("ok", "refused", "error")),
+                    ("error", lambda v: isinstance(v, str)), ("registration", lambda v: isinstance(v, str)),
+                    ("drift", lambda v: isinstance(v, str)), ("parts", count), ("planned", count),
+                    ("found", lambda v: isinstance(v, dict) and all(count(n) for n in v.values())),
+                    ("rejected", lambda v: isinstance(v, dict) and all(count(n) for n in v.values())),
+                    ("cycle_s", lambda v: isinstance(v, (int, float)) and math.isfinite(v) and v >= 0),
+                    ("truth", lambda v: v is None or isinstance(v, dict)), ("thumbnail", lambda v: isinstance(v, str)),
+                    ("warnings", lambda v: isinstance(v, list) and all(isinstance(x, str) for x in v))):
+        if key not in row or not ok(row[key]):
+            return f"'{key}' is missing or wrong"
+    return ""
 
 
 def _truth_stats(photo: str, pp, cell) -> dict | None:
@@ -200,7 +231,7 @@ def _thumbnail(image, job: BatchJob) -> str:
 
 
 def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, scheduler: str | None = None,
-              progress=None, resume: bool = False, pictures: Pictures = Pictures.SOME) -> list[dict]:
+              progress=None, resume: bool = False, pictures: Pictures = Pictures.SOME, warn=None) -> list[dict]:
     """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order.
     With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone."""
     from gripsight.app.run import photos_in
@@ -218,7 +249,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     rows: dict[str, dict] = {}
     if resume:
         for job in list(jobs):
-            row = _finished_row(job, cell.sha256, stored.sha256)
+            row = _finished_row(job, cell.sha256, stored.sha256, warn)
             if row is not None:
                 rows[row["photo"]] = row
                 jobs.remove(job)
@@ -378,7 +409,7 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
     reasons = sorted({r for row in rows for r in row["rejected"]})
     header = (["photo", "status", "error", "registration", "drift", "parts"] + [f"found_{c}" for c in classes]
               + ["planned", "rejected"] + [f"rejected_{r}" for r in reasons]
-              + ["cycle_s", "truth_recall", "truth_precision", "pick_error_rms_mm", "pick_error_max_mm"])
+              + ["cycle_s", "truth_recall", "truth_precision", "pick_error_rms_mm", "pick_error_max_mm", "warnings"])
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     w.writerow(header)
@@ -388,12 +419,12 @@ def write_batch_tables(out, rows: list[dict], cell) -> dict:
                    + [row["found"].get(c, 0) for c in classes]
                    + [row["planned"], sum(row["rejected"].values())] + [row["rejected"].get(r, 0) for r in reasons]
                    + [row["cycle_s"], t.get("recall", ""), t.get("precision", ""), t.get("pick_error_rms_mm", ""),
-                      t.get("pick_error_max_mm", "")])
+                      t.get("pick_error_max_mm", ""), "; ".join(row.get("warnings", []))])
     totals = _totals(rows)
     write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
     clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256", "cell_sha256", "calibration_sha256")}
              for r in rows]
-    write_text_atomic(Path(out) / "batch.json", json.dumps({"cell": cell.cell, "totals": totals, "photos": clean},
+    write_text_atomic(Path(out) / "batch.json", strict_json({"cell": cell.cell, "totals": totals, "photos": clean},
                                                            indent=1) + "\n")
     write_report(Path(out) / "report.html", rows, totals, cell)
     return totals
@@ -403,7 +434,11 @@ def _totals(rows: list[dict]) -> dict:
     totals = {"photos": len(rows), "ok": sum(r["status"] == "ok" for r in rows),
               "refused": sum(r["status"] == "refused" for r in rows), "errors": sum(r["status"] == "error" for r in rows),
               "parts": sum(r["parts"] for r in rows), "planned": sum(r["planned"] for r in rows),
-              "rejected": {}, "found": {}, "cycle_s": round(sum(r["cycle_s"] for r in rows), 3)}
+              "rejected": {}, "found": {}, "cycle_s": round(sum(r["cycle_s"] for r in rows), 3),
+              "warned": sum(bool(r.get("warnings")) for r in rows),
+              "camera_moved": sum(r["registration"] == "refit" for r in rows),
+              "markers_unseen": sum(any(w.startswith("markers not seen") for w in r.get("warnings", [])) for r in rows),
+              "poor_calibration": sum(any("is poor" in w for w in r.get("warnings", [])) for r in rows)}
     for r in rows:
         for k, v in r["rejected"].items():
             totals["rejected"][k] = totals["rejected"].get(k, 0) + v

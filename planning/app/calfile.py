@@ -59,8 +59,8 @@ class _Lens(_Model):
 class _Photo(_Model):
     path: str
     sha256: str
-    width_px: Annotated[int, Field(gt=0)]
-    height_px: Annotated[int, Field(gt=0)]
+    width_px: Annotated[int, Field(gt=0, le=100_000)]
+    height_px: Annotated[int, Field(gt=0, le=100_000)]
 
 
 class _File(_Model):
@@ -182,13 +182,39 @@ def read_calibration(path) -> StoredCalibration:
         parsed = _File.model_validate(data)
     except ValidationError as exc:
         raise CellFileError(str(path), _pydantic_problems(exc)) from None
-    H = np.array(parsed.H_table_from_pixel, float)
-    if abs(np.linalg.det(H)) < 1e-15:
-        raise CellFileError(str(path), [Problem("H_table_from_pixel", "is singular")])
-    try:
-        lens_from_dict(parsed.lens.model_dump())
-    except (KeyError, TypeError, ValueError) as exc:
-        raise CellFileError(str(path), [Problem("lens", f"invalid ({exc})")]) from None
+    problems = _content_problems(parsed)
+    if problems:
+        raise CellFileError(str(path), problems + [Problem("", "make a new one with `gripsight calibrate`")])
     stored = StoredCalibration(str(path), parsed)
     stored.sha256 = hashlib.sha256(raw).hexdigest()       # what a resumed run or batch compares
     return stored
+
+
+def _content_problems(parsed: _File) -> list[Problem]:
+    """What a schema cannot say: a homography that maps the photo, a usable lens, a camera above the table."""
+    out = []
+    H = np.array(parsed.H_table_from_pixel, float)
+    # a homography is invertible; a near-singular one (condition number past 1e12) maps the photo to a line
+    if abs(np.linalg.det(H)) < 1e-15 or np.linalg.cond(H) > 1e12:
+        out.append(Problem("H_table_from_pixel", "is singular (it maps the photo onto a line or a point)"))
+    lens = parsed.lens.model_dump()
+    try:
+        values = [v for k, v in lens.items() if k != "model"]
+        flat = np.concatenate([np.ravel(np.asarray(v, dtype=float)) for v in values]) if values else np.zeros(0)
+        if not np.isfinite(flat).all():
+            out.append(Problem("lens", "holds a value that is not a finite number"))
+        elif lens["model"] == "division":
+            if not float(lens["scale_px"]) > 0:
+                out.append(Problem("lens.scale_px", f"must be a positive number of pixels, got {lens['scale_px']}"))
+            if len(np.ravel(lens["centre_px"])) != 2:
+                out.append(Problem("lens.centre_px", "must be two numbers (u, v) px"))
+            if not abs(float(lens["lambda"])) < 10:
+                out.append(Problem("lens.lambda", f"{lens['lambda']} is not a lens's distortion (needs abs(lambda) < 10)"))
+        if not out:
+            lens_from_dict(lens)
+    except (KeyError, TypeError, ValueError) as exc:
+        out.append(Problem("lens", f"invalid ({exc})"))
+    z = parsed.camera_centre_mm[2]
+    if not z > 0:
+        out.append(Problem("camera_centre_mm", f"the camera must be above the table (z > 0 mm), got z = {z:g} mm"))
+    return out

@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import math
 import os
+import re
 from pathlib import Path
 from typing import Annotated, Literal
 
@@ -35,9 +36,21 @@ __all__ = [
     "starter_cell_text",
 ]
 
-Number = Annotated[float, Field(allow_inf_nan=False)]
-PositiveMm = Annotated[float, Field(gt=0, allow_inf_nan=False)]
-NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False)]
+#: the largest length or coordinate a tabletop cell can mean (100 m): 1e308 is a typo, and would overflow
+LIMIT_MM = 1.0e5
+#: the most part classes and markers a cell may list (the label image holds up to 65,534 classes)
+MAX_PART_CLASSES = 1000
+MAX_MARKERS = 1000
+#: the most samples one move may take (speed, joint speeds, dwell and sample rate together); beyond,
+#: a plan would need gigabytes: the cell is refused by validate rather than by the planner
+MAX_SAMPLES_PER_MOVE = 200_000
+
+Number = Annotated[float, Field(allow_inf_nan=False, ge=-LIMIT_MM, le=LIMIT_MM)]
+PositiveMm = Annotated[float, Field(gt=0, allow_inf_nan=False, le=LIMIT_MM)]
+NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False, le=LIMIT_MM)]
+# speeds: at least 1 mm/s or 1 deg/s (slower would take hours per move and millions of samples)
+SpeedMmS = Annotated[float, Field(ge=1, le=1.0e4, allow_inf_nan=False)]
+SpeedDegS = Annotated[float, Field(ge=1, le=1.0e4, allow_inf_nan=False)]
 Point2 = Annotated[list[Number], Field(min_length=2, max_length=2)]
 Point3 = Annotated[list[Number], Field(min_length=3, max_length=3)]
 
@@ -73,7 +86,7 @@ class MarkersConfig(_Model):
     size_mm: PositiveMm
     margin_mm: NonNegativeMm = 10.0
     paper_srgb: Annotated[float, Field(ge=100, le=255, allow_inf_nan=False)] = 232.0   # paper's grey level in a well-lit photo
-    layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1)
+    layout: dict[Annotated[int, Field(ge=0)], MarkerPlacement] = Field(min_length=1, max_length=MAX_MARKERS)
     on_gripper: GripperMarker | None = None
 
 
@@ -97,7 +110,7 @@ class ServoConfig(_Model):
 class JointConfig(_Model):
     min_deg: Number
     max_deg: Number
-    max_speed_deg_s: PositiveMm
+    max_speed_deg_s: SpeedDegS
     servo: ServoConfig
 
 
@@ -149,7 +162,7 @@ class ArmConfig(_Model):
 # ---------------------------------------------------------------- parts, bins, zones, motion
 class PartClass(_Model):
     lab: Point3
-    tolerance: PositiveMm = 18.0
+    tolerance: Annotated[float, Field(gt=0, le=100, allow_inf_nan=False)] = 18.0     # CIEDE2000
     height_mm: PositiveMm
     shape: Literal["box", "cylinder"] = "box"
     footprint_mm: Annotated[list[PositiveMm], Field(min_length=1, max_length=2)]
@@ -191,10 +204,10 @@ class MotionConfig(_Model):
     grip_depth_mm: NonNegativeMm = 12.0
     drop_z_mm: NonNegativeMm = 50.0
     floor_clearance_mm: NonNegativeMm = 2.0
-    speed_mm_s: PositiveMm = 150.0
+    speed_mm_s: SpeedMmS = 150.0
     time_scaling: Literal["cubic", "quintic", "trapezoid"] = "quintic"
-    sample_hz: Annotated[float, Field(gt=0, le=1000, allow_inf_nan=False)] = 50.0
-    dwell_s: NonNegativeMm = 0.4
+    sample_hz: Annotated[float, Field(ge=1, le=1000, allow_inf_nan=False)] = 50.0
+    dwell_s: Annotated[float, Field(ge=0, le=60, allow_inf_nan=False)] = 0.4
     home_deg: HomeConfig = HomeConfig()
 
 
@@ -204,7 +217,7 @@ class Cell(_Model):
     camera: CameraConfig = CameraConfig()
     work_area: Annotated[list[Point2], Field(min_length=3)]
     arm: ArmConfig
-    parts: dict[str, PartClass] = {}
+    parts: Annotated[dict[str, PartClass], Field(max_length=MAX_PART_CLASSES)] = {}
     bins: dict[str, BinConfig] = {}
     keep_out: list[KeepOutZone] = []
     motion: MotionConfig = MotionConfig()
@@ -250,6 +263,59 @@ def _polygon_area(points: list[list[float]]) -> float:
     for (x0, y0), (x1, y1) in zip(points, points[1:] + points[:1]):
         area += x0 * y1 - x1 * y0
     return 0.5 * area
+
+
+def _self_intersecting(points: list[list[float]]) -> bool:
+    """True if two edges of the closed polygon that do not share a corner cross or touch (orientation test)."""
+    import numpy as np
+
+    p = np.asarray(points, float)
+    a, b = p, np.roll(p, -1, axis=0)
+    n = len(p)
+
+    def orient(o, q, r):
+        return np.sign((q[..., 0] - o[..., 0]) * (r[..., 1] - o[..., 1]) - (q[..., 1] - o[..., 1]) * (r[..., 0] - o[..., 0]))
+
+    i, j = np.triu_indices(n, k=2)
+    keep = ~((i == 0) & (j == n - 1))                  # the first and last edges share a corner
+    i, j = i[keep], j[keep]
+    d1, d2 = orient(a[i], b[i], a[j]), orient(a[i], b[i], b[j])
+    d3, d4 = orient(a[j], b[j], a[i]), orient(a[j], b[j], b[i])
+    return bool(np.any((d1 * d2 < 0) & (d3 * d4 < 0)))
+
+
+def longest_move_samples(cell: Cell) -> tuple[float, float]:
+    """(seconds, samples) of the longest move the cell's motion settings allow: twice the arm's reach at
+    ``speed_mm_s``, a full turn of the slowest joint, and the dwell (an upper bound, used for limits)."""
+    arm, motion = cell.arm, cell.motion
+    reach_mm = abs(arm.shoulder_offset_mm) + arm.upper_arm_mm + arm.forearm_mm + arm.tool.reach_mm
+    slowest = min(getattr(arm.joints, n).max_speed_deg_s for n in ("base", "shoulder", "elbow"))
+    longest_s = 2 * reach_mm / motion.speed_mm_s + 360.0 / slowest + motion.dwell_s
+    return longest_s, longest_s * motion.sample_hz
+
+
+#: the most samples one plan may hold (moves of every part together), ~1 GB of arrays at most
+MAX_SAMPLES_PER_PLAN = 5_000_000
+
+
+def check_plan_size(n_parts: int, cell: Cell, source: str) -> None:
+    """Refuse, before planning, a plan whose samples could exceed MAX_SAMPLES_PER_PLAN (4 moves a part)."""
+    _, per_move = longest_move_samples(cell)
+    bound = 4 * max(n_parts, 1) * per_move
+    if bound > MAX_SAMPLES_PER_PLAN:
+        raise CellFileError(source, [Problem("", f"{n_parts} parts at these motion settings could take {bound:,.0f} "
+                                                 f"samples, more than {MAX_SAMPLES_PER_PLAN:,}; plan fewer parts at once "
+                                                 "or raise motion.speed_mm_s")])
+
+
+def _sample_problems(cell: Cell) -> list[Problem]:
+    """Refuse motion settings whose longest move would take more than MAX_SAMPLES_PER_MOVE samples."""
+    longest_s, samples = longest_move_samples(cell)
+    if samples > MAX_SAMPLES_PER_MOVE:
+        return [Problem("motion.sample_hz", f"the longest move (~{longest_s:,.0f} s) would take {samples:,.0f} samples, "
+                                            f"more than {MAX_SAMPLES_PER_MOVE:,}; raise motion.speed_mm_s or the joints' "
+                                            "max_speed_deg_s, or lower sample_hz or dwell_s")]
+    return []
 
 
 def _semantic_problems(cell: Cell) -> list[Problem]:
@@ -315,6 +381,9 @@ def _semantic_problems(cell: Cell) -> list[Problem]:
 
     if abs(_polygon_area(cell.work_area)) < 1.0:
         out.append(Problem("work_area", "the polygon has no area (points collinear or repeated)"))
+    elif _self_intersecting(cell.work_area):
+        out.append(Problem("work_area", "the polygon crosses itself; list its corners in order around it"))
+    out += _sample_problems(cell)
 
     for name, part in cell.parts.items():
         if not 0 <= part.lab[0] <= 100:
@@ -448,6 +517,12 @@ def _construct_mapping(loader, node, deep=False):
 
 
 _UniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+# YAML 1.2 numbers: PyYAML follows YAML 1.1, where `1e-9` (no dot) is a string; YAML 1.2's core schema
+# (yaml.org/spec/1.2.2, 10.3.2) reads it as a float, as users (and JSON) expect
+_UniqueKeyLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"))
 
 
 class _FastUniqueKeyLoader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):
@@ -458,14 +533,61 @@ class _FastUniqueKeyLoader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):
 _FastUniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
 
 
-def _load_yaml_text(text: str):
-    try:
-        return yaml.load(text, Loader=_FastUniqueKeyLoader)  # noqa: S506 - SafeLoader subclass
-    except (yaml.YAMLError, RecursionError):
-        return yaml.load(text, Loader=_UniqueKeyLoader)  # noqa: S506 - raises the error the user sees
+#: the largest YAML input read (a cell file with every comment is a few kB; parts files of 10,000 parts ~1 MB)
+MAX_YAML_BYTES = 4 * 1024 * 1024
+#: the most values a YAML input may hold once its aliases are expanded (a YAML "billion laughs" is refused)
+MAX_YAML_VALUES = 1_000_000
 
 
-def read_yaml(path: str | os.PathLike, what: str = "file"):
+def _expanded_size(root, limit: int) -> int:
+    """How many values the YAML node graph holds with every alias expanded (stops counting past ``limit``).
+
+    Each node's expanded size is computed once (memoised, iteratively so deep nesting cannot overflow the
+    stack): a graph of n nodes costs O(n) whatever its expansion.
+    """
+    size: dict[int, int] = {}
+    visiting: set[int] = set()
+    stack = [(root, False)]
+    while stack:
+        node, done = stack.pop()
+        if id(node) in size:
+            continue
+        if not done and id(node) in visiting:       # a recursive alias: a value inside itself
+            return limit + 1
+        children = []
+        if isinstance(node, yaml.SequenceNode):
+            children = node.value
+        elif isinstance(node, yaml.MappingNode):
+            children = [n for pair in node.value for n in pair]
+        if not done:
+            visiting.add(id(node))
+            stack.append((node, True))
+            stack.extend((c, False) for c in children if id(c) not in size)
+            continue
+        size[id(node)] = min(limit + 1, 1 + sum(size.get(id(c), 0) for c in children))
+    return size[id(root)]
+
+
+def _load_yaml_text(text: str, name: str):
+    """Compose the node graph (libyaml when it can; a file it refuses is read again by the pure-Python
+    loader, so every error message stays the same), refuse an alias bomb, then build the data."""
+    for loader_class in (_FastUniqueKeyLoader, _UniqueKeyLoader):
+        loader = loader_class(text)
+        try:
+            node = loader.get_single_node()
+            if node is not None and _expanded_size(node, MAX_YAML_VALUES) > MAX_YAML_VALUES:
+                raise CellFileError(name, [Problem("", f"its aliases (*name) expand to more than {MAX_YAML_VALUES:,} "
+                                                       "values; is it the right file?")])
+            return loader.construct_document(node) if node is not None else None
+        except (yaml.YAMLError, RecursionError):
+            if loader_class is _UniqueKeyLoader:
+                raise
+        finally:
+            loader.dispose()
+    return None
+
+
+def read_yaml(path: str | os.PathLike, what: str = "file", max_bytes: int = MAX_YAML_BYTES):
     """Read a YAML file with safe loading; return (data, raw bytes).
 
     Raises
@@ -479,7 +601,13 @@ def read_yaml(path: str | os.PathLike, what: str = "file"):
         raise CellFileError(name, [Problem("", f"no such {what}")])
     if path.is_dir():
         raise CellFileError(name, [Problem("", f"is a directory, not a {what}")])
+    if not path.is_file():
+        raise CellFileError(name, [Problem("", f"not a regular file (a pipe, device or socket); give a {what}")])
     try:
+        size = path.stat().st_size
+        if size > max_bytes:
+            raise CellFileError(name, [Problem("", f"{size:,} bytes is too large for a {what} "
+                                                   f"(at most {max_bytes:,}); is it the right file?")])
         raw = path.read_bytes()
     except OSError as exc:
         raise CellFileError(name, [Problem("", f"cannot be read ({exc.strerror})")]) from None
@@ -488,7 +616,7 @@ def read_yaml(path: str | os.PathLike, what: str = "file"):
     except UnicodeDecodeError:
         raise CellFileError(name, [Problem("", "is not UTF-8 text (is it a YAML file?)")]) from None
     try:
-        data = _load_yaml_text(text)
+        data = _load_yaml_text(text, name)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         where = f"line {mark.line + 1}, column {mark.column + 1}" if mark else ""

@@ -11,7 +11,7 @@ from __future__ import annotations
 from gripsight.planning.errors import CellProblems, PlanningError, Problem
 from gripsight.vision.errors import VisionError
 
-__all__ = ["GripsightError", "CellFileError", "Problem", "EXPECTED_ERRORS", "exit_code_for", "message_lines"]
+__all__ = ["GripsightError", "CellFileError", "InputError", "UsageError", "Problem", "EXPECTED_ERRORS", "exit_code_for", "message_lines"]
 
 
 class GripsightError(Exception):
@@ -40,13 +40,29 @@ class CellFileError(CellProblems):
         return self.source
 
 
+class InputError(GripsightError):
+    """An input file (photo, state file, calibration) that exists but cannot be used: exit code 2, as for
+    a bad cell file."""
+
+    exit_code = 2
+
+
+class UsageError(GripsightError):
+    """A command given the wrong arguments or option values: exit code 2, as typer's own usage errors."""
+
+    exit_code = 2
+
+
 #: every error a command expects and reports in one line (anything else is an internal error)
 EXPECTED_ERRORS = (GripsightError, VisionError, PlanningError)
 
 
 def exit_code_for(exc: BaseException) -> int:
-    """The exit code for an expected error: 2 for a bad input file or cell, else the error's own (1)."""
-    if isinstance(exc, CellProblems):                   # CellFileError included
+    """The exit code for an expected error (DEVELOPERS.md, "Exit codes"): 2 for an input file that is
+    missing or unusable (cell, parts, calibration, photo, lens, state file), else the error's own (1)."""
+    from gripsight.vision.errors import LensFileError, PhotoError
+
+    if isinstance(exc, (CellProblems, PhotoError, LensFileError)):                   # CellFileError included
         return 2
     return int(getattr(exc, "exit_code", 1))
 

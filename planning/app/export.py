@@ -11,12 +11,11 @@ from __future__ import annotations
 
 import csv
 import io
-import json
 from datetime import datetime, timezone
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, utc_now, write_files_atomic
+from gripsight.app.fileio import output_dir, strict_json, utc_now, write_files_atomic
 from gripsight.app.textsafe import one_line
 from gripsight.planning.picks import Plan
 from gripsight.planning.safety import SAFETY_LINES
@@ -77,11 +76,11 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
                    "rejected": len(plan.parts) - len(plan.picks), "rejected_by_reason": rejected,
                    "cycle_s": round(plan.cycle_s, 4), "samples": int(len(plan.samples.t_s)),
                    "sample_hz": cell.motion.sample_hz, "speed_scale": plan.speed_scale},
-        "warnings": list(plan.warnings),
+        "warnings": list((photo or {}).get("warnings", [])) + list(plan.warnings),
     }
 
 
-def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
+def joints_csv_text(plan: Plan, cell, arm, created: str | None = None, photo: str | None = None) -> str:
     """The joint sequence as CSV text, safety comment lines first."""
     s = plan.samples
     q_deg = np.degrees(s.joints_rad)
@@ -93,6 +92,8 @@ def joints_csv_text(plan: Plan, cell, arm, created: str | None = None) -> str:
     for line in SAFETY_LINES:
         out.write(f"# SAFETY: {line}\n")
     out.write(f"# cell: {one_line(cell.cell)}\n# cell_sha256: {cell.sha256 or 'not from a file'}\n")
+    if photo is not None:
+        out.write(f"# photo: {one_line(str(photo))}\n")
     out.write(f"# created: {created or utc_now()}\n# sample_hz: {cell.motion.sample_hz:g}\n")
     if plan.speed_scale != 1.0:
         out.write(f"# speed_scale: {plan.speed_scale:g} (every move slowed to this fraction of the cell's speeds)\n")
@@ -135,12 +136,12 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
     out = output_dir(out_dir)
     created = utc_now()
     data = plan_to_dict(plan, cell, created, photo, calibration)
-    text = joints_csv_text(plan, cell, arm, created)
+    text = joints_csv_text(plan, cell, arm, created, photo=None if photo is None else photo.get("path"))
     check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
     # both new files written and flushed before either takes its name: a failure (a full disk) leaves
     # the old pair, never a new joints.csv beside an old plan.json
     write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
-                        (out / "plan.json", (json.dumps(data, indent=2) + "\n").encode("utf-8"))])
+                        (out / "plan.json", (strict_json(data) + "\n").encode("utf-8"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

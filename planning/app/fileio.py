@@ -10,14 +10,15 @@ from __future__ import annotations
 
 import contextlib
 import contextvars
+import errno
 from datetime import datetime, timezone
 import os
 import re
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "write_text_atomic", "write_bytes_atomic", "output_dir", "child_folder",
-           "remove_leftover_temps", "write_files_atomic", "without_fsync"]
+__all__ = ["atomic_output", "cannot_write", "strict_json", "write_text_atomic", "write_bytes_atomic", "output_dir",
+           "child_folder", "remove_leftover_temps", "write_files_atomic", "without_fsync"]
 
 # the temporary names of atomic_output: ".<stem>.<8 random chars from mkstemp>.tmp<suffix>"
 _TEMP_NAME = re.compile(r"^\..*\.[A-Za-z0-9_]{8}\.tmp(\.[^./]*)?$")
@@ -75,8 +76,33 @@ def output_dir(path) -> Path:
     try:
         p.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise GripsightError(f"{p}: cannot create the output folder ({exc.strerror or exc})") from None
+        raise cannot_write(p, exc) from None
     return p
+
+
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def cannot_write(path, exc: OSError):
+    """The one-line error for a file that cannot be written (read-only, full disk, a folder in the way)."""
+    from gripsight.app.errors import GripsightError
+
+    hint = {errno.ENOSPC: "the disk is full; free some space or give another --out",
+            errno.EFBIG: "the disk or quota is full; free some space or give another --out",
+            errno.EDQUOT: "the disk quota is full; free some space or give another --out",
+            errno.EROFS: "read-only; give an --out folder you can write to",
+            errno.EACCES: "no permission; give an --out folder you can write to",
+            errno.EPERM: "no permission; give an --out folder you can write to",
+            errno.EISDIR: "is a folder; give a file name",
+            errno.ENOTDIR: "part of the path is a file, not a folder; give another path",
+            errno.EEXIST: "a file stands where a folder is needed; give another path"}.get(exc.errno, "")
+    what = exc.strerror or str(exc)
+    if hint.startswith("read-only") and "read-only" not in what.lower():
+        what = f"{what}, read-only"
+    return GripsightError(f"{path}: cannot write ({what}){'; ' + hint.split('; ')[-1] if hint else ''}")
 
 
 @contextlib.contextmanager
@@ -84,17 +110,30 @@ def atomic_output(path: str | os.PathLike):
     """Yield a temporary path beside ``path``; on success it replaces ``path``, on error it is removed.
 
     The temporary name keeps the target's suffix so writers that look at it (matplotlib) still work.
+    The file gets the permissions of any new file (0666 less the umask), not mkstemp's 0600, so a
+    controller running as another user can read it. A failure to write (read-only folder, full disk, a
+    folder where the file should go) is a :class:`GripsightError` naming ``path``.
     """
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
-    os.close(fd)
+    if target.is_dir():
+        raise cannot_write(target, IsADirectoryError(errno.EISDIR, os.strerror(errno.EISDIR)))
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
+        os.close(fd)
+    except OSError as exc:
+        raise cannot_write(target, exc) from None
     try:
         yield Path(tmp)
         if _FSYNC.get():
             with open(tmp, "rb+") as fh:
                 os.fsync(fh.fileno())
+        os.chmod(tmp, 0o666 & ~_umask())
         os.replace(tmp, target)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise cannot_write(target, exc) from None
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
@@ -112,6 +151,25 @@ def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
 
 
+def strict_json(data, indent: int | None = 2) -> str:
+    """JSON that strict parsers read (RFC 8259 has no NaN or Infinity): every non-finite float is null."""
+    import json
+    import math
+
+    def clean(value):
+        if isinstance(value, float):
+            return value if math.isfinite(value) else None
+        if isinstance(value, dict):
+            return {k: clean(v) for k, v in value.items()}
+        if isinstance(value, (list, tuple)):
+            return [clean(v) for v in value]
+        if hasattr(value, "item") and hasattr(value, "dtype"):        # numpy scalars
+            return clean(value.item())
+        return value
+
+    return json.dumps(clean(data), indent=indent, allow_nan=False)
+
+
 def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
     """Write several files as one step: every new file is written and flushed under a temporary name
     first, and only when all are on disk do they take their names (renames, which need no space). A
@@ -126,8 +184,14 @@ def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
                 fh.write(data)
                 fh.flush()
                 os.fsync(fh.fileno())
+            os.chmod(tmp, 0o666 & ~_umask())             # as any new file, not mkstemp's 0600
         for tmp, target in temps:
             os.replace(tmp, target)
+    except OSError as exc:
+        for tmp, _ in temps:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+        raise cannot_write(temps[-1][1] if temps else Path(items[0][0]), exc) from None
     except BaseException:
         for tmp, _ in temps:
             with contextlib.suppress(OSError):

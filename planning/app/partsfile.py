@@ -13,24 +13,27 @@ Missing sizes come from the class in the cell file; a class the cell does not kn
 from __future__ import annotations
 
 import os
-from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
-from gripsight.app.cellfile import _pydantic_problems, read_yaml
+from gripsight.app.cellfile import Number, PositiveMm, _pydantic_problems, read_yaml
 from gripsight.app.errors import CellFileError, Problem
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["load_parts_file", "parse_parts"]
+__all__ = ["load_parts_file", "parse_parts", "MAX_PARTS_PER_PLAN"]
 
-Number = Annotated[float, Field(allow_inf_nan=False)]
-Positive = Annotated[float, Field(gt=0, allow_inf_nan=False)]
+#: the most parts one plan takes: ordering and checks stay under a few seconds and ~100 MB up to here
+MAX_PARTS_PER_PLAN = 1000
+#: a parts file of MAX_PARTS_PER_PLAN parts is ~100 kB; anything past 1 MB is not a parts file
+MAX_PARTS_FILE_BYTES = 1024 * 1024
+
+Positive = PositiveMm
 
 
 class _Entry(BaseModel):
     model_config = ConfigDict(extra="forbid", strict=True, allow_inf_nan=False, populate_by_name=True)
 
-    id: str | None = None
+    id: str | int | None = None      # `id: 1` is read as the part id "1"
     class_name: str = Field(alias="class", min_length=1)
     x_mm: Number
     y_mm: Number
@@ -56,6 +59,9 @@ def parse_parts(data, cell, source: str = "<parts>") -> list[PartTarget]:
         data = []
     if not isinstance(data, list):
         raise CellFileError(source, [Problem(prefix, "must be a list of parts, e.g. - {class: red, x_mm: 200, y_mm: 0}")])
+    if len(data) > MAX_PARTS_PER_PLAN:
+        raise CellFileError(source, [Problem(prefix, f"{len(data):,} parts, more than the {MAX_PARTS_PER_PLAN:,} one plan "
+                                                     "takes; split them into several files")])
     problems: list[Problem] = []
     entries: list[tuple[int, _Entry]] = []
     for i, item in enumerate(data):
@@ -73,7 +79,7 @@ def parse_parts(data, cell, source: str = "<parts>") -> list[PartTarget]:
     targets = []
     for i, e in entries:
         where = f"{prefix}.{i}" if prefix else str(i)
-        part_id = e.id if e.id is not None else f"p{i + 1}"
+        part_id = str(e.id) if e.id is not None else f"p{i + 1}"
         if part_id in seen:
             problems.append(Problem(f"{where}.id", f"duplicate id '{part_id}' (also entry {seen[part_id]})"))
             continue
@@ -103,5 +109,5 @@ def parse_parts(data, cell, source: str = "<parts>") -> list[PartTarget]:
 
 def load_parts_file(path: str | os.PathLike, cell) -> list[PartTarget]:
     """Read a parts file (YAML, safe loading) and validate it against ``cell``."""
-    data, _ = read_yaml(path, "parts file")
+    data, _ = read_yaml(path, "parts file", max_bytes=MAX_PARTS_FILE_BYTES)
     return parse_parts(data, cell, str(path))

@@ -3,12 +3,11 @@ the photo: parts and reasons, pick points, bins, the reachable region at grip he
 
 from __future__ import annotations
 
-import json
 
 import numpy as np
 
 from gripsight.app.export import write_plan_outputs
-from gripsight.app.fileio import output_dir, write_bytes_atomic, write_text_atomic, utc_now
+from gripsight.app.fileio import output_dir, strict_json, write_bytes_atomic, write_text_atomic, utc_now
 
 __all__ = ["write_photo_outputs", "plan_overlay"]
 
@@ -69,7 +68,8 @@ def plan_overlay(analysis, plan, cell, arm) -> np.ndarray:
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
         cv2.putText(out, text, (c[0] + 12, c[1] + 18), cv2.FONT_HERSHEY_SIMPLEX, 0.5, (80, 80, 255), 1, cv2.LINE_AA)
     rejected = ", ".join(f"{n} {r}" for r, n in sorted(by_reason.items())) or "none"
-    draw_panel(out, [f"plan: {len(plan.picks)} picks, cycle {plan.cycle_s:.1f} s; rejected: {rejected}",
+    cycle_s = sum(p.duration_s for p in plan.picks)      # this photo's picks, not the run's clock (plan.cycle_s)
+    draw_panel(out, [f"plan: {len(plan.picks)} picks, cycle {cycle_s:.1f} s; rejected: {rejected}",
                      "blue: tool path seen from above; orange: carrying; green: reach at grip height"],
                corner="bottom-right")
     return out
@@ -98,7 +98,7 @@ def write_photo_outputs(out_dir, photo_plan, cell, arm, stored, overlay: bool = 
                 "photo": photo, "calibration": calibration, "status": "refused", "reason": photo_plan.message,
                 "parts": [], "picks": [], "totals": {"parts": 0, "planned": 0, "rejected": 0, "cycle_s": 0.0},
                 "warnings": [photo_plan.message]}
-        write_text_atomic(out / "plan.json", json.dumps(data, indent=2) + "\n")
+        write_text_atomic(out / "plan.json", strict_json(data) + "\n")
         for stale in ("joints.csv",) + _PICTURES:
             (out / stale).unlink(missing_ok=True)
         return data, None

@@ -15,7 +15,7 @@ from gripsight.vision.drift import RegistrationAction
 from gripsight.planning.targets import PartTarget
 
 __all__ = ["PhotoAnalysis", "PhotoPlan", "analyse_photo", "plan_photo", "photo_record", "targets_from_detection",
-           "load_or_make_calibration"]
+           "load_or_make_calibration", "check_photo_fits_calibration", "check_calibration_fits_cell"]
 
 
 @dataclass
@@ -27,6 +27,7 @@ class PhotoAnalysis:
     markers: list
     registration: object          # vision.drift.Registration
     detection: object | None      # vision.parts.Detection, None if the photo was refused
+    warnings: list = None         # what the terminal and the reports must show (camera moved, markers unseen...)
 
     @property
     def refused(self) -> bool:
@@ -66,13 +67,77 @@ def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     from gripsight.vision.photo import read_photo
 
     image = read_photo(photo) if image is None else image
+    check_photo_fits_calibration(photo, image, stored)
+    check_calibration_fits_cell(stored, cell)
     expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
     markers = detect_markers(image, cell.markers.dictionary, expected=expected)
     reg = register(stored, markers, cell, (image.shape[1], image.shape[0]), str(photo))
     detection = None
     if reg.action is not RegistrationAction.REFUSED:
         detection = detect_parts(image, reg.mapping, reg.camera_centre_mm, cell, markers)
-    return PhotoAnalysis(str(photo), image, markers, reg, detection)
+    return PhotoAnalysis(str(photo), image, markers, reg, detection, photo_warnings(image, markers, reg, stored, cell))
+
+
+def photo_warnings(image, markers, registration, stored, cell) -> list[str]:
+    """What must not pass unseen: a poor calibration in use, a camera that moved (refitted), layout
+    markers not seen, a greyscale photo (colours cannot be told apart)."""
+    out = []
+    if getattr(stored, "data", None) is not None and stored.data.cell != cell.cell:
+        out.append(f"the calibration {stored.path} was made for cell '{stored.data.cell}', not '{cell.cell}'; "
+                   "check you gave the right files")
+    if stored.verdict == "poor":
+        out.append(f"the calibration {stored.path} is poor; positions may be off: calibrate again "
+                   "(gripsight calibrate PHOTO)")
+    if registration.action == "refit":
+        out.append(registration.message)
+    seen = {m.id for m in markers}
+    # the table markers the calibration used and this photo misses (raised ones serve calibration only)
+    unseen = sorted(i for i in stored.marker_corners_px if i not in seen
+                    and i in cell.markers.layout and cell.markers.layout[i].z == 0)
+    if unseen and seen:
+        out.append(f"markers not seen: {', '.join(map(str, unseen))} (covered, out of view or badly lit)")
+    sample = image[::7, ::7].astype(np.int16)
+    if np.abs(sample[..., 0] - sample[..., 1]).max() <= 2 and np.abs(sample[..., 1] - sample[..., 2]).max() <= 2:
+        out.append("the photo is greyscale: part colours cannot be told apart, so parts are missed; "
+                   "give the camera's colour photos")
+    return out
+
+
+def check_photo_fits_calibration(photo, image, stored) -> None:
+    """A photo of another size than the calibration's cannot be mapped by it (the lens and the homography
+    are in that photo's pixels): refused, naming both sizes."""
+    from gripsight.app.errors import InputError
+
+    w, h = image.shape[1], image.shape[0]
+    cw, ch = stored.image_size
+    if (w, h) != (cw, ch):
+        raise InputError(f"{photo}: {w}x{h} px, but the calibration {stored.path} was made from {cw}x{ch} px photos; "
+                         "take photos at the calibrated size, or calibrate from a photo of this size")
+
+
+#: how far (mm) the stored calibration may place a table marker from where the cell file says before the
+#: cell file is taken for another cell's (or edited since): far above any calibration's residual
+LAYOUT_MISMATCH_MM = 5.0
+
+
+def check_calibration_fits_cell(stored, cell) -> None:
+    """The calibration's markers, mapped through its own homography, must lie where the cell file puts
+    them; else the cell file is not the one the calibration was made with."""
+    from gripsight.app.errors import InputError
+
+    worst = (0.0, None)
+    for marker_id, corners_px in stored.marker_corners_px.items():
+        place = cell.markers.layout.get(marker_id)
+        if place is None or place.z != 0:
+            continue
+        centre_mm = stored.mapping(np.asarray(corners_px, float)).mean(axis=0)
+        off = float(np.hypot(centre_mm[0] - place.x, centre_mm[1] - place.y))
+        if off > worst[0]:
+            worst = (off, marker_id)
+    if worst[0] > LAYOUT_MISMATCH_MM:
+        raise InputError(f"{cell.source_path or 'the cell'}: marker {worst[1]} is {worst[0]:.0f} mm from where the "
+                         f"calibration {stored.path} saw it: wrong cell file, or markers moved since calibrating? "
+                         "Give the right cell file, or calibrate again with this one")
 
 
 def targets_from_detection(detection, cell) -> list[PartTarget]:
@@ -109,7 +174,10 @@ def plan_photo(photo, cell, stored, planner, start_joints_rad=None, t0_s: float 
     analysis = analyse_photo(photo, cell, stored, image=image)
     if analysis.refused:
         return PhotoPlan(analysis, None, analysis.registration.message)
+    from gripsight.app.cellfile import check_plan_size
+
     targets = targets_from_detection(analysis.detection, cell)
+    check_plan_size(len(targets), cell, str(photo))
     plan = planner.plan(targets, order=order, start_joints_rad=start_joints_rad, end_at_home=end_at_home, t0_s=t0_s,
                         bin_room=bin_room)
     return PhotoPlan(analysis, plan, analysis.registration.message)
@@ -122,7 +190,8 @@ def photo_record(analysis: PhotoAnalysis, stored) -> tuple[dict, dict]:
              "markers_seen": [m.id for m in analysis.markers],
              "white_balance": None if analysis.detection is None or analysis.detection.illumination is None
              else analysis.detection.illumination.as_dict(),
-             "notes": [] if analysis.detection is None else analysis.detection.notes}
+             "notes": [] if analysis.detection is None else analysis.detection.notes,
+             "warnings": list(analysis.warnings or [])}
     calibration = {"file": stored.path, "verdict": stored.verdict.value, "registration": reg.action.value,
                    "message": reg.message, "drift": None if reg.drift is None else reg.drift.as_dict(),
                    "camera_centre_mm": None if reg.camera_centre_mm is None else

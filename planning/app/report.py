@@ -53,12 +53,21 @@ def _pictures_note(rows: list[dict]) -> str:
             "(run the batch with --pictures all for every overlay).")
 
 
+def _warning_line(totals: dict) -> str:
+    if not totals.get("warned"):
+        return ""
+    return (f'<p id="warnings-summary"><b>{totals["warned"]} photos with warnings</b>: camera moved (refitted) in '
+            f'{totals.get("camera_moved", 0)}, markers not seen in {totals.get("markers_unseen", 0)}, poor calibration in '
+            f'{totals.get("poor_calibration", 0)}; see the warnings column.</p>')
+
+
 def write_report(path, rows: list[dict], totals: dict, cell) -> None:
     """Write report.html beside the per-photo folders (links to ``<photo>/overlay.png`` are relative)."""
     e = html.escape
     cards = [("photos", totals["photos"]), ("planned picks", totals["planned"]), ("parts found", totals["parts"]),
              ("rejected", sum(totals["rejected"].values())), ("refused photos", totals["refused"]),
-             ("failed photos", totals["errors"]), ("cycle time s", f"{totals['cycle_s']:.1f}")]
+             ("failed photos", totals["errors"]), ("photos with warnings", totals.get("warned", 0)),
+             ("cycle time s", f"{totals['cycle_s']:.1f}")]
     truth = totals.get("truth")
     if truth:
         cards += [("recall", f"{truth['recall']:.1%}"), ("precision", f"{truth['precision']:.1%}"),
@@ -67,7 +76,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
     card_html = "".join(f'<div class="card"><b>{e(str(v))}</b>{e(k)}</div>' for k, v in cards)
     classes = list(cell.parts) + ["unknown"]
     head = "".join(f"<th>{e(h)}</th>" for h in ["photo", "overlay", "status", *classes, "planned", "rejected (reasons)",
-                                               "cycle s"] + (["recall", "pick error mm"] if truth else []))
+                                               "cycle s", "warnings"] + (["recall", "pick error mm"] if truth else []))
     body = []
     for r in rows:
         link = f"{quote(r['photo'])}/overlay.png"
@@ -83,7 +92,8 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
         status = r["status"] + (f": {r['error']}" if r["error"] else "")
         cells = [f"<td>{e(r['photo'])}</td>", f"<td>{thumb}</td>", f"<td>{e(status)}</td>"]
         cells += [f'<td class="num">{r["found"].get(c, 0)}</td>' for c in classes]
-        cells += [f'<td class="num">{r["planned"]}</td>', f"<td>{e(reasons)}</td>", f'<td class="num">{r["cycle_s"]:.1f}</td>']
+        cells += [f'<td class="num">{r["planned"]}</td>', f"<td>{e(reasons)}</td>", f'<td class="num">{r["cycle_s"]:.1f}</td>',
+                  f"<td>{e('; '.join(r.get('warnings', [])))}</td>"]
         if truth:
             t = r["truth"] or {}
             cells += [f'<td class="num">{t.get("recall", "")}</td>',
@@ -97,7 +107,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
 <style>{_STYLE}</style></head><body>
 <h1>Batch report: {e(cell.cell)}</h1>
 <p class="muted">Every photo planned on its own, arm starting at home. {e(_pictures_note(rows))}</p>
-<section id="summary"><h2>Summary</h2><div class="cards">{card_html}</div>{truth_note}</section>
+<section id="summary"><h2>Summary</h2><div class="cards">{card_html}</div>{truth_note}{_warning_line(totals)}</section>
 <section id="reasons"><h2>Why parts were rejected</h2>{_bar_chart(totals["rejected"])}</section>
 <section id="photos"><h2>Photos</h2><table id="photo-table"><thead><tr>{head}</tr></thead>
 <tbody>{"".join(body)}</tbody></table></section>

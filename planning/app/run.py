@@ -19,9 +19,9 @@ from pathlib import Path
 
 import numpy as np
 
-from gripsight.app.errors import EXPECTED_ERRORS, GripsightError
+from gripsight.app.errors import EXPECTED_ERRORS, GripsightError, InputError
 from gripsight.app.export import CSV_COLUMNS, joints_csv_text
-from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, utc_now, write_text_atomic
+from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, utc_now, write_text_atomic
 from gripsight.planning.checks import Check
 
 __all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
@@ -59,7 +59,7 @@ def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
     path = _state_path(out)
     if not path.is_file():
         raise GripsightError(f"{path}: nothing to resume (no run state); run without --resume")
-    state = json.loads(path.read_text())
+    state = _read_state(path)
     if state.get("folder") != str(folder.resolve()) or state.get("cell_sha256") != cell.sha256:
         raise GripsightError(f"{path}: that run was of another folder or cell file; run without --resume")
     if stored is not None and state.get("calibration_sha256") != getattr(stored, "sha256", None):
@@ -68,6 +68,50 @@ def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
     for name in state.get("done", []):
         if photo_hashes.get(name) != _file_sha256(folder / name):
             raise GripsightError(f"{path}: photo {name} changed since that run planned it; run without --resume")
+    return state
+
+
+def _read_state(path: Path) -> dict:
+    """The run state, every field checked: a damaged file is said, naming it, never half-used."""
+    import math
+
+    def damaged(what: str):
+        return InputError(f"{path}: the run state is damaged ({what}); run again without --resume, "
+                          "or into another --out")
+
+    try:
+        if path.stat().st_size > 64 * 1024 * 1024:
+            raise damaged("too large")
+        state = json.loads(path.read_text(encoding="utf-8"), parse_constant=lambda c: float("nan"))
+    except (UnicodeDecodeError, ValueError) as exc:
+        raise damaged(f"not JSON: {exc}") from None
+    if not isinstance(state, dict):
+        raise damaged("not a JSON object")
+
+    def number(value) -> bool:
+        return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
+
+    checks = [
+        ("folder", lambda v: isinstance(v, str)), ("cell_sha256", lambda v: isinstance(v, str)),
+        ("done", lambda v: isinstance(v, list) and all(isinstance(x, str) for x in v)),
+        ("summaries", lambda v: isinstance(v, list) and all(isinstance(x, dict) and isinstance(x.get("picked", {}), dict)
+                                                            and isinstance(x.get("rejected", {}), dict) for x in v)),
+        ("joints_deg", lambda v: isinstance(v, list) and len(v) == 3 and all(number(x) for x in v)),
+        ("t_s", lambda v: number(v) and v >= 0),
+        ("bins", lambda v: isinstance(v, dict) and all(isinstance(n, int) and not isinstance(n, bool) and n >= 0
+                                                       for n in v.values())),
+        ("speed_scale", lambda v: number(v) and 0 < v <= 1),
+        ("photo_sha256", lambda v: isinstance(v, dict)), ("joints_sha256", lambda v: isinstance(v, dict)),
+    ]
+    for key, ok in checks:
+        if key in ("photo_sha256", "joints_sha256") and key not in state:
+            continue                                # written from the first finished photo on
+        if key not in state:
+            raise damaged(f"'{key}' is missing")
+        if not ok(state[key]):
+            raise damaged(f"'{key}' has a wrong value")
+    if len(state["summaries"]) != len(state["done"]):
+        raise damaged("'summaries' and 'done' differ in length")
     return state
 
 
@@ -113,13 +157,13 @@ def _write_run_csv(out: Path, state: dict, home_csv: str | None, cell) -> None:
         if not header_done:
             buf.write("\n".join(c for c in comments if not c.startswith("# created")) + "\n")
             buf.write(f"# run: {len(state['done'])} photos, created {utc_now()}\n")
-            csv.writer(buf, lineterminator="\n").writerow(CSV_COLUMNS)
+            csv.writer(buf, lineterminator="\n").writerow(["photo", *CSV_COLUMNS])   # part ids repeat per photo
             header_done = True
         else:
             rows = rows[1:]
-        csv.writer(buf, lineterminator="\n").writerows(rows)
+        csv.writer(buf, lineterminator="\n").writerows([name, *row] for row in rows)
     if home_csv and header_done:
-        csv.writer(buf, lineterminator="\n").writerows(_csv_rows(home_csv)[1:])
+        csv.writer(buf, lineterminator="\n").writerows(["", *row] for row in _csv_rows(home_csv)[1:])
     if header_done:
         text = buf.getvalue()
         check_joint_file_text(text, cell, str(out / "run.csv"))
@@ -146,10 +190,10 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
         photos = photos_in(folder)
         if not photos:
             raise GripsightError(f"{folder}: no photos ({', '.join(PHOTO_SUFFIXES)}) in this folder")
+    state = _load_state(out, folder, cell, stored) if resume else None      # a damaged state is said before any work
     arm = Arm.from_config(cell.arm)
     planner = Planner(cell, arm, speed_scale=speed_scale)
     if resume:
-        state = _load_state(out, folder, cell, stored)
         recorded = float(state.get("speed_scale", 1.0))
         if abs(recorded - speed_scale) > 1e-9:      # one run.csv, one speed: never mix them
             raise GripsightError(f"{_state_path(out)}: that run was made at speed scale {recorded:g}; "
@@ -164,7 +208,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                  "bins": {name: 0 for name in cell.bins}, "speed_scale": speed_scale,
                  "calibration_sha256": getattr(stored, "sha256", None), "photo_sha256": {}}
         # the new run's state replaces the old one in one step (never deleted first, never lost)
-        write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+        write_text_atomic(_state_path(out), strict_json(state, indent=1))
     remove_leftover_temps(out)
     result = RunResult()
     try:
@@ -181,7 +225,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                            "picked": {}, "rejected": {}, "cycle_s": 0.0}
                 state["done"].append(photo.name)
                 state["summaries"].append(summary)
-                write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+                write_text_atomic(_state_path(out), strict_json(state, indent=1))
                 if progress is not None:
                     progress(photo, summary)
                 continue
@@ -198,7 +242,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                 state["t_s"] = pp.plan.cycle_s
             state["done"].append(photo.name)
             state["summaries"].append(summary)
-            write_text_atomic(_state_path(out), json.dumps(state, indent=1))
+            write_text_atomic(_state_path(out), strict_json(state, indent=1))
             if pictures and pp.plan is not None:
                 pictures.submit(write_photo_pictures, child_folder(out, photo.name), pp, cell, arm, label=photo.name)
             if progress is not None:
@@ -241,4 +285,5 @@ def _summary(name: str, pp, data: dict) -> dict:
                 rejected[o.rejection.label] = rejected.get(o.rejection.label, 0) + 1
     return {"photo": name, "status": data.get("status", "planned"), "registration": pp.analysis.registration.action.value,
             "message": pp.message, "picked": picked, "rejected": rejected,
-            "cycle_s": 0.0 if pp.plan is None else round(sum(p.duration_s for p in pp.plan.picks), 3)}
+            "cycle_s": 0.0 if pp.plan is None else round(sum(p.duration_s for p in pp.plan.picks), 3),
+            "warnings": list(pp.analysis.warnings or [])}

@@ -205,7 +205,7 @@ def test_batch_two_workers_equal_one_and_bad_files_are_rows(tmp_path, capsys):
     assert one == two
     rows = {r["photo"]: r for r in csv.DictReader(one.splitlines())}
     assert rows["empty.jpg"]["status"] == "error" and "the file is empty (0 bytes)" in rows["empty.jpg"]["error"]
-    assert rows["notes.jpg"]["status"] == "error" and "not a readable image" in rows["notes.jpg"]["error"]
+    assert rows["notes.jpg"]["status"] == "error" and "not a photo in a format gripsight reads" in rows["notes.jpg"]["error"]
     good = [r for r in rows.values() if r["status"] == "ok"]
     assert len(good) == 5 and all(float(r["truth_recall"]) == 1.0 for r in good)
     totals = json.loads((tmp_path / "two" / "batch.json").read_text())["totals"]

@@ -93,7 +93,7 @@ def test_bad_photos_give_one_line_or_a_result_never_a_trace(tmp_path, capsys, ca
         if usable:
             assert code == 0, (command, name, err)
         else:
-            assert code == 1, (command, name)
+            assert code == 2, (command, name)      # a bad input file: DEVELOPERS.md, "Exit codes"
             lines = err.strip().splitlines()
             assert len(lines) == 1 and lines[0].startswith("error: ") and path.name in lines[0], (command, name, err)
 
@@ -101,11 +101,11 @@ def test_bad_photos_give_one_line_or_a_result_never_a_trace(tmp_path, capsys, ca
 def test_pixel_limit_is_checked_before_decoding(tmp_path, capsys):
     path = tmp_path / "big.png"
     path.write_bytes(_png_header_claiming(20000, 20000))
-    assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 1
+    assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 2
     assert "20000x20000 px is more than the limit of 50,000,000 pixels" in capsys.readouterr().err
     small = tmp_path / "photo.jpg"
     shutil.copy(SAMPLES / "demo" / "demo_01.jpg", small)
-    assert main(["--max-pixels", "1000", "detect", str(small), "--cell", str(SAMPLE_CELL)]) == 1
+    assert main(["--max-pixels", "1000", "detect", str(small), "--cell", str(SAMPLE_CELL)]) == 2
     assert "1280x960 px is more than the limit of 1,000 pixels" in capsys.readouterr().err
     os.environ.pop("GRIPSIGHT_MAX_PIXELS", None)
 
@@ -115,17 +115,19 @@ def test_unreadable_photo(tmp_path, capsys, monkeypatch):
     shutil.copy(SAMPLES / "demo" / "demo_01.jpg", path)
     path.chmod(0)
     if os.access(path, os.R_OK):
-        # root reads any file: make the read fail the way a permission error does
-        real = Path.read_bytes
+        # root reads any file: make the photo reader's open fail the way a permission error does
+        import builtins
 
-        def denied(self):
-            if self == path:
+        import gripsight.vision.photo as photo_module
+
+        def denied(file, *args, **kwargs):
+            if Path(file) == path:
                 raise PermissionError(13, "Permission denied")
-            return real(self)
+            return builtins.open(file, *args, **kwargs)
 
-        monkeypatch.setattr(Path, "read_bytes", denied)
+        monkeypatch.setattr(photo_module, "open", denied, raising=False)
     try:
-        assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 1
+        assert main(["detect", str(path), "--cell", str(SAMPLE_CELL)]) == 2
         err = capsys.readouterr().err
         assert "locked.jpg: cannot be read (Permission denied); check its permissions" in err
     finally:
@@ -376,7 +378,7 @@ def test_photo_names_cannot_leave_the_output_folder(tmp_path, name):
 # ------------------------------------------------------------------ the table of error messages
 _ERROR_TYPES = {"GripsightError", "CellFileError", "PhotoError", "CalibrationError", "ServoRangeError",
                 "PathGeometryError", "Problem", "CellProblems", "LensFileError", "SheetError", "PlanningError",
-                "VisionError"}
+                "VisionError", "InputError", "UsageError"}
 
 
 def _literal_fragments(node) -> list[str]:

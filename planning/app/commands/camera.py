@@ -8,6 +8,8 @@ from typing import Optional
 import typer
 
 from gripsight.app.commands.common import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
+from gripsight.app.errors import GripsightError
+from gripsight.vision.errors import CalibrationError
 
 
 @command()
@@ -105,7 +107,7 @@ def render(
     typer.echo(f"wrote {scenes} photos with truth files under {out}")
 
 
-def _lens_for(cfg):
+def _lens_for(cfg, image_size=None):
     from gripsight.vision.settings import LensMode
 
     if cfg.camera.lens != LensMode.FILE:
@@ -115,7 +117,7 @@ def _lens_for(cfg):
     path = Path(cfg.camera.lens_file)
     if not path.is_absolute() and cfg.source_path:
         path = Path(cfg.source_path).parent / path
-    return load_opencv_lens(path)
+    return load_opencv_lens(path, image_size)
 
 
 @command()
@@ -125,14 +127,13 @@ def calibrate(
     out: Optional[Path] = typer.Option(None, "--out", "-o", help="Calibration file (default: calibration.yaml beside the cell file)."),
     overlay: Optional[Path] = typer.Option(None, "--overlay", help="Overlay PNG (default: <calibration>_overlay.png)."),
     as_json: bool = typer.Option(False, "--json", help="Print the calibration record as JSON and nothing else."),
+    force: bool = typer.Option(False, "--force", help="Write a poor calibration even over a good or fair one."),
 ):
     """Fit the camera-to-table mapping (and lens, camera centre) from the markers in one photo."""
-    import json
-
     import cv2
 
     from gripsight.app.cellfile import load_cell
-    from gripsight.app.fileio import write_bytes_atomic
+    from gripsight.app.fileio import strict_json, write_bytes_atomic
     from gripsight.app.calfile import calibration_record, default_calibration_path, write_calibration
     from gripsight.vision.calibration import calibrate as fit
     from gripsight.vision.markers import detect_markers
@@ -148,17 +149,74 @@ def calibrate(
     check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
     detections = detect_markers(image, cfg.markers.dictionary)
-    cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo), lens=_lens_for(cfg))
+    try:
+        cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo),
+                  lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
+    except CalibrationError as exc:
+        raise CalibrationError(f"{exc} (wrong cell file, or a photo of another cell?)") from None
+    previous = _previous(out)
+    _keep_previous_centre(cal, previous, (image.shape[1], image.shape[0]))
+    _refuse_poor(cal, out, previous, force, photo, cell_path)
     moved = write_calibration(out, cal, cfg, photo)
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
     write_bytes_atomic(overlay, buf.tobytes())
     if as_json:
-        typer.echo(json.dumps(calibration_record(cal, cfg, photo), indent=2))
+        typer.echo(strict_json(calibration_record(cal, cfg, photo)))
         return
-    _print_calibration(cal, out, overlay, moved)
+    _print_calibration(cal, out, overlay, moved, layout_ids=sorted(cfg.markers.layout))
 
 
-def _print_calibration(cal, out, overlay, moved) -> None:
+#: a calibration this far off (RMS mm) is not a bad photo of the right cell but markers that are not where
+#: the cell file says: the wrong cell file, or a photo of another cell
+WRONG_SETUP_RMS_MM = 5.0
+
+
+def _previous(out: Path):
+    """The calibration ``out`` would replace, if it is a readable one."""
+    from gripsight.app.calfile import read_calibration
+
+    if not out.is_file():
+        return None
+    try:
+        return read_calibration(out)
+    except GripsightError:
+        return None
+
+
+def _keep_previous_centre(cal, previous, image_size) -> None:
+    """With the raised marker out of view the new centre would be a guess (nadir under the image centre);
+    the previous calibration's measured centre, moved with the fitted change of the mapping, is better."""
+    import numpy as np
+
+    if (cal.centre_source != "assumed" or previous is None or previous.centre_source == "assumed"
+            or tuple(previous.image_size) != tuple(image_size)):
+        return
+    old = np.asarray(previous.camera_centre_mm, float)
+    # the table point under the old centre, seen in the old photo's pixels, and where the new mapping puts it
+    uv = previous.mapping.inverse(old[None, :2])
+    xy = cal.mapping(uv)[0]
+    cal.camera_centre_mm = np.array([xy[0], xy[1], old[2]])
+    cal.centre_source = previous.centre_source
+    cal.notes[:] = [n for n in cal.notes if not n.startswith("camera centre assumed")]
+    cal.notes.append(f"camera centre: the raised markers are not in view; kept the previous calibration's centre "
+                     f"moved with the fitted change ({xy[0]:.1f}, {xy[1]:.1f}, {old[2]:.1f}) mm")
+
+
+def _refuse_poor(cal, out: Path, previous, force: bool, photo, cell_path) -> None:
+    if not cal.camera_centre_mm[2] > 0:
+        raise CalibrationError(f"{photo}: the fitted camera centre is at z = {cal.camera_centre_mm[2]:.0f} mm, not above "
+                               "the table: check the raised markers' heights (markers.layout.N.z) or camera.centre_mm")
+    if cal.rms_mm > WRONG_SETUP_RMS_MM and not force:
+        raise CalibrationError(f"{photo}: the markers do not fit the cell file's layout (RMS {cal.rms_mm:.1f} mm): "
+                               f"wrong cell file ({cell_path}), or a photo of another cell? Nothing written; "
+                               "--force writes it anyway")
+    if cal.verdict == "poor" and previous is not None and previous.verdict != "poor" and not force:
+        raise CalibrationError(f"{photo}: this calibration is poor (RMS {cal.rms_mm:.2f} mm, max {cal.max_mm:.2f} mm) "
+                               f"and would replace the {previous.verdict} one in {out}; nothing written. Take a "
+                               "sharper photo with every marker in view, or pass --force")
+
+
+def _print_calibration(cal, out, overlay, moved, layout_ids=()) -> None:
     from gripsight.vision.calibration import MarkerRole
 
     from rich.console import Console
@@ -168,11 +226,13 @@ def _print_calibration(cal, out, overlay, moved) -> None:
     table = Table(title="markers", title_justify="left")
     for col in ("id", "residual mm", "residual px", "status"):
         table.add_column(col, justify="right" if col != "status" else "left")
-    for m in sorted(cal.markers, key=lambda m: m.id):
-        status = "used" if m.used else m.reason
-        mm = "" if m.residual_mm is None else f"{m.residual_mm:.3f}"
-        px = "" if m.residual_px is None else f"{m.residual_px:.2f}"
-        table.add_row(str(m.id), mm, px, status)
+    rows = {m.id: ("" if m.residual_mm is None else f"{m.residual_mm:.3f}",
+                   "" if m.residual_px is None else f"{m.residual_px:.2f}", "used" if m.used else m.reason)
+            for m in cal.markers}
+    for marker_id in layout_ids:
+        rows.setdefault(marker_id, ("", "", "not seen: covered, out of view or badly lit"))
+    for marker_id in sorted(rows):
+        table.add_row(str(marker_id), *rows[marker_id])
     console.print(table)
     for note in cal.notes:
         console.print(f"note: {note}")
@@ -180,6 +240,9 @@ def _print_calibration(cal, out, overlay, moved) -> None:
     console.print(f"camera centre ({c[0]:.1f}, {c[1]:.1f}, {c[2]:.1f}) mm from {cal.centre_source.value.replace('_', ' ')}")
     console.print(f"verdict: {cal.verdict}: RMS {cal.rms_mm:.3f} mm ({cal.rms_px:.2f} px), max {cal.max_mm:.3f} mm "
                   f"over {len(cal.used)} markers")
+    if cal.verdict == "poor":
+        console.print("warning: this calibration is poor: part positions will be off; take a sharper photo with "
+                      "every marker in view and calibrate again")
     moved_markers = [m for m in cal.markers if m.role is MarkerRole.MOVED]
     for m in moved_markers:
         console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
@@ -198,10 +261,9 @@ def check(
     as_json: bool = typer.Option(False, "--json", help="Print the drift report as JSON and nothing else."),
 ):
     """Has the camera moved since calibration? Exit 0 if ok, 3 if moved."""
-    import json
-
     from gripsight.app.cellfile import load_cell
     from gripsight.app.calfile import default_calibration_path, read_calibration
+    from gripsight.app.fileio import strict_json
     from gripsight.vision.drift import DriftVerdict, check_drift
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
@@ -213,9 +275,16 @@ def check(
     check_output_paths(files={"--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path,
                                                               "the calibration file": calibration or default_calibration_path(cfg)})
     stored = read_calibration(calibration or default_calibration_path(cfg))
+    from gripsight.app.pipeline import check_calibration_fits_cell, check_photo_fits_calibration
+
+    check_calibration_fits_cell(stored, cfg)
     image = read_photo(photo)
-    report = check_drift(stored, detect_markers(image, cfg.markers.dictionary), cfg,
-                         (image.shape[1], image.shape[0]), str(photo))
+    check_photo_fits_calibration(photo, image, stored)
+    detections = detect_markers(image, cfg.markers.dictionary)
+    if not detections:       # nothing to compare: not "moved", and not a photo to calibrate from
+        raise CalibrationError(f"{photo}: no {cfg.markers.dictionary} markers seen, so the camera cannot be checked; "
+                               "check the light and that the markers are in view")
+    report = check_drift(stored, detections, cfg, (image.shape[1], image.shape[0]), str(photo))
     if overlay is not None:
         import cv2
 
@@ -224,7 +293,7 @@ def check(
 
         write_bytes_atomic(overlay, cv2.imencode(".png", drift_overlay(image, report, stored, cfg))[1].tobytes())
     if as_json:
-        typer.echo(json.dumps(dict(report.as_dict(), photo=str(photo), calibration=stored.path), indent=2))
+        typer.echo(strict_json(dict(report.as_dict(), photo=str(photo), calibration=stored.path)))
     else:
         _print_drift(report, photo, cell_path)
     if report.verdict is DriftVerdict.MOVED:

@@ -27,9 +27,22 @@ app = typer.Typer(
 _state = {"verbose": False}
 
 
+def _print_version(value: bool) -> None:
+    if value:
+        from importlib.metadata import PackageNotFoundError, version
+
+        try:
+            typer.echo(f"gripsight {version('gripsight')}")
+        except PackageNotFoundError:
+            typer.echo("gripsight (not installed: version unknown)")
+        raise typer.Exit(0)
+
+
 @app.callback()
 def _global(
     verbose: bool = typer.Option(False, "--verbose", "-v", help="Print the full trace on errors."),
+    _version: bool = typer.Option(False, "--version", callback=_print_version, is_eager=True,
+                                  help="Print the version and exit."),
     max_pixels: Optional[int] = typer.Option(None, "--max-pixels", min=1,
                                              help="Refuse photos with more pixels than this (default 50 million)."),
 ):
@@ -69,12 +82,24 @@ def _guarded(fn):
             raise typer.Exit(0) from None
         except (typer.Exit, typer.Abort):
             raise
-        except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, never a bare trace
-            _echo_err(f"error: internal error ({type(exc).__name__}: {exc}); run with --verbose for the trace "
-                      "and report it")
+        except OSError as exc:
+            if exc.filename is None or exc.errno is None:
+                raise_internal(exc)
+            from gripsight.app.fileio import cannot_write
+
+            _echo_err(f"error: {cannot_write(exc.filename, exc)}")   # a file the system refused: said, not a bug
             if _state["verbose"]:
                 traceback.print_exc()
             raise typer.Exit(1) from None
+        except Exception as exc:  # noqa: BLE001 - the last line of defence: one line, never a bare trace
+            raise_internal(exc)
+
+    def raise_internal(exc):
+        _echo_err(f"error: internal error ({type(exc).__name__}: {exc}); run with --verbose for the trace "
+                  "and report it")
+        if _state["verbose"]:
+            traceback.print_exc()
+        raise typer.Exit(1) from None
 
     return wrapper
 
@@ -114,10 +139,14 @@ def _floats(text: Optional[str], name: str, count: tuple[int, int]) -> Optional[
 
     if text is None:
         return None
+    import math
+
     try:
         values = [float(v) for v in text.split(",") if v.strip()]
     except ValueError:
         raise GripsightError(f"{name}: expected numbers separated by commas, got '{text}'") from None
+    if not all(math.isfinite(v) for v in values):
+        raise GripsightError(f"{name}: expected finite numbers, got '{text}'")
     if not count[0] <= len(values) <= count[1]:
         raise GripsightError(f"{name}: expected {count[0]}-{count[1]} numbers, got {len(values)}")
     return values

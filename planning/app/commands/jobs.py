@@ -25,8 +25,7 @@ def detect(
     sample: Optional[str] = typer.Option(None, "--sample", help="U,V: print the white-balanced CIELAB colour around that pixel."),
 ):
     """Find the parts in a photo: class, table position (mm, parallax corrected), size, status."""
-    import json
-
+    from gripsight.app.fileio import strict_json
     from gripsight.app.pipeline import analyse_photo, load_or_make_calibration
     from gripsight.app.cellfile import load_cell
     from gripsight.app.errors import GripsightError
@@ -58,9 +57,11 @@ def detect(
             "registration_note": result.registration.message,
             "drift": None if result.registration.drift is None else result.registration.drift.as_dict(),
             "white_balance": None if det.illumination is None else det.illumination.as_dict(),
-            "parts": [p.as_dict() for p in det.parts], "notes": det.notes}
+            "parts": [p.as_dict() for p in det.parts], "notes": det.notes, "warnings": result.warnings}
+    for text in result.warnings:
+        typer.echo(f"warning: {text}", err=True)      # on stderr: stdout may be JSON
     if as_json:
-        typer.echo(json.dumps(data, indent=2))
+        typer.echo(strict_json(data))
         return
     from rich.console import Console
     from rich.table import Table
@@ -68,7 +69,7 @@ def detect(
     from gripsight.vision.parts import PartStatus
 
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
-    if result.registration.message:
+    if result.registration.message and result.registration.message not in result.warnings:
         console.print(f"note: {result.registration.message}")
     table = Table(title=f"{photo}: parts", title_justify="left")
     for col in ("id", "class", "x mm", "y mm", "yaw", "size mm", "ΔE", "status"):
@@ -118,7 +119,8 @@ def plan(
     parts: Optional[Path] = typer.Option(None, "--parts", help="Parts in table coordinates instead of a photo (YAML list of {class, x_mm, y_mm, ...})."),
     cell: Optional[Path] = cell_option("beside the input or in its parent"),
     calibration: Optional[Path] = calibration_option(),
-    out: Path = typer.Option(Path("out"), "--out", "-o", help="Folder for plan.json, joints.csv and the pictures."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o", help="Folder for plan.json, joints.csv and the pictures "
+                                                                  "(default: <photo or parts file name>_plan)."),
     order: str = typer.Option("nearest", "--order", help="nearest (nearest-next + 2-opt) or detected (input order)."),
     as_json: bool = typer.Option(False, "--json", help="Print the plan as JSON on stdout and nothing else."),
     plots: bool = typer.Option(True, "--plots/--no-plots", help="Draw joints.png and path.png (overlay.png is always drawn for a photo)."),
@@ -126,21 +128,24 @@ def plan(
                                       help="Move at this fraction of the cell's speeds (e.g. 0.25 for a first, careful run)."),
 ):
     """Plan checked pick-and-place moves for the parts in a photo (or a parts file); write the joint sequence."""
-    import json
-
+    from gripsight.app.fileio import strict_json
     from gripsight.planning.arm import Arm
     from gripsight.app.cellfile import load_cell
     from gripsight.app.errors import GripsightError
     from gripsight.planning.picks import Planner
 
+    from gripsight.app.errors import UsageError
+
     if order not in ("nearest", "detected"):
-        raise GripsightError(f"--order: expected 'nearest' or 'detected', got '{order}'")
+        raise UsageError(f"--order: expected 'nearest' or 'detected', got '{order}'")
     if (photo is None) == (parts is None):
-        raise GripsightError("plan: give either a PHOTO or --parts FILE (one of the two)")
+        raise UsageError("plan: give either a PHOTO or --parts FILE (one of the two)")
     from gripsight.app.outpaths import check_output_paths
 
     cell_path = _find_cell(cell, photo if photo is not None else parts)
     cfg = load_cell(cell_path)
+    if out is None:             # never one shared ./out that each plan overwrites: a folder per input
+        out = Path(f"{Path(photo if photo is not None else parts).stem}_plan")
     check_output_paths(folders={"--out": out}, inputs={"the photo": photo, "--parts": parts, "the cell file": cell_path,
                                                        "--calibration": calibration})
     arm = Arm.from_config(cfg.arm)
@@ -149,7 +154,11 @@ def plan(
         from gripsight.app.export import write_plan_outputs
         from gripsight.app.partsfile import load_parts_file
 
-        result = planner.plan(load_parts_file(parts, cfg), order=order)
+        from gripsight.app.cellfile import check_plan_size
+
+        targets = load_parts_file(parts, cfg)
+        check_plan_size(len(targets), cfg, str(parts))
+        result = planner.plan(targets, order=order)
         data = write_plan_outputs(out, result, cfg, arm, plots=plots)
     else:
         from gripsight.app.pipeline import load_or_make_calibration, plan_photo
@@ -161,7 +170,7 @@ def plan(
         if photo_plan.plan is None:
             raise GripsightError(photo_plan.message)
     if as_json:
-        typer.echo(json.dumps(data, indent=2))
+        typer.echo(strict_json(data))
         return
     _print_plan_summary(data, out)
 
@@ -262,10 +271,10 @@ def run(
         line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}: "
         line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
                  else f"{summary['status']}: {summary['message']}")
-        if summary["registration"] == "refit":
-            line += f" (camera moved: {summary['message']})"
         result_rows.append(summary)
         console.print(line)
+        for text in summary.get("warnings", []):
+            console.print(f"  warning: {text}")
 
     result_rows: list = []
     from gripsight.app.fileio import output_dir
@@ -339,7 +348,8 @@ def batch(
         with output_lock(output_dir(out), "batch"), _progress() as bar:
             task = bar.add_task("batch", total=n)
             rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
-                             progress=lambda row: bar.advance(task), resume=resume, pictures=chosen)
+                             progress=lambda row: bar.advance(task), resume=resume, pictures=chosen,
+                             warn=lambda text: bar.console.print(f"warning: {text}", soft_wrap=True))
             totals = write_batch_tables(out, rows, cfg)
     except KeyboardInterrupt as exc:
         done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
@@ -373,4 +383,8 @@ def _print_batch(rows, totals, out) -> None:
         line += (f"; against truth: recall {t['recall']:.1%}, precision {t['precision']:.1%}, "
                  f"pick error {t['pick_error_rms_mm']:.2f} mm RMS ({t['pick_error_max_mm']:.2f} max)")
     console.print(line)
+    if totals.get("warned"):
+        console.print(f"warning: {totals['warned']} photos with warnings: camera moved (refitted) in "
+                      f"{totals['camera_moved']}, markers not seen in {totals['markers_unseen']}, poor calibration in "
+                      f"{totals['poor_calibration']}; see the warnings column of batch.csv")
     console.print(f"wrote {out / 'batch.csv'}, {out / 'batch.json'}, {out / 'report.html'}")
