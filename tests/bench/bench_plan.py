@@ -20,9 +20,11 @@ def main(n_parts: int = 20, repeats: int = 5) -> None:
     planner = Planner(cell)
     rng = np.random.default_rng(0)
     entries = []
-    while len(entries) < n_parts:   # reachable positions in the work area
+    placed: list[tuple[float, float]] = []
+    while len(entries) < n_parts:   # reachable positions in the work area, parts apart as on a real table
         x, y = rng.uniform(120, 330), rng.uniform(-190, 190)
-        if 130 < np.hypot(x, y) < 340:
+        if 130 < np.hypot(x, y) < 340 and all(np.hypot(x - a, y - b) > 40 for a, b in placed):
+            placed.append((x, y))
             entries.append({"class": str(rng.choice(list(cell.parts))), "x_mm": float(x), "y_mm": float(y),
                             "yaw_deg": float(rng.uniform(-45, 45))})
     parts = parse_parts(entries, cell)
