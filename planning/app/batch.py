@@ -231,9 +231,11 @@ def _thumbnail(image, job: BatchJob) -> str:
 
 
 def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, scheduler: str | None = None,
-              progress=None, resume: bool = False, pictures: Pictures = Pictures.SOME, warn=None) -> list[dict]:
+              progress=None, resume: bool = False, pictures: Pictures = Pictures.SOME, warn=None,
+              stop=None) -> list[dict]:
     """Process every photo of ``folder``; rows come back in photo-name order whatever the worker order.
-    With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone."""
+    With ``resume``, photos whose row a previous batch finished (and that did not change) are not redone.
+    ``stop`` (a ``threading.Event``), once set, ends the batch as a Ctrl-C does (:class:`BatchInterrupted`)."""
     from gripsight.app.run import photos_in
 
     out = output_dir(out)
@@ -261,6 +263,8 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
         rows.update(_run_dask(jobs, scheduler, progress))
     elif workers <= 1:
         for job in jobs:
+            if stop is not None and stop.is_set():
+                raise BatchInterrupted(len(rows), len(photos))
             row = process_photo(job)
             rows[row["photo"]] = row
             if progress:
@@ -268,7 +272,9 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
     else:
         pool = pool_context.Pool(workers, initializer=_worker_start, initargs=(os.getpid(),))
         try:
-            for row in pool.imap_unordered(process_photo, jobs):
+            results = pool.imap_unordered(process_photo, jobs)
+            for _ in range(len(jobs)):
+                row = _next_row(results, stop)
                 rows[row["photo"]] = row
                 if progress:
                     progress(row)
@@ -287,6 +293,21 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             pool.close()
             pool.join()
     return [rows[p.name] for p in photos]
+
+
+def _next_row(results, stop) -> dict:
+    """The next finished row; polls ``stop`` (set by the command's Ctrl-C handler) while it waits, so a
+    Ctrl-C is seen within 0.1 s wherever it lands (a KeyboardInterrupt raised inside an import's or a
+    weakref's callback is swallowed by Python and would let the batch run on)."""
+    import multiprocessing
+
+    while True:
+        if stop is not None and stop.is_set():
+            raise KeyboardInterrupt
+        try:
+            return results.next(timeout=0.1)
+        except multiprocessing.TimeoutError:
+            continue
 
 
 class BatchInterrupted(KeyboardInterrupt):
@@ -369,7 +390,13 @@ def _start_workers_early():
     ctx.set_forkserver_preload(_WORKER_MODULES)
     from multiprocessing import forkserver
 
-    forkserver.ensure_running()
+    # the server (a new interpreter, in the terminal's process group) ignores Ctrl-C from its first
+    # instruction: an ignored signal stays ignored across exec, and the batch stops the server itself
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        forkserver.ensure_running()
+    finally:
+        signal.signal(signal.SIGINT, previous)
     return ctx
 
 

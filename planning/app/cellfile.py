@@ -531,6 +531,10 @@ class _FastUniqueKeyLoader(getattr(yaml, "CSafeLoader", yaml.SafeLoader)):
 
 
 _FastUniqueKeyLoader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
+_FastUniqueKeyLoader.add_implicit_resolver(      # YAML 1.2 numbers here too (see _UniqueKeyLoader)
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?[0-9][0-9_]*(?:\.[0-9_]*)?[eE][-+]?[0-9]+$"),
+    list("-+0123456789"))
 
 
 #: the largest YAML input read (a cell file with every comment is a few kB; parts files of 10,000 parts ~1 MB)

@@ -344,18 +344,36 @@ def batch(
     n = len(photos_in(folder))
     from gripsight.app.batch import BatchInterrupted
 
+    import signal
+    import threading
+
+    stop = threading.Event()
+
+    def _on_ctrl_c(signum, frame):
+        # only a flag: the batch polls it (a KeyboardInterrupt raised here could land inside an import's
+        # callback, where Python swallows it); the first Ctrl-C in a plain step still interrupts it
+        if not stop.is_set() and threading.current_thread() is threading.main_thread():
+            stop.set()
+            if scheduler:
+                raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGINT, _on_ctrl_c)
     try:
         with output_lock(output_dir(out), "batch"), _progress() as bar:
             task = bar.add_task("batch", total=n)
             rows = run_batch(folder, cell_path, calibration, out, workers=workers, scheduler=scheduler,
                              progress=lambda row: bar.advance(task), resume=resume, pictures=chosen,
-                             warn=lambda text: bar.console.print(f"warning: {text}", soft_wrap=True))
+                             warn=lambda text: bar.console.print(f"warning: {text}", soft_wrap=True), stop=stop)
             totals = write_batch_tables(out, rows, cfg)
+            if stop.is_set():
+                raise KeyboardInterrupt
     except KeyboardInterrupt as exc:
         done = f" after {exc.done} of {exc.total} photos" if isinstance(exc, BatchInterrupted) else ""
         typer.echo(f"interrupted{done}; every finished photo's row and outputs are kept in {out}; resume with: "
                    f"gripsight batch {folder} --out {out} --resume", err=True)
         raise typer.Exit(130) from None
+    finally:
+        signal.signal(signal.SIGINT, previous)
     _print_batch(rows, totals, out)
     if totals["errors"]:
         raise typer.Exit(5)
