@@ -37,6 +37,7 @@ __all__ = ["ObstacleSet", "HeldSpec", "held_part_failure", "separated_pairs", "p
 _BOX_MARGIN_MM = 1e-3    # boxes closer than this go to the exact test (pruning never decides a near touch)
 _FLOOR_EPS_MM = 1e-9     # as the per-sample floor test: below floor - this fails
 _TOP_EPS_MM = 1e-9       # as the per-obstacle z test: below top + clearance - this can hit
+_FIRST_CHUNK = 8         # held segments checked together first (about two picks), then twice as many
 
 
 def pad_cyclic(outline_xy_mm: np.ndarray, n_vertices: int) -> np.ndarray:
@@ -133,8 +134,18 @@ def held_part_failure(chain: SampledChain, specs: list, t0_s: float = 0.0) -> tu
     """
     starts = np.asarray(chain.starts, int)
     held = [k for k, spec in enumerate(specs) if spec is not None and starts[k + 1] > starts[k]]
-    if not held:
-        return None
+    first, size = 0, _FIRST_CHUNK
+    while first < len(held):        # in chain order, chunks growing: most chains fail early
+        found = _chunk_failure(chain, specs, held[first:first + size], starts, t0_s)
+        if found is not None:
+            return found
+        first, size = first + size, 2 * size
+    return None
+
+
+def _chunk_failure(chain: SampledChain, specs: list, held: list[int], starts: np.ndarray,
+                   t0_s: float) -> tuple[int, Rejection] | None:
+    """:func:`held_part_failure` on the held segments ``held`` (indices into the chain, in order)."""
     seg_k = np.array(held)
     n_seg = starts[seg_k + 1] - starts[seg_k]
     seg_first = np.concatenate([[0], np.cumsum(n_seg)[:-1]])           # each held segment's first row
