@@ -197,15 +197,11 @@ def _chunk_failure(chain: SampledChain, specs: list, held: list[int], starts: np
 
 def _obstacle_hits(chain, hs, obs: ObstacleSet, rows, seg_of, seg_first, n_seg, xyz, bottom, top):
     """Rows (into the held samples) and obstacle indices where a held part meets an obstacle, pruned
-    by segment, then by sample, then tested exactly."""
-    n_vert = max(len(s.outline_xy_mm) for s in hs)
-    local = np.stack([pad_cyclic(s.outline_xy_mm, n_vert) for s in hs])[seg_of]          # (R, n, 2)
-    base = np.array([s.base_grip_rad for s in hs], float)
-    turn = chain.joints_rad[rows, 0] - base[seg_of]
-    c, s = np.cos(turn)[:, None], np.sin(turn)[:, None]
-    held_xy = np.stack([c * local[..., 0] - s * local[..., 1], s * local[..., 0] + c * local[..., 1]], -1) \
-        + xyz[:, None, :2]
-    lo, hi = held_xy.min(axis=1), held_xy.max(axis=1)                                     # (R, 2)
+    by segment, then by sample (the footprint's box: the tool point +- its farthest vertex), then
+    tested exactly."""
+    # the held footprint turns about the tool point: within a box of its farthest vertex's distance
+    radius = np.array([np.hypot(s.outline_xy_mm[:, 0], s.outline_xy_mm[:, 1]).max() for s in hs])[seg_of]
+    lo, hi = xyz[:, :2] - radius[:, None], xyz[:, :2] + radius[:, None]                 # (R, 2)
     reach_mm = obs.z_hi_mm + obs.clearance_mm - _TOP_EPS_MM                               # (N,)
     mask = np.stack([np.zeros(len(obs), bool) if s.obstacles is None
                      else np.ones(len(obs), bool) if s.obstacle_mask is None else s.obstacle_mask for s in hs])
@@ -227,10 +223,17 @@ def _obstacle_hits(chain, hs, obs: ObstacleSet, rows, seg_of, seg_first, n_seg, 
     r, o = r[keep], o[keep]
     if not r.size:
         return r, o
-    # 3. exact, on the pairs left
+    # 3. exact, on the pairs left: the held footprints of their samples only
+    n_vert = max(len(s.outline_xy_mm) for s in hs)
+    local = np.stack([pad_cyclic(s.outline_xy_mm, n_vert) for s in hs])[seg_of[r]]      # (P, n, 2)
+    base = np.array([s.base_grip_rad for s in hs], float)
+    turn = chain.joints_rad[rows[r], 0] - base[seg_of[r]]
+    c, sn = np.cos(turn)[:, None], np.sin(turn)[:, None]
+    held_xy = np.stack([c * local[..., 0] - sn * local[..., 1], sn * local[..., 0] + c * local[..., 1]], -1) \
+        + xyz[r][:, None, :2]
     n_own = np.array([len(s.outline_xy_mm) for s in hs])[seg_of[r]]
     hit = np.zeros(r.size, bool)
     for n in np.unique(n_own):          # held outlines by vertex count (a box's 4, a round part's 8)
         sel = np.flatnonzero(n_own == n)
-        hit[sel] = ~separated_pairs(held_xy[r[sel], :n], obs.outline_xy_mm[o[sel]], obs.normals_xy[o[sel]])
+        hit[sel] = ~separated_pairs(held_xy[sel, :n], obs.outline_xy_mm[o[sel]], obs.normals_xy[o[sel]])
     return r[hit], o[hit]
