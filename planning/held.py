@@ -15,7 +15,8 @@ descent into its tray) it must stay
 
 each "out of" with the clearance above the obstacle's top. Separation in the table plane is tested on
 the axes of both outlines (separating axis theorem, Gottschalk, Lin & Manocha, "OBBTree", SIGGRAPH
-1996), vectorised over samples. Heights the planner adapts are computed here too
+1996): :func:`_separated_xy` for one obstacle, and :mod:`planning.heldcheck` (``held_part_failure``)
+over a whole chain's samples and all obstacles at once, pruned by boxes and z ranges first. Heights the planner adapts are computed here too
 (:func:`pick_heights`), and :func:`class_carry_problems` says, for ``validate`` and the planner alike,
 which part class cannot be carried at all.
 """
@@ -27,13 +28,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from gripsight.planning.arm import Arm, Reason
-from gripsight.planning.checks import Check, Rejection
 from gripsight.planning.errors import Problem
-from gripsight.planning.motion import SampledChain, SegmentKind
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["Obstacle", "HeldSpec", "PickHeights", "footprint_outline_mm", "static_obstacles", "part_obstacle",
-           "pick_heights", "held_part_failure", "class_carry_problems"]
+__all__ = ["Obstacle", "PickHeights", "footprint_outline_mm", "static_obstacles", "part_obstacle",
+           "pick_heights", "class_carry_problems"]
 
 _ROUND_SIDES = 8     # a circle as the regular 8-gon around it (conservative: contains the circle)
 
@@ -47,19 +46,6 @@ class Obstacle:
     z_lo_mm: float
     z_hi_mm: float
     clearance_mm: float = 0.0      # the held part must pass this far above its top
-
-
-@dataclass(frozen=True)
-class HeldSpec:
-    """What one closed-gripper segment holds and which floor it must stay above (``floor_mm`` None: the
-    lift off the table, where the part may not go below where it stood)."""
-
-    part: PartTarget
-    hang_mm: float                 # below the tool point
-    top_mm: float                  # above the tool point
-    base_grip_rad: float
-    floor_mm: float | None
-    obstacles: tuple = ()
 
 
 @dataclass(frozen=True)
@@ -150,67 +136,6 @@ def _separated_xy(held_xy: np.ndarray, outline: np.ndarray) -> np.ndarray:
     p = np.einsum("mai,mni->man", axes, held_xy)
     q = np.einsum("mai,ki->mak", axes, outline)
     return ((p.max(-1) <= q.min(-1)) | (q.max(-1) <= p.min(-1))).any(-1)
-
-
-def held_part_failure(chain: SampledChain, specs: list, t0_s: float = 0.0) -> tuple[int, Rejection] | None:
-    """The first sample of a sampled chain where a held part hits the table, a tray floor or an obstacle.
-
-    Parameters
-    ----------
-    chain : SampledChain
-    specs : list of HeldSpec or None
-        One per segment of the chain: what it holds (None: nothing).
-    t0_s : float
-        Sequence time of the chain's first sample.
-
-    Returns
-    -------
-    (int, Rejection) or None
-        The failing segment's index and the reason (check ``held_part``, the sample time, the value).
-    """
-    seg_t0 = t0_s + np.concatenate([[0.0], np.cumsum(chain.durations_s[:-1])]) if chain.segments else []
-    for k, spec in enumerate(specs):
-        if spec is None:
-            continue
-        i0, i1 = int(chain.starts[k]), int(chain.starts[k + 1])
-        xyz = chain.xyz_mm[i0:i1]
-        if not len(xyz):
-            continue
-        t_s = seg_t0[k] + chain.t_s[i0:i1]
-        kind = chain.segments[k].kind.value
-        bottom, top = xyz[:, 2] - spec.hang_mm, xyz[:, 2] + spec.top_mm
-        found: list[tuple[int, Rejection]] = []
-        floor = -1e-6 if spec.floor_mm is None else spec.floor_mm - 1e-9
-        low = np.flatnonzero(bottom < floor)
-        if low.size:
-            i = int(low[0])
-            what = ("the table" if spec.floor_mm is None else "the tray floor" if kind == "descend"
-                    else "the table, trays and markers it passes")
-            limit = 0.0 if spec.floor_mm is None else spec.floor_mm
-            found.append((i, Rejection(Check.HELD_PART, f"part {spec.part.id} ({spec.part.height_mm:g} mm tall) would "
-                                       f"hang to z={bottom[i]:.1f} mm, below {limit:g} mm over {what}",
-                                       kind, float(t_s[i]), float(bottom[i]), limit, "mm")))
-        if spec.obstacles:
-            turn = chain.joints_rad[i0:i1, 0] - spec.base_grip_rad
-            c, s = np.cos(turn), np.sin(turn)
-            local = footprint_outline_mm(spec.part.length_mm, spec.part.width_mm, spec.part.yaw_deg, spec.part.round)
-            held_xy = np.stack([c[:, None] * local[:, 0] - s[:, None] * local[:, 1],
-                                s[:, None] * local[:, 0] + c[:, None] * local[:, 1]], -1) + xyz[:, None, :2]
-            for ob in spec.obstacles:
-                z_hit = (bottom < ob.z_hi_mm + ob.clearance_mm - 1e-9) & (top > ob.z_lo_mm)
-                if not z_hit.any():
-                    continue
-                rows = np.flatnonzero(z_hit)
-                hit = rows[~_separated_xy(held_xy[rows], ob.outline_xy_mm)]
-                if hit.size:
-                    i = int(hit[0])
-                    top_txt = f"top z={ob.z_hi_mm:g} mm" + (f" + {ob.clearance_mm:g} mm" if ob.clearance_mm else "")
-                    found.append((i, Rejection(Check.HELD_PART, f"part {spec.part.id} (bottom at z={bottom[i]:.1f} mm) "
-                                               f"would hit {ob.name} ({top_txt}) at ({xyz[i, 0]:.1f}, {xyz[i, 1]:.1f}) mm",
-                                               kind, float(t_s[i]), float(bottom[i]), ob.z_hi_mm + ob.clearance_mm, "mm")))
-        if found:
-            return k, min(found, key=lambda f: f[0])[1]
-    return None
 
 
 def class_carry_problems(cell, arm: Arm) -> list[Problem]:

@@ -26,7 +26,9 @@ from gripsight.planning.cellcheck import cell_problems
 from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
                                        first_failure, grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
-from gripsight.planning.held import HeldSpec, PickHeights, held_part_failure, part_obstacle, pick_heights, static_obstacles
+from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights,
+                                     static_obstacles)
+from gripsight.planning.heldcheck import HeldSpec, ObstacleSet, held_part_failure
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
@@ -128,6 +130,7 @@ class Planner:
         self._raised_ends: dict[tuple, bool] = {}      # pick ends above safe height (over a released tall part)
         self._obstacles = static_obstacles(cell)
         self._table: dict[str, PartTarget] = {}        # parts still on the table (for the held-part check)
+        self._set_table([])
         self._check_cell()
 
     # ------------------------------------------------------------ cell-level checks
@@ -250,13 +253,16 @@ class Planner:
         m = self.cell.motion
         clearance = m.floor_clearance_mm
         carry_floor = clearance + max([0.0] + [b.z for b in self.cell.bins.values()])
-        gone: set[str] = set()
-        current, specs, prev = None, [], None
+        obstacles, index = self._obstacle_set, self._obstacle_index
+        present = np.zeros(len(obstacles), bool)            # static ones, and the parts still on the table
+        present[:len(self._obstacles)] = True
+        present[[index[pid] for pid in self._table if pid in index]] = True
+        current, specs, prev, mask = None, [], None, None
         for seg in segments:
             if seg.part_id != current:
-                if current is not None:
-                    gone.add(current)
-                current = seg.part_id
+                if current is not None and current in index:
+                    present[index[current]] = False             # picked earlier in the chain: gone
+                current, mask = seg.part_id, None
             part = self._table.get(seg.part_id) if seg.part_id is not None else None
             if part is None or not seg.gripper_closed or seg.kind is SegmentKind.CLOSE:
                 specs.append(None)
@@ -268,13 +274,26 @@ class Planner:
                 floor = self.cell.bins[self.bin_for(part)].z + clearance
             else:
                 floor = carry_floor
-            others = tuple(part_obstacle(p, clearance) for pid, p in self._table.items()
-                           if pid != part.id and pid not in gone)
+            if mask is None:
+                mask = present.copy()
+                mask[index[part.id]] = False
             base = float(np.arctan2(part.xy_mm[1], part.xy_mm[0]))
             specs.append(HeldSpec(part, part.height_mm - m.grip_depth_mm, m.grip_depth_mm, base, floor,
-                                  tuple(self._obstacles) + others))
+                                  self._outlines[part.id], obstacles, mask))
             prev = seg
         return specs
+
+    def _set_table(self, parts: list[PartTarget]) -> None:
+        """The parts on the table at the start of a plan, with what the held-part check needs of them once
+        per plan: their footprints around their centres, and every obstacle stacked (static ones, then
+        the parts: ``_obstacle_set``, each part's index in it: ``_obstacle_index``)."""
+        self._table = {p.id: p for p in parts}
+        clearance = self.cell.motion.floor_clearance_mm
+        self._outlines = {pid: footprint_outline_mm(p.length_mm, p.width_mm, p.yaw_deg, p.round)
+                          for pid, p in self._table.items()}
+        n_static = len(self._obstacles)
+        self._obstacle_set = ObstacleSet.of(self._obstacles + [part_obstacle(p, clearance) for p in self._table.values()])
+        self._obstacle_index = {pid: n_static + j for j, pid in enumerate(self._table)}
 
     def _above_bin(self, bin_name: str) -> np.ndarray:
         """Above a bin at safe height: where every pick into it leaves the tool."""
@@ -312,7 +331,7 @@ class Planner:
         start_mm = self.arm.forward(q0[None])[0]
         outcomes: dict[str, PartOutcome] = {}
         candidates: list[PartTarget] = []
-        self._table = {p.id: p for p in parts}
+        self._set_table(parts)
         all_heights = [p.height_mm for p in parts]
         heights: dict[str, PickHeights] = {}
         for k, part in enumerate(parts):
