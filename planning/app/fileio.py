@@ -173,7 +173,8 @@ def strict_json(data, indent: int | None = 2) -> str:
 def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
     """Write several files as one step: every new file is written and flushed under a temporary name
     first, and only when all are on disk do they take their names (renames, which need no space). A
-    failure before that (a full disk) removes the temporaries and leaves every old file as it was."""
+    failure before that (a full disk) removes the temporaries and leaves every old file as it was.
+    Inside :func:`without_fsync` the files are written whole but not flushed to the disk (see the module)."""
     temps: list[tuple[str, Path]] = []
     try:
         for path, data in items:
@@ -183,7 +184,8 @@ def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
             with os.fdopen(fd, "wb") as fh:
                 fh.write(data)
                 fh.flush()
-                os.fsync(fh.fileno())
+                if _FSYNC.get():
+                    os.fsync(fh.fileno())
             os.chmod(tmp, 0o666 & ~_umask())             # as any new file, not mkstemp's 0600
         for tmp, target in temps:
             os.replace(tmp, target)

@@ -70,6 +70,36 @@ def test_the_gripper_changing_outside_a_close_or_open_dwell_is_refused(joints_te
         check_joint_file_text(_edit(text, i, 9, "closed"), cell)
 
 
+def test_the_file_is_read_as_csv_reader_reads_it(joints_text):
+    # the check splits a file without quotes on commas in one pass: the same fields as the standard
+    # library's csv.reader (the reference), with and without a quoted part id in the file
+    from gripsight.app.jointcheck import _table
+
+    cell, text = joints_text
+    for variant in (text, text.replace(",r1,", ',"r,1",')):
+        rows = _rows_of(variant)
+        header, columns = _table(variant, "joints.csv")
+        assert header == _header_of(variant)
+        assert [list(r) for r in zip(*columns)] == rows
+    assert ",r1," in text and '"r,1"' not in text
+
+
+def test_a_row_of_another_width_and_a_word_among_numbers_are_refused(joints_text):
+    cell, text = joints_text
+    lines = text.split("\n")
+    body = [i for i, line in enumerate(lines) if line and not line.startswith("#")]
+    short = lines.copy()
+    short[body[5]] = short[body[5]].rsplit(",", 1)[0]
+    with pytest.raises(JointFileRefused, match=r"row 5 with 13 fields, not 14"):
+        check_joint_file_text("\n".join(short), cell)
+    with pytest.raises(JointFileRefused, match=r"not numbers where numbers belong \(could not convert string to float: 'x'\)"):
+        check_joint_file_text(_edit(_edit(text, 9, 8, "x"), 30, 6, "y"), cell)     # row 10's elbow comes first
+
+
+def _header_of(text):
+    return next(csv.reader([line for line in text.split("\n") if line and not line.startswith("#")]))
+
+
 def _rows_of(text):
     return list(csv.reader([line for line in text.split("\n") if line and not line.startswith("#")]))[1:]
 
