@@ -142,33 +142,45 @@ _REGION_CACHE: dict = {}
 
 
 def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
-    """The searched region, cached: in a run every photo of one calibration shares it."""
-    key = _region_key(shape, mapping, cell, detections)
+    """The searched region. The work area grown by the search margin depends on the photo's size, the
+    mapping and the cell only, so it is kept per mapping (by value): every photo of one calibration
+    shares it and its region. Raised markers and markers not in the layout are cut out per photo; where
+    their holes miss the grown area, the shared region is the photo's."""
+    key = _region_key(shape, mapping, cell)
     cached = _REGION_CACHE.get(key)
-    if cached is not None:
-        return cached
-    mask = _build_valid_mask(shape, mapping, cell, detections)
+    if cached is None:
+        grown = _grown_work_area(shape, mapping, cell)
+        cached = (grown, _region_of(grown, mapping, cell), cv2.countNonZero(grown))
+        if len(_REGION_CACHE) >= 8:
+            _REGION_CACHE.clear()
+        _REGION_CACHE[key] = cached
+    grown, region, count = cached
+    holes = _marker_holes(cell, detections)
+    if not holes:
+        return region
+    mask = grown.copy()
+    for hole in holes:
+        cv2.fillPoly(mask, [hole], 0, shift=3)
+    if cv2.countNonZero(mask) == count:
+        return region
+    return _region_of(mask, mapping, cell)
+
+
+def _region_of(mask, mapping, cell) -> _SearchRegion:
     u0, v0, w, h = cv2.boundingRect(mask)
     valid = mask[v0:v0 + h, u0:u0 + w] > 0
     block_px = block_size_px(_smallest_part_px(mapping, cell))
     valid_small = coarse_mask(valid, block_px)
-    edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0)
-    region = _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
-    if len(_REGION_CACHE) > 8:
-        _REGION_CACHE.clear()
-    _REGION_CACHE[key] = region
-    return region
+    edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0) if valid.size else valid
+    return _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
 
 
-def _region_key(shape, mapping, cell, detections) -> tuple:
-    """Everything the searched region depends on, by value: the photo size, the mapping, the cell's work
-    area, markers and part sizes, and where the markers were seen (to the pixel)."""
-    corners_px = np.round(np.array([d.corners_px for d in detections], float).reshape(-1, 2)).astype(np.int32)
+def _region_key(shape, mapping, cell) -> tuple:
+    """Everything the grown work area and its region depend on, by value: the photo size, the mapping,
+    the cell's work area and part sizes."""
     sizes = tuple((name, tuple(c.footprint_mm)) for name, c in cell.parts.items())
-    layout = tuple((i, m.x, m.y, m.z, m.yaw_deg) for i, m in cell.markers.layout.items())
     return (tuple(shape), mapping.H_table_from_pixel.tobytes(), repr(mapping.lens.as_dict()),
-            tuple(map(tuple, cell.work_area)), cell.markers.size_mm, cell.markers.margin_mm, layout, sizes,
-            tuple(d.id for d in detections), corners_px.tobytes())
+            tuple(map(tuple, cell.work_area)), sizes)
 
 
 def _smallest_part_px(mapping, cell) -> float:
@@ -182,29 +194,54 @@ def _smallest_part_px(mapping, cell) -> float:
     return smallest_mm / float(mapping.mm_per_px(where).max())
 
 
-def _build_valid_mask(shape, mapping, cell, detections) -> np.ndarray:
+#: the smallest step of OpenCV's 3x3 chamfer distance (DIST_L2, mask 3: 0.955 a pixel across, 1.3693
+#: diagonally; cv2.distanceTransform's documentation), rounded down
+_CHAMFER_STEP_PX = 0.95
+
+
+def _grown_work_area(shape, mapping, cell) -> np.ndarray:
+    """The work area in the photo grown by the search margin (uint8, 255 inside), zero on the photo's
+    one-pixel edge: every pixel whose distance to the area (OpenCV's 3x3 chamfer distance) is at most
+    the margin. The distance is computed over the area's bounding box grown by the margin's reach
+    only: a chamfer distance is the cost of the cheapest path of pixel steps, and such a path between
+    two pixels stays in the box they span, so every pixel of the grown box gets the distance the whole
+    photo would give it, and every pixel outside is farther than the margin (tested against the whole
+    photo's transform)."""
     h, w = shape
     mask = np.zeros((h, w), np.uint8)
     wa = _poly_px(mapping, cell.work_area)
     cv2.fillPoly(mask, [np.round(wa * 8).astype(np.int32)], 255, lineType=cv2.LINE_8, shift=3)
     centre_px = wa.mean(axis=0)
     grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(centre_px[None])[0])
-    outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
-    mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
-    # markers on the table are left in: their paper and ink are not a part's colour, and a part beside or
-    # on one is whole (whether it lies on a marker is decided from its footprint, in table mm). A raised
-    # marker's box hides what is behind it: the marker as seen is masked, and any marker not in the layout.
+    out = np.zeros((h, w), np.uint8)
+    u0, v0, bw, bh = cv2.boundingRect(mask)
+    if bw == 0 or bh == 0:
+        return out                  # no pixel of the work area in the photo: nothing within any distance
+    reach = int(np.ceil(grow_px / _CHAMFER_STEP_PX)) + 2 if np.isfinite(grow_px) else max(h, w)
+    reach = max(reach, 2)
+    x0, y0, x1, y1 = max(u0 - reach, 0), max(v0 - reach, 0), min(u0 + bw + reach, w), min(v0 + bh + reach, h)
+    outside = cv2.distanceTransform(255 - mask[y0:y1, x0:x1], cv2.DIST_L2, 3)
+    out[y0:y1, x0:x1] = np.where(outside <= grow_px, 255, 0)
+    out[0, :] = out[-1, :] = 0
+    out[:, 0] = out[:, -1] = 0
+    return out
+
+
+def _marker_holes(cell, detections) -> list[np.ndarray]:
+    """The markers cut out of the searched area (polygons in 1/8 px): markers on the table are left in
+    (their paper and ink are not a part's colour, and a part beside or on one is whole: whether it lies
+    on a marker is decided from its footprint, in table mm). A raised marker's box hides what is behind
+    it: the marker as seen is masked, and any marker not in the layout."""
     pad = 2.0
+    holes = []
     for d in detections:
         placement = cell.markers.layout.get(d.id)
         if placement is not None and placement.z == 0:
             continue
         c = d.corners_px.mean(axis=0)
         grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + pad) / cell.markers.size_mm)
-        cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
-    border = np.zeros_like(mask)
-    border[1:-1, 1:-1] = 255
-    return cv2.bitwise_and(mask, border)
+        holes.append(np.round(grown * 8).astype(np.int32))
+    return holes
 
 
 # ------------------------------------------------------------------ the detector

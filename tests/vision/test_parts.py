@@ -368,3 +368,70 @@ def test_white_balance_field_is_its_fitted_polynomial(terms):
     grid = ill.field(u[None, :40], v[:30, None])                                       # a row and a column
     at = np.column_stack(ill._features(np.array([u[11]]), np.array([v[7]]))) @ ill.coeffs.T
     np.testing.assert_allclose(grid[7, 11], at[0], atol=1e-5)
+
+
+def _whole_photo_region(shape, mapping, cell, detections):
+    """The searched region as it was first computed, OpenCV's distance transform over the whole photo
+    and every marker hole in one mask: the reference for the cached, boxed computation."""
+    from gripsight.vision.parts import _SearchRegion, _poly_px, _search_margin_mm, _smallest_part_px
+    from gripsight.vision.pixelclass import block_size_px, coarse_mask
+
+    h, w = shape
+    mask = np.zeros((h, w), np.uint8)
+    wa = _poly_px(mapping, cell.work_area)
+    cv2.fillPoly(mask, [np.round(wa * 8).astype(np.int32)], 255, lineType=cv2.LINE_8, shift=3)
+    grow_px = _search_margin_mm(cell) / float(mapping.mm_per_px(wa.mean(axis=0)[None])[0])
+    outside = cv2.distanceTransform(255 - mask, cv2.DIST_L2, 3)
+    mask = np.where(outside <= grow_px, 255, 0).astype(np.uint8)
+    for d in detections:
+        placement = cell.markers.layout.get(d.id)
+        if placement is not None and placement.z == 0:
+            continue
+        c = d.corners_px.mean(axis=0)
+        grown = c + (d.corners_px - c) * (1 + 2 * (cell.markers.margin_mm + 2.0) / cell.markers.size_mm)
+        cv2.fillPoly(mask, [np.round(grown * 8).astype(np.int32)], 0, shift=3)
+    border = np.zeros_like(mask)
+    border[1:-1, 1:-1] = 255
+    mask = cv2.bitwise_and(mask, border)
+    u0, v0, rw, rh = cv2.boundingRect(mask)
+    valid = mask[v0:v0 + rh, u0:u0 + rw] > 0
+    block_px = block_size_px(_smallest_part_px(mapping, cell))
+    edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0) if valid.size else valid
+    return _SearchRegion((u0, v0, rw, rh), valid, coarse_mask(valid, block_px), edge_band, block_px)
+
+
+def test_searched_region_is_the_whole_photo_computation():
+    # the grown work area is computed in a box around it and shared by the photos of one mapping, the
+    # marker holes cut per photo: the same region, pixel for pixel, as OpenCV's distance transform over
+    # the whole photo (the reference) for the batch photos' mappings, moved, turned and scaled so the
+    # work area is cut by the photo's edge or lies outside it, with the raised marker seen, moved, gone
+    from dataclasses import replace as replaced
+
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.pipeline import load_or_make_calibration
+    from gripsight.vision.markers import detect_markers
+    from gripsight.vision.parts import _REGION_CACHE, _search_region
+
+    cell = load_cell(SAMPLE_CELL)
+    stored = load_or_make_calibration(cell, None)
+    rng = np.random.default_rng(5)
+    photos = sorted((SAMPLES / "batch").glob("*.jpg"))[:6]
+    cases = 0
+    for photo in photos:
+        image = cv2.imread(str(photo))
+        dets = detect_markers(image, cell.markers.dictionary)
+        raised = [d for d in dets if d.id == 9]
+        for far in (0, 0, 0, 0, 0, 5000):
+            a, t = rng.uniform(-0.3, 0.3), rng.uniform(-250, 250, 2) + far
+            s = rng.uniform(0.5, 1.5)
+            move = np.array([[s * np.cos(a), -s * np.sin(a), t[0]], [s * np.sin(a), s * np.cos(a), t[1]], [0, 0, 1]])
+            mapping = replaced(stored.mapping, H_table_from_pixel=stored.mapping.H_table_from_pixel @ np.linalg.inv(move))
+            shifted = [replaced(d, corners_px=d.corners_px + rng.uniform(-40, 40, 2)) for d in raised]
+            for markers in (dets, [], shifted, dets + shifted):
+                got = _search_region(image.shape[:2], mapping, cell, markers)
+                want = _whole_photo_region(image.shape[:2], mapping, cell, markers)
+                assert got.rect == want.rect and got.block_px == want.block_px
+                for name in ("valid", "valid_small", "edge_band"):
+                    assert np.array_equal(getattr(got, name), getattr(want, name)), name
+                cases += 1
+    assert cases == 144 and len(_REGION_CACHE) <= 8
