@@ -7,8 +7,8 @@ import numpy as np
 
 from gripsight.vision.calibration import MarkerRole
 
-__all__ = ["calibration_overlay", "detection_overlay", "drift_overlay", "draw_panel", "draw_path_3d", "draw_polyline_mm",
-           "table_point_px", "top_centre_px"]
+__all__ = ["calibration_overlay", "detection_overlay", "detection_thumbnail", "drift_overlay", "draw_panel", "draw_path_3d",
+           "draw_polyline_mm", "shrink", "table_point_px", "top_centre_px"]
 
 # BGR
 _USED = (60, 170, 40)
@@ -138,6 +138,43 @@ def detection_overlay(image_bgr, detection, mapping, camera_centre_mm, cell) -> 
     draw_panel(out, [f"parts: {summary}", "cross: pick point (top face centre); red: rejected, with reason"],
                corner="bottom-left")
     return out
+
+
+def shrink(image_bgr, width_px: int) -> np.ndarray:
+    """The image scaled to ``width_px`` wide (aspect kept), averaging pixels (INTER_AREA); a photo at
+    least four times as wide is first averaged by 4 x 4 blocks (a quarter of the pixels for INTER_AREA's
+    exact weights, the same look)."""
+    h, w = image_bgr.shape[:2]
+    size = (width_px, max(1, int(h * width_px / max(w, 1))))
+    if w >= 4 * width_px and h >= 8:
+        image_bgr = cv2.resize(image_bgr, (w // 4, h // 4), interpolation=cv2.INTER_AREA)
+    return cv2.resize(image_bgr, size, interpolation=cv2.INTER_AREA)
+
+
+def detection_thumbnail(image_bgr, detection, mapping, camera_centre_mm, cell, width_px: int = 240) -> np.ndarray:
+    """What :func:`detection_overlay` shows, drawn on the photo shrunk to ``width_px`` (a report's
+    thumbnail): the work area, each part's outline and pick point, white (rejected parts red; a part's
+    own colour shows inside). No text: it cannot be read at that size (the full overlay has it). Drawn at the
+    small size, the lines stay one pixel wide instead of fading out with the photo's pixels, and the
+    photo is shrunk before anything is drawn (a tenth of the time of an overlay shrunk)."""
+    small = shrink(image_bgr, width_px)
+    h, w = image_bgr.shape[:2]
+    scale = np.array([small.shape[1] / w, small.shape[0] / h])
+
+    def fixed(uv_px) -> np.ndarray:           # photo pixels -> the thumbnail's, in 1/16 px (pixel centres kept)
+        return np.round(((np.asarray(uv_px, float) + 0.5) * scale - 0.5) * 16).astype(np.int32)
+
+    wa = np.vstack([cell.work_area, cell.work_area[:1]]).astype(float)
+    t = np.linspace(0, 1, 20)[:, None]
+    edge_mm = np.concatenate([a + t * (b - a) for a, b in zip(wa[:-1], wa[1:])])
+    cv2.polylines(small, [fixed(mapping.inverse(edge_mm))], False, (255, 200, 0), 1, cv2.LINE_AA, shift=4)
+    for p in detection.parts:
+        colour = (255, 255, 255) if p.status == "ok" else _MOVED
+        if p.outline_px is not None:
+            cv2.polylines(small, [fixed(p.outline_px)], True, colour, 1, cv2.LINE_AA, shift=4)
+        c = np.round((top_centre_px(mapping, camera_centre_mm, p.xy_mm, p.height_mm) + 0.5) * scale - 0.5).astype(int)
+        cv2.drawMarker(small, (int(c[0]), int(c[1])), colour, cv2.MARKER_CROSS, 5, 1)
+    return small
 
 
 def table_point_px(mapping, camera_centre_mm, xyz_mm) -> np.ndarray:

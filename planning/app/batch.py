@@ -114,11 +114,13 @@ def _process_photo(job: BatchJob) -> dict:
         _, overlay = write_photo_outputs(out, pp, cell, arm, stored, pictures=pictures)
         row["overlay"] = overlay is not None
         if overlay is None and pp.analysis.detection is not None:
-            from gripsight.vision.overlay import detection_overlay
+            from gripsight.vision.overlay import detection_thumbnail
 
-            overlay = detection_overlay(pp.analysis.image, pp.analysis.detection, reg.mapping,
-                                        reg.camera_centre_mm, cell)
-        row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
+            small = detection_thumbnail(pp.analysis.image, pp.analysis.detection, reg.mapping, reg.camera_centre_mm,
+                                        cell, job.thumbnail_px)
+            row["thumbnail"] = _jpeg_base64(small)
+        else:
+            row["thumbnail"] = _thumbnail(overlay if overlay is not None else pp.analysis.image, job)
     except EXPECTED_ERRORS as exc:
         row["error"] = str(exc)
     except Exception as exc:  # noqa: BLE001 - one bad photo must not stop the batch; the row says what failed
@@ -216,17 +218,16 @@ def _truth_stats(photo: str, pp, cell) -> dict | None:
 
 def _thumbnail(image, job: BatchJob) -> str:
     """A small JPEG of the overlay (or the photo), base64, for the self-contained report."""
+    from gripsight.vision.overlay import shrink
+
+    return _jpeg_base64(shrink(image, job.thumbnail_px))
+
+
+def _jpeg_base64(small) -> str:
     import base64
 
     import cv2
 
-    h, w = image.shape[:2]
-    scale = job.thumbnail_px / max(w, 1)
-    size = (job.thumbnail_px, max(1, int(h * scale)))
-    # shrink by 4 with plain averaging first (a quarter of the pixels for INTER_AREA's exact weights)
-    if w >= 4 * job.thumbnail_px and h >= 8:
-        image = cv2.resize(image, (w // 4, h // 4), interpolation=cv2.INTER_AREA)
-    small = cv2.resize(image, size, interpolation=cv2.INTER_AREA)
     return base64.b64encode(cv2.imencode(".jpg", small, [cv2.IMWRITE_JPEG_QUALITY, 70])[1].tobytes()).decode()
 
 

@@ -25,9 +25,18 @@ _FRAME = (90, 90, 90)
 
 
 def png_bytes(image: np.ndarray) -> bytes:
-    """Lossless PNG, encoded fast: zlib level 1, the "up" filter and run-length matching. On the demo
-    overlays (1280x960 photos) that is 30-40 % faster than OpenCV's default settings and a third
-    smaller; on the charts about 40 % faster at half the size (measured on this machine)."""
+    """Lossless PNG, encoded fast: the "up" filter and deflate at its fastest level. An 8-bit BGR image
+    is filtered here (numpy) and deflated by ISA-L (the ``isal`` package): on the demo overlays (1280 x
+    960 photos) 4x faster than OpenCV's encoder at its fastest settings, the same size; elsewhere, or
+    without ``isal``, OpenCV encodes it (zlib level 1, "up" filter, run-length matching: 30-40 %
+    faster than its defaults and a third smaller). Measured on this machine."""
+    if image.dtype == np.uint8 and image.ndim == 3 and image.shape[2] == 3 and image.size:
+        try:
+            from isal import isal_zlib
+        except ImportError:
+            pass
+        else:
+            return _png_rgb8(image, isal_zlib.compress)
     params = [cv2.IMWRITE_PNG_COMPRESSION, 1, cv2.IMWRITE_PNG_STRATEGY, cv2.IMWRITE_PNG_STRATEGY_RLE]
     if hasattr(cv2, "IMWRITE_PNG_FILTER"):           # OpenCV 4.10 and later
         params += [cv2.IMWRITE_PNG_FILTER, cv2.IMWRITE_PNG_FILTER_UP]
@@ -35,6 +44,27 @@ def png_bytes(image: np.ndarray) -> bytes:
     if not ok:
         raise ValueError("PNG encoding failed")
     return buf.tobytes()
+
+
+def _png_rgb8(image_bgr: np.ndarray, deflate) -> bytes:
+    """A PNG file of an 8-bit BGR image (PNG specification, ISO/IEC 15948: IHDR for 8-bit RGB, one
+    IDAT of the zlib stream ``deflate(data, 1)`` gives, IEND), every row with filter 2 ("up": each byte
+    less the byte above it, modulo 256; the row above the first is zeros)."""
+    import struct
+    import zlib
+
+    h, w = image_bgr.shape[:2]
+    rows = cv2.cvtColor(image_bgr, cv2.COLOR_BGR2RGB).reshape(h, 3 * w)
+    data = np.empty((h, 3 * w + 1), np.uint8)
+    data[:, 0] = 2
+    data[0, 1:] = rows[0]
+    np.subtract(rows[1:], rows[:-1], out=data[1:, 1:])
+
+    def chunk(kind: bytes, body: bytes) -> bytes:
+        return struct.pack(">I", len(body)) + kind + body + struct.pack(">I", zlib.crc32(body, zlib.crc32(kind)))
+
+    header = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)        # 8 bits, RGB, deflate, adaptive, no interlace
+    return b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", header) + chunk(b"IDAT", deflate(data, 1)) + chunk(b"IEND", b"")
 
 
 def bgr(hex_rgb: str) -> tuple[int, int, int]:

@@ -148,3 +148,53 @@ def test_batch_draws_pictures_where_they_are_worth_it_and_keeps_every_thumbnail(
     assert (out / "batch_02.jpg" / "overlay.png").is_file()
     assert main(["batch", str(folder), "--out", str(out), "--pictures", "many"]) == 1
     assert "--pictures: expected some, all or none, got 'many'" in capsys.readouterr().err
+
+
+def test_a_thumbnail_marks_every_part_found_where_the_full_overlay_does():
+    # the report's thumbnail of a photo without overlay.png is drawn at its own size: each part's pick
+    # cross lies where the full overlay's cross lies, scaled (pixel centres: (u + 0.5) s - 0.5), and the
+    # rest is the photo shrunk as before (INTER_AREA)
+    from gripsight.app.cellfile import load_cell
+    from gripsight.app.pipeline import analyse_photo, load_or_make_calibration
+    from gripsight.vision.overlay import detection_thumbnail, shrink, top_centre_px
+
+    cell = load_cell(SAMPLES / "cell.yaml")
+    a = analyse_photo(SAMPLES / "batch" / "batch_03.jpg", cell, load_or_make_calibration(cell, None))
+    reg = a.registration
+    small = detection_thumbnail(a.image, a.detection, reg.mapping, reg.camera_centre_mm, cell, 240)
+    plain = shrink(a.image, 240)
+    assert small.shape == plain.shape == (180, 240, 3)
+    assert len(a.detection.parts) == 8
+    for p in a.detection.parts:
+        uv = (top_centre_px(reg.mapping, reg.camera_centre_mm, p.xy_mm, p.height_mm) + 0.5) * 240 / 1280 - 0.5
+        u, v = np.round(uv).astype(int)
+        assert (small[v, u] == 255).all() and (small[v, u + 2] == 255).all()      # the white cross, 5 px
+    drawn = np.any(small != plain, axis=2)
+    assert 0.02 < drawn.mean() < 0.12                # the work area, outlines and crosses; the photo elsewhere
+
+
+@pytest.mark.parametrize("height, width", [(960, 1280), (1, 1), (7, 333), (700, 1200)])
+def test_png_files_decode_to_the_image_with_and_without_isal(height, width, monkeypatch):
+    # the PNG writer (filter "up", ISA-L's deflate) against OpenCV's decoder (the reference); without
+    # the isal package OpenCV encodes, and the file decodes to the same image
+    import builtins
+
+    from gripsight.app.chart import png_bytes
+
+    rng = np.random.default_rng(height)
+    image = rng.integers(0, 256, (height, width, 3), dtype=np.uint8)
+    image[: height // 2] = image[: height // 2] // 64 * 64          # flat areas as well as noise
+    fast = png_bytes(image)
+    assert fast[:8] == b"\x89PNG\r\n\x1a\n"
+    assert np.array_equal(cv2.imdecode(np.frombuffer(fast, np.uint8), cv2.IMREAD_UNCHANGED), image)
+    real_import = builtins.__import__
+
+    def no_isal(name, *args, **kwargs):
+        if name == "isal":
+            raise ImportError("no isal here")
+        return real_import(name, *args, **kwargs)
+
+    monkeypatch.setattr(builtins, "__import__", no_isal)
+    slow = png_bytes(image)
+    assert slow != fast
+    assert np.array_equal(cv2.imdecode(np.frombuffer(slow, np.uint8), cv2.IMREAD_UNCHANGED), image)
