@@ -374,9 +374,12 @@ def _alive(pid: int) -> bool:
 
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell
+# (scipy.optimize: the refit's least squares, imported on a worker's first photo, a quarter of a second;
+# a module that cannot be imported is skipped by the fork server)
 _WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot",
                    "gripsight.vision.parts", "gripsight.vision.markers", "gripsight.vision.drift",
-                   "gripsight.vision.overlay", "gripsight.app.truthcheck", "yaml"]
+                   "gripsight.vision.overlay", "gripsight.app.truthcheck", "gripsight.app.jointcheck", "yaml",
+                   "scipy.optimize", "isal.isal_zlib"]
 
 
 def _start_workers_early():
