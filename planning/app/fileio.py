@@ -167,7 +167,10 @@ def strict_json(data, indent: int | None = 2) -> str:
             return clean(value.item())
         return value
 
-    return json.dumps(clean(data), indent=indent, allow_nan=False)
+    try:        # plain data with finite floats (a plan, a row): written as it is, without the copy
+        return json.dumps(data, indent=indent, allow_nan=False)
+    except (TypeError, ValueError):
+        return json.dumps(clean(data), indent=indent, allow_nan=False)
 
 
 def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:

@@ -412,3 +412,15 @@ def test_every_error_message_is_in_the_developers_table():
     flat = re.sub(r"[`*]", "", table)
     missing = [(f, line, text) for f, line, text in _messages_in_code() if re.sub(r"[`*]", "", text) not in flat]
     assert not missing, "add these to DEVELOPERS.md's error table:\n" + "\n".join(f"{f}:{n}: {t}" for f, n, t in missing)
+
+
+def test_strict_json_writes_null_for_non_finite_floats_and_numpy_scalars_as_numbers():
+    # RFC 8259 has no NaN or Infinity; Python's json module (the reference for everything else) reads
+    # the text back to the same values
+    from gripsight.app.fileio import strict_json
+
+    plain = {"a": [1, 2.5, "x", None, True], "b": {"c": (1.0, -0.0)}}
+    assert strict_json(plain, indent=None) == json.dumps(plain)
+    odd = {"nan": float("nan"), "inf": [float("inf"), np.float64(-np.inf)], "n": np.int64(3), "f": np.float32(0.5),
+           "ok": np.bool_(True), "t": (np.float64(2.0),)}
+    assert json.loads(strict_json(odd)) == {"nan": None, "inf": [None, None], "n": 3, "f": 0.5, "ok": True, "t": [2.0]}

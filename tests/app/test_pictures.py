@@ -198,3 +198,21 @@ def test_png_files_decode_to_the_image_with_and_without_isal(height, width, monk
     slow = png_bytes(image)
     assert slow != fast
     assert np.array_equal(cv2.imdecode(np.frombuffer(slow, np.uint8), cv2.IMREAD_UNCHANGED), image)
+
+
+def test_a_simplified_curve_stays_within_a_quarter_pixel_of_every_sample():
+    # Douglas-Peucker (OpenCV's approxPolyDP) on a dense joint curve: ends kept, far fewer points, and
+    # every sample within 0.25 px (4 sixteenths) of the drawn polyline, measured here point to segment
+    from gripsight.app.chart import _simplified
+
+    t = np.linspace(0, 40, 2400)
+    uv = np.column_stack([30 + t * 27.0, 300 + 120 * np.sin(t / 3) * (t % 7 < 5)])
+    fixed = np.round(uv * 16).astype(np.int32)
+    kept = _simplified(fixed)
+    assert (kept[0] == fixed[0]).all() and (kept[-1] == fixed[-1]).all()
+    assert len(kept) < len(fixed) / 5
+    a, b = kept[:-1].astype(float), kept[1:].astype(float)
+    d = b - a
+    s = np.clip(((fixed[:, None, :] - a) * d).sum(axis=2) / np.maximum((d * d).sum(axis=1), 1e-9), 0, 1)
+    gap = np.linalg.norm(fixed[:, None, :] - (a + s[..., None] * d), axis=2).min(axis=1)
+    assert gap.max() <= 4.0 + 1e-9
