@@ -22,7 +22,7 @@ PAIRS = 50
 
 # Two long-lived drivers (the import is paid once); before trial k each touches its ready file and waits
 # for the other's, so both commands reach the lock within a millisecond or so; the winner then works on
-# one photo (hundreds of ms), far longer than that skew.
+# four photos (a few hundred ms even since a photo takes tens of ms), far longer than that skew.
 _DRIVER = r"""
 import contextlib, io, json, sys, time
 from pathlib import Path
@@ -51,7 +51,8 @@ def one_photo(tmp_path_factory):
     shutil.copy(SAMPLE_CELL, tmp / "cell.yaml")
     folder = tmp / "photos"
     folder.mkdir()
-    shutil.copy(SAMPLES / "demo" / "demo_01.jpg", folder / "demo_01.jpg")
+    for name in ("demo_01.jpg", "demo_02.jpg", "demo_03.jpg", "demo_04.jpg"):   # work far longer than the skew
+        shutil.copy(SAMPLES / "demo" / name, folder / name)
     cal = tmp / "calibration.yaml"
     assert main(["calibrate", str(SAMPLES / "calibration.jpg"), "--cell", str(tmp / "cell.yaml"), "--out", str(cal)]) == 0
     return folder, cal
