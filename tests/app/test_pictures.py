@@ -216,3 +216,40 @@ def test_a_simplified_curve_stays_within_a_quarter_pixel_of_every_sample():
     s = np.clip(((fixed[:, None, :] - a) * d).sum(axis=2) / np.maximum((d * d).sum(axis=1), 1e-9), 0, 1)
     gap = np.linalg.norm(fixed[:, None, :] - (a + s[..., None] * d), axis=2).min(axis=1)
     assert gap.max() <= 4.0 + 1e-9
+
+
+@pytest.mark.parametrize("decimals", [0, 1, 4, 6])
+def test_fixed_point_text_is_pythons_percent_format(decimals):
+    # reference: Python's '%.Nf' (correctly rounded, ties to even) value by value; exact ties (0.03125
+    # at 4 decimals), values a hair from a half, negative zero and negatives that round to zero included
+    from gripsight.app.fixedtext import fixed_slots, joined_rows
+
+    rng = np.random.default_rng(decimals)
+    for scale in (1e-7, 1e-3, 1.0, 300.0, 2000.0):
+        if 6 * scale * 10 ** decimals >= 2 ** 30:       # beyond the fast path's range (angles: 360 deg at 6)
+            continue
+        v = rng.normal(0, scale, 5000)
+        v[:10] = [0.0, -0.0, 4e-8, -4e-8, 0.03125, -0.03125, 2.5, 0.5, 9.9999999999, -1e-12]
+        half = (np.floor(v[10:20] * 10.0 ** decimals) + 0.5) / 10.0 ** decimals
+        v[10:20] = np.nextafter(half, half + rng.choice([-1, 1], 10))       # a hair from a half
+        slots = fixed_slots(v, decimals)
+        assert slots is not None
+        assert joined_rows([slots]).decode().split("\n")[:-1] == ["%.*f" % (decimals, x) for x in v]
+    assert fixed_slots(np.array([1.0, np.nan]), 2) is None and fixed_slots(np.array([3e9]), 1) is None
+
+
+def test_joint_rows_fall_back_to_python_where_a_number_needs_it():
+    from gripsight.app.export import _sample_rows_numpy
+
+    n = 50
+    rng = np.random.default_rng(3)
+    t, q, pulses = np.arange(n) * 0.02, rng.normal(0, 60, (n, 3)), rng.uniform(500, 2500, (n, 3))
+    xyz = rng.normal(0, 200, (n, 3))
+    kinds, parts, closed = ["transfer"] * n, ["p1"] * n, rng.random(n) > 0.5
+    grip_us = np.where(closed, 1850, 1000)
+    s = SimpleNamespace(t_s=t, segment_kind=kinds, part_id=parts, xyz_mm=xyz, gripper_closed=closed)
+    texts = [kinds, parts, np.where(closed, "closed", "open").tolist()]
+    assert _sample_rows_numpy(s, q, pulses, grip_us, texts) is not None
+    xyz[7, 2] = np.nan                                   # numpy cannot promise Python's text: Python writes it
+    assert _sample_rows_numpy(s, q, pulses, grip_us, texts) is None
+    assert _sample_rows(s, q, pulses, grip_us) == _rows_by_csv_module(t, kinds, parts, xyz, q, closed, pulses, grip_us)
