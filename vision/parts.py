@@ -33,6 +33,7 @@ import numpy as np
 from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
 from gripsight.vision.polygon import points_in_polygon
 from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.outlineedge import edge_outlines_px
 from gripsight.vision.topface import (
     TopFaceProblem,
     expected_area_mm2,
@@ -235,7 +236,7 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     groups = colour_groups(cell.parts)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
+    search = _Search(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -323,7 +324,8 @@ class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+    def __init__(self, image_bgr, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+        self.image_bgr = image_bgr
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
         self.groups: dict[str, ColourGroup] = groups
@@ -402,7 +404,8 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     classified, mapping, nadir, parallax = search.classified, search.mapping, search.nadir, search.parallax
     u0, v0 = classified.origin
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
-    outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
+    on_edges = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
+    outlines_mm = np.split(mapping(np.concatenate(on_edges)), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
     outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
