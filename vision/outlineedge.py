@@ -6,8 +6,8 @@ the mixed pixels fall out of the class sooner or later than against bright wood,
 outline leans to one side by a fraction of a pixel, and a top-face fit with it (measured on the outside
 photo set: the outer outline 0.4-0.58 mm inside the true top face, 0.15 mm more on the shadow side).
 
-Each outline point is moved along its outward normal onto the edge. Across a profile of 13 samples
-(+-3 px) the two sides' levels are read at its ends, every sample's place between them is measured
+Each outline point is moved along its outward normal onto the edge. Across a profile of 7 samples
+(+-3 px, 1 px apart) the two sides' levels are read at its ends, every sample's place between them is measured
 along the line joining the two colours (so a red part against wood and against its own shadow are the
 same test), and the edge is where the profile's area on the near side equals that on the far side:
 for a step blurred by any symmetric spread that is the step itself (the area, or partial-area, idea of
@@ -26,41 +26,68 @@ keep the mask's outline, moved half a pixel outward to the boundary of the pixel
 
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
+from gripsight.vision.colour import linear_from_srgb
 from gripsight.vision.topface import outlines_geometry
-from gripsight.vision.whitebalance import bilinear_sample
+
+
+def linear_of_codes(codes: np.ndarray) -> np.ndarray:
+    """Linear light of (fractional) 8-bit sRGB codes."""
+    return linear_from_srgb(np.asarray(codes, float) / 255.0)
 
 __all__ = ["edge_outlines_px"]
 
 _REACH_PX = 3.0          # the profile runs this far either side of the outline point
-_STEP_PX = 0.5
-_PLATEAU = 3             # samples at each end taken as the two sides' levels
+_STEP_PX = 1.0
+_PLATEAU = 2             # samples at each end taken as the two sides' levels
 _MIN_CONTRAST = 0.15     # the step, relative to the brighter side's level
+_SAME_CHROMA = 0.25       # a shading step keeps the colour: chromaticity within a quarter of its colourfulness
+_DARKER = 0.8             # ... and loses at least a fifth of its light
 _PIXEL_EDGE_PX = 0.5     # a pixel-centre outline lies half a pixel inside its region's boundary
 
 
-def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> list[np.ndarray]:
+def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tuple[list[np.ndarray], list[np.ndarray]]:
     """Outlines (each (N, 2) photo px, closed, of a region's boundary pixel centres) moved along their
-    outward normals onto the photo's edges; same lengths and order."""
+    outward normals onto the photo's edges (same lengths and order), and for each a bool (N,): the
+    point lies on a shading step, not an edge (beyond it: the same colour, only darker)."""
     if not outlines_px:
-        return []
+        return [], []
     h, w = image_bgr.shape[:2]
     lengths = np.cumsum([len(o) for o in outlines_px])[:-1]
     pts = np.concatenate(outlines_px).astype(float)
     normals = np.concatenate(outlines_geometry([np.asarray(o, float) for o in outlines_px])[2])
-    s = np.arange(-_REACH_PX, _REACH_PX + 1e-9, _STEP_PX)
-    line = pts[:, None, :] + s[None, :, None] * normals[:, None, :]          # (N, S, 2)
-    inside_photo = ((line[..., 0] >= 0) & (line[..., 0] < w - 1) & (line[..., 1] >= 0) & (line[..., 1] < h - 1)).all(axis=1)
-    values = bilinear_sample(image_bgr, np.where(inside_photo[:, None, None], line, 0.0))   # (N, S, 3) codes
+    s = np.arange(-_REACH_PX, _REACH_PX + 1e-9, _STEP_PX).astype(np.float32)
+    map_u = (pts[:, 0, None] + s * normals[:, 0, None]).astype(np.float32)        # (N, S)
+    map_v = (pts[:, 1, None] + s * normals[:, 1, None]).astype(np.float32)
+    inside_photo = ((map_u.min(axis=1) >= 0) & (map_u.max(axis=1) < w - 1)
+                    & (map_v.min(axis=1) >= 0) & (map_v.max(axis=1) < h - 1))
+    # (N, S, 3) codes, bilinear (OpenCV's 1/32 px weights; the area sums 7 samples, so rounding to
+    # whole codes moves an edge by well under 0.01 px); a profile leaving the photo reads its border
+    values = cv2.remap(image_bgr, map_u, map_v, cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE).astype(np.float32)
     near, far = values[:, :_PLATEAU].mean(axis=1), values[:, -_PLATEAU:].mean(axis=1)
-    step = far - near
-    size2 = (step * step).sum(axis=1)
+    step = far - near                                                              # (N, 3)
+    size2 = np.einsum("nc,nc->n", step, step)
     with np.errstate(divide="ignore", invalid="ignore"):
-        t = ((values - near[:, None, :]) * step[:, None, :]).sum(axis=2) / size2[:, None]   # 0 near .. 1 far
-    # a step at e: the integral of (1 - t) over the profile is e + reach
-    e = np.trapezoid(1.0 - np.clip(t, 0.0, 1.0), s, axis=1) - _REACH_PX
+        t = (np.einsum("nsc,nc->ns", values, step) - np.einsum("nc,nc->n", near, step)[:, None]) / size2[:, None]
+    # a step at e: the integral of (1 - t) over the profile (0 near .. 1 far) is e + reach
+    inner = np.clip(1.0 - t, 0.0, 1.0)
+    e = _STEP_PX * (inner.sum(axis=1) - 0.5 * (inner[:, 0] + inner[:, -1])) - _REACH_PX
     brighter = np.maximum(near.max(axis=1), far.max(axis=1))
-    clear = inside_photo & (np.sqrt(size2) >= _MIN_CONTRAST * np.maximum(brighter, 1e-6)) & (np.abs(e) < _REACH_PX - 1.0)
+    clear = inside_photo & (size2 >= (_MIN_CONTRAST * brighter) ** 2) & (np.abs(e) < _REACH_PX - 1.0)
     offset = np.where(clear, e, _PIXEL_EDGE_PX)
-    return np.split(pts + offset[:, None] * normals, lengths)
+    return np.split(pts + offset[:, None] * normals, lengths), np.split(clear & _shading_step(near, far), lengths)
+
+
+def _shading_step(near: np.ndarray, far: np.ndarray) -> np.ndarray:
+    """(N,) bool: the far side (N, 3 codes) is the near side's colour in less light: darker, and its
+    chromaticity (linear light, normalised to sum 1) closer to the near side's than a quarter of the
+    near side's own distance from grey. A shadow cast on a part's top face, not the part's edge."""
+    lin_near, lin_far = linear_of_codes(near), linear_of_codes(far)
+    sum_near, sum_far = lin_near.sum(axis=1), lin_far.sum(axis=1)
+    chroma_near = lin_near / np.maximum(sum_near, 1e-6)[:, None]
+    chroma_far = lin_far / np.maximum(sum_far, 1e-6)[:, None]
+    colourful = np.linalg.norm(chroma_near - 1.0 / 3.0, axis=1)
+    same = np.linalg.norm(chroma_far - chroma_near, axis=1) < _SAME_CHROMA * colourful
+    return same & (sum_far < _DARKER * sum_near)

@@ -404,12 +404,12 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     classified, mapping, nadir, parallax = search.classified, search.mapping, search.nadir, search.parallax
     u0, v0 = classified.origin
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
-    on_edges = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
+    on_edges, shaded = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
     outlines_mm = np.split(mapping(np.concatenate(on_edges)), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
     outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
-    for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
+    for o, outline_mm, area_mapped, m, normal, in_shade in zip(outlines, outlines_mm, areas, centroids, normals, shaded):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
         shape_misfit = unknown and o.group is not None
@@ -456,7 +456,8 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             blob.piece_classes = _classify_pieces(search, blob, o.members)
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
-            blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
+            edge = ~in_shade if in_shade.mean() < 0.5 else np.ones(len(in_shade), bool)   # not a shadow's edge
+            blob.problem = TopFaceProblem.of_class(outline_mm[edge], normal[edge], guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
 

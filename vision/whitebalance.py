@@ -25,7 +25,7 @@ from gripsight.vision.colour import linear_from_srgb
 from gripsight.vision.robust import masked_median
 
 __all__ = ["Illumination", "fit_illumination", "REFERENCE_WHITE", "lab_image", "lab_of_pixels", "balanced_lab", "lab_of_linear", "linear_of",
-           "white_gain", "bilinear_linear", "bilinear_sample"]
+           "white_gain"]
 
 REFERENCE_WHITE = 0.80
 _LIN_LUT = linear_from_srgb(np.arange(256) / 255.0).astype(np.float32)
@@ -79,21 +79,15 @@ def _ring_points_local(size_mm: float, margin_mm: float, per_side: int = 8) -> n
     return np.concatenate(pts)
 
 
-def bilinear_linear(image_bgr: np.ndarray, uv: np.ndarray) -> np.ndarray:
+def _bilinear_linear(image_bgr: np.ndarray, uv: np.ndarray) -> np.ndarray:
     """Linear-light BGR (..., 3) at sub-pixel points uv (..., 2) inside the image, interpolated in linear
     light."""
-    return bilinear_sample(image_bgr, uv, linear_of)
-
-
-def bilinear_sample(image_bgr: np.ndarray, uv: np.ndarray, convert=None) -> np.ndarray:
-    """BGR (..., 3) float32 at sub-pixel points uv (..., 2) inside the image, interpolated from the four
-    pixels around each point after ``convert`` (default: the 8-bit codes as they are)."""
     x0 = np.floor(uv[..., 0]).astype(int)
     y0 = np.floor(uv[..., 1]).astype(int)
     fx = (uv[..., 0] - x0)[..., None].astype(np.float32)
     fy = (uv[..., 1] - y0)[..., None].astype(np.float32)
-    corners = np.stack([image_bgr[y0, x0], image_bgr[y0, x0 + 1], image_bgr[y0 + 1, x0], image_bgr[y0 + 1, x0 + 1]])
-    corners = convert(corners) if convert is not None else corners.astype(np.float32)
+    corners = linear_of(np.stack([image_bgr[y0, x0], image_bgr[y0, x0 + 1], image_bgr[y0 + 1, x0],
+                                  image_bgr[y0 + 1, x0 + 1]]))
     return (corners[0] * (1 - fx) + corners[1] * fx) * (1 - fy) + (corners[2] * (1 - fx) + corners[3] * fx) * fy
 
 
@@ -112,7 +106,7 @@ def fit_illumination(image_bgr: np.ndarray, detections, cell) -> Illumination | 
     p = np.einsum("mij,pj->mpi", H, ring)
     uv = p[..., :2] / p[..., 2:3]                                           # (markers, points, 2)
     inside = (uv[..., 0] >= 1) & (uv[..., 0] < w_img - 2) & (uv[..., 1] >= 1) & (uv[..., 1] < h_img - 2)
-    vals = bilinear_linear(image_bgr, np.where(inside[..., None], uv, 1.0))  # (markers, points, 3) linear
+    vals = _bilinear_linear(image_bgr, np.where(inside[..., None], uv, 1.0))  # (markers, points, 3) linear
     lum = vals.mean(axis=2)
     keep = inside & (lum > 0.6 * masked_median(lum, inside)[:, None])     # drop samples in a shadow or on ink
     usable = inside.sum(axis=1) >= 16

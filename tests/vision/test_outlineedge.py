@@ -45,7 +45,7 @@ def test_outline_lands_on_the_circle_on_dark_and_bright_backgrounds(centre):
     part, shadow, wood = (40, 160, 60), (25, 30, 35), (150, 190, 215)
     img = _photo(_coverage((82, 82), centre, r), part, shadow, wood)
     mask_outline = _outline(img, part)
-    refined = edge_outlines_px(img, [mask_outline])[0]
+    refined = edge_outlines_px(img, [mask_outline])[0][0]
     d_mask = np.hypot(*(mask_outline - centre).T) - r
     d_edge = np.hypot(*(refined - centre).T) - r
     # the mask's outline: inside by about half a pixel and more on one side than the other
@@ -70,6 +70,29 @@ def test_points_without_a_clear_step_keep_the_pixel_boundary():
     img[20:40, 20:40] = 126
     square = np.array([(x, 20) for x in range(20, 40)] + [(39, y) for y in range(20, 40)]
                       + [(x, 39) for x in range(39, 19, -1)] + [(20, y) for y in range(39, 19, -1)], float)
-    refined = edge_outlines_px(img, [square])[0]
+    refined = edge_outlines_px(img, [square])[0][0]
     moved = np.hypot(*(refined - square).T)
     np.testing.assert_allclose(moved, 0.5, atol=1e-6)
+
+
+def test_a_shadow_across_the_top_face_is_not_taken_for_its_edge():
+    """The right third of a green square lies in a neighbour's shadow (the same green at a third of the
+    light) and the mask stops at the shadow: those points are flagged as a shading step; the square's
+    real edges against wood and against a red neighbour are not."""
+    img = np.zeros((60, 80, 3), np.uint8)
+    img[:] = (150, 190, 215)                                   # wood
+    img[10:50, 10:50] = (40, 160, 60)                          # lit top face
+    img[10:50, 38:50] = (13, 75, 20)                           # the same face in shadow (linear x ~0.33)
+    img[10:50, 50:70] = (40, 40, 200)                          # a red neighbour
+    img = cv2.GaussianBlur(img, (0, 0), 0.6)
+    mask = (np.abs(img.astype(int) - (40, 160, 60)).sum(axis=2) < 60).astype(np.uint8)
+    contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
+    outline = max(contours, key=cv2.contourArea).reshape(-1, 2).astype(float)
+    refined, shaded = edge_outlines_px(img, [outline])
+    shaded = shaded[0]
+    at_shadow = (outline[:, 0] >= 36) & (outline[:, 1] > 14) & (outline[:, 1] < 46)
+    at_wood = (outline[:, 0] <= outline[:, 0].min() + 0.5) & (outline[:, 1] > 14) & (outline[:, 1] < 46)
+    assert at_shadow.sum() >= 20 and shaded[at_shadow].all()
+    assert not shaded[at_wood].any()
+    # the wood edge lands on x = 9.5 (the boundary between pixel columns 9 and 10)
+    np.testing.assert_allclose(refined[0][at_wood, 0], 9.5, atol=0.15)
