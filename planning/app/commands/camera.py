@@ -96,8 +96,11 @@ def render(
                 cam.update(lens)
             table = Surface(surface) if surface else Surface.PLYWOOD
             if hard:
-                conditions = hard_conditions(rng, Surface(surface) if surface else None)
+                conditions = hard_conditions(rng, Surface(surface) if surface else None, cfg)
                 lighting, sensor, table = conditions["lighting"], conditions["sensor"], conditions["surface"]
+                # a camera mounted by hand (its place, tilt and principal point); the lens stays as asked
+                cam.update(conditions["camera"].model_dump(
+                    include={"centre_mm", "tilt_deg", "tilt_azimuth_deg", "principal_offset_px"}), focal_px=None)
             sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
                               camera=CameraSpec(**cam), lighting=lighting, sensor=sensor, surface=table)
             if hard:
