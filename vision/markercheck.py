@@ -24,7 +24,6 @@ import functools
 import warnings
 from dataclasses import dataclass
 
-import cv2
 import numpy as np
 
 from gripsight.vision.markerdict import aruco_dictionary
@@ -73,6 +72,26 @@ def _grid(n: int):
     return np.concatenate([cells, ring]).astype(np.float32), border.ravel()
 
 
+def _square_to_quads(uv: np.ndarray, quads: np.ndarray) -> np.ndarray:
+    """Points ``uv`` (K, 2) of the unit square mapped onto each quadrilateral (M, 4, 2) (corners in the
+    order (0, 0), (1, 0), (1, 1), (0, 1)) by the projective map through the four corners, in closed form
+    for all M at once (Heckbert, 'Fundamentals of Texture Mapping and Image Warping', 1989, sec. 2.2.3;
+    tests/vision/test_calibration.py checks the formulas against our DLT). Returns (M, K, 2) float32."""
+    x, y = quads[..., 0], quads[..., 1]                                           # (M, 4) each
+    dx1, dx2, dy1, dy2 = x[:, 1] - x[:, 2], x[:, 3] - x[:, 2], y[:, 1] - y[:, 2], y[:, 3] - y[:, 2]
+    sx, sy = x[:, 0] - x[:, 1] + x[:, 2] - x[:, 3], y[:, 0] - y[:, 1] + y[:, 2] - y[:, 3]
+    den = dx1 * dy2 - dx2 * dy1
+    den = np.where(np.abs(den) > 1e-12, den, 1e-12)
+    g, h = (sx * dy2 - dx2 * sy) / den, (dx1 * sy - sx * dy1) / den
+    a, b = x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3]
+    d, e = y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3]
+    u, v = uv[None, :, 0], uv[None, :, 1]
+    w = g[:, None] * u + h[:, None] * v + 1.0
+    px = (a[:, None] * u + b[:, None] * v + x[:, 0:1]) / w
+    py = (d[:, None] * u + e[:, None] * v + y[:, 0:1]) / w
+    return np.stack([px, py], axis=-1).astype(np.float32)
+
+
 def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> MarkerEvidence:
     """Read the evidence for M candidates with corners (M, 4, 2) (OpenCV's order) and decoded ``ids``
     from ``lin``, the linearised photo (or patches of it, with each candidate's ``offsets_px`` (M, 2))."""
@@ -80,9 +99,7 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     m = len(corners)
     n = aruco_dictionary(dictionary_name).markerSize + 2
     local, border = _grid(n)
-    square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
-    pts = np.stack([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
-                    for c in corners]) if m else np.zeros((0, len(local), 2), np.float32)
+    pts = _square_to_quads(local / n, corners)                                     # (M, K, 2)
     if offsets_px is not None:
         pts = pts + np.asarray(offsets_px, np.float32)[:, None, :]
     values = sample_image(lin, pts[..., 0], pts[..., 1])                          # (M, K)
