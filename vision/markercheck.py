@@ -21,13 +21,12 @@ The cell file's layout, duplicate ids and the size a calibration predicts are ch
 from __future__ import annotations
 
 import functools
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
 
 from gripsight.vision.markerdict import aruco_dictionary
-from gripsight.vision.markeredges import sample_image
+from gripsight.vision.markeredges import median_where, sample_image
 
 __all__ = ["MarkerEvidence", "marker_evidence", "DECIDED_MARGIN", "MAX_UNDECIDED", "RING_LEVEL"]
 
@@ -105,12 +104,9 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     values = sample_image(lin, pts[..., 0], pts[..., 1])                          # (M, K)
     cells = values[:, : n * n * 9].reshape(m, n * n, 9).mean(axis=-1)
     ring = values[:, n * n * 9:]
-    expected = np.array([_pattern(dictionary_name, int(i)) for i in ids]).reshape(m, n * n)
+    expected = np.array([_pattern(dictionary_name, int(i)) for i in ids], bool).reshape(m, n * n)
     ink = np.median(cells[:, border], axis=1)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)          # a code with no white cell: nan, refused
-        white = np.nanmedian(np.where(~expected, cells, np.nan), axis=1) if m else np.zeros(0)
-    white = np.nan_to_num(white, nan=-1.0)
+    white = median_where(cells, ~expected, -1.0)                 # a code with no white cell: -1, refused
     span = np.where(white - ink > 1e-6, white - ink, 1e-6)
     level = (cells - ink[:, None]) / span[:, None]
     decided = np.abs(level - 0.5) >= DECIDED_MARGIN

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-__all__ = ["RefinedCorners", "refine_corners", "sample_image", "STRAIGHT_RMS_PX"]
+__all__ = ["RefinedCorners", "refine_corners", "sample_image", "median_where", "STRAIGHT_RMS_PX"]
 
 _ERFC = np.frompyfunc(math.erfc, 1, 1)
 
@@ -134,8 +134,9 @@ def _crossings(prof, across, blur_px=None, widths=True):
         p_paper = ndtr(-(across[:, -1] - step0) / sigma)[:, None, None, None]
         det = (1 - p_ink) * (1 - p_paper) - p_ink * p_paper
         ink, paper = ((1 - p_paper) * ink - p_ink * paper) / det, ((1 - p_ink) * paper - p_paper * ink) / det
+    ink, paper = ink.astype(np.float32), paper.astype(np.float32)
     contrast = (paper - ink)[..., 0]
-    level = (prof - ink) / np.where(np.abs(paper - ink) < 1e-6, 1e-6, paper - ink)     # 0 ink .. 1 paper
+    level = (prof - ink) / np.where(np.abs(paper - ink) < 1e-6, np.float32(1e-6), paper - ink)   # 0 ink .. 1 paper
     step = (across[:, -1] - across[:, 0]) / (_P - 1)                                    # (M,)
     flat = level.reshape(-1, _P)
     rows = np.arange(len(flat))
@@ -158,7 +159,7 @@ def _crossings(prof, across, blur_px=None, widths=True):
     return at50, valid, np.maximum(crossing(0.75)[0] - crossing(0.25)[0], 0.0)
 
 
-def _median_where(values, mask, empty):
+def median_where(values, mask, empty):
     """Median over the last axis of the values where ``mask``; ``empty`` where none is (sorted with the
     others last, then the middle of the valid ones: much faster than ``np.nanmedian`` on small rows)."""
     v = np.sort(np.where(mask, values, np.inf), axis=-1)
@@ -190,7 +191,7 @@ def _robust_lines(points, valid):
     """Lines through each group's points, refitted without points off the first line by more than
     3 robust sigmas (at least 0.15 px). Returns mean, direction, kept mask, RMS residual, count kept."""
     mean, direc, resid = _fit_lines(points, valid)
-    sigma = 1.4826 * _median_where(np.abs(resid), valid, 0.0)
+    sigma = 1.4826 * median_where(np.abs(resid), valid, 0.0)
     keep = valid & (np.abs(resid) <= np.maximum(3.0 * sigma, 0.15)[..., None])
     mean, direc, resid = _fit_lines(points, keep)
     count = keep.sum(axis=-1)
@@ -254,7 +255,7 @@ def _blur(lin, corners, cell_px, offsets_px):
     _, _, across, prof = _profiles(lin, corners, inside, outside, np.full(len(corners), 2.5), offsets_px, per_half=3)
     _, valid, width = _crossings(prof, across)
     m = len(corners)
-    return _median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
+    return median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
 
 
 def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, offsets_px=None) -> RefinedCorners:
