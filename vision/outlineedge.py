@@ -61,8 +61,8 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
     s = np.arange(-_REACH_PX, _REACH_PX + 1e-9, _STEP_PX).astype(np.float32)
     map_u = (pts[:, 0, None] + s * normals[:, 0, None]).astype(np.float32)        # (N, S)
     map_v = (pts[:, 1, None] + s * normals[:, 1, None]).astype(np.float32)
-    inside_photo = ((map_u.min(axis=1) >= 0) & (map_u.max(axis=1) < w - 1)
-                    & (map_v.min(axis=1) >= 0) & (map_v.max(axis=1) < h - 1))
+    ends_u, ends_v = map_u[:, [0, -1]], map_v[:, [0, -1]]          # a straight profile: its ends bound it
+    inside_photo = ((ends_u >= 0) & (ends_u < w - 1) & (ends_v >= 0) & (ends_v < h - 1)).all(axis=1)
     # (N, S, 3) codes, bilinear (OpenCV's 1/32 px weights; the area sums 7 samples, so rounding to
     # whole codes moves an edge by well under 0.01 px); a profile leaving the photo reads its border
     values = cv2.remap(image_bgr, map_u, map_v, cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE).astype(np.float32)
@@ -77,7 +77,10 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
     brighter = np.maximum(near.max(axis=1), far.max(axis=1))
     clear = inside_photo & (size2 >= (_MIN_CONTRAST * brighter) ** 2) & (np.abs(e) < _REACH_PX - 1.0)
     offset = np.where(clear, e, _PIXEL_EDGE_PX)
-    return np.split(pts + offset[:, None] * normals, lengths), np.split(clear & _shading_step(near, far), lengths)
+    shaded = np.zeros(len(pts), bool)
+    darker = np.flatnonzero(clear & (far.sum(axis=1) < near.sum(axis=1)))
+    shaded[darker] = _shading_step(near[darker], far[darker])
+    return np.split(pts + offset[:, None] * normals, lengths), np.split(shaded, lengths)
 
 
 def _shading_step(near: np.ndarray, far: np.ndarray) -> np.ndarray:
