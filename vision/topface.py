@@ -20,7 +20,8 @@ import numpy as np
 from gripsight.vision.robust import masked_median, robust_lm, soft_l1
 
 __all__ = ["outlines_geometry", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "TopFaceProblem", "TopFaceScore", "top_face_guess", "fit_top_faces", "score_top_faces", "fit_row_of_tops", "min_rect"]
+           "TopFaceProblem", "TopFaceScore", "top_face_guess", "fit_top_faces", "score_top_faces", "fit_row_of_tops", "min_rect",
+           "beyond_silhouette_mm"]
 
 
 def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
@@ -255,3 +256,26 @@ def min_rect(points_mm: np.ndarray, scale: float):
         length, width, yaw = b, a, ang + 90.0
     yaw = (yaw + 90.0) % 180.0 - 90.0
     return float(length / scale), float(width / scale), float(yaw)
+
+
+def beyond_silhouette_mm(points_mm: np.ndarray, fit, nadir, k: float, part_class) -> np.ndarray:
+    """How far (mm, 0 inside) each outline point (N, 2; table-mapped mm) lies outside the silhouette of a
+    part whose top face was fitted (``fit`` as :func:`fit_top_faces` gives it): the top face swept toward
+    the nadir down to the footprint (centre n + (m - n) / k, scale 1/k), the part's visible sides
+    included. An outline that runs past it belongs to something larger than the part: the fit's gates
+    look at the outer half of the outline only, where a corner of a larger box fits any box."""
+    centre, axis, scale = fit
+    nadir = np.asarray(nadir, float)
+    half = np.asarray(part_class.length_width_mm, float) / 2.0
+    bottom = nadir + (np.asarray(centre, float) - nadir) / k
+    t = np.linspace(0.0, 1.0, 6)[:, None, None]
+    centres = centre + t * (bottom - centre)                       # (6, 1, 2)
+    scales = (scale * (1.0 - t) + (scale / k) * t)[..., 0]          # (6, 1)
+    d = np.asarray(points_mm, float)[None] - centres                # (6, N, 2)
+    along, across = d @ axis, d @ np.array([-axis[1], axis[0]])
+    if part_class.shape == "cylinder":
+        dist = np.sqrt(along * along + across * across) - scales * half[0]
+    else:
+        qx, qy = np.abs(along) - scales * half[0], np.abs(across) - scales * half[1]
+        dist = np.sqrt(np.maximum(qx, 0.0) ** 2 + np.maximum(qy, 0.0) ** 2)
+    return np.maximum(dist.min(axis=0), 0.0)
