@@ -36,6 +36,7 @@ from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.topface import (
     TopFaceProblem,
     beyond_silhouette_mm,
+    top_faces_overlap,
     expected_area_mm2,
     fit_row_of_tops,
     fit_top_faces,
@@ -564,7 +565,7 @@ def _split_by_shape(search: _Search, o: _Outline, sub, ox, oy, outline_mm, norma
     counts = list(dict.fromkeys(n for n in counts if n >= 2)) or [int(round(max(ratios)))]
     areas = [expected_area_mm2(c) for c in classes]
     row_name, row_n = _row_of_parts(search, members, outline_mm)
-    first = None
+    first = row = None
     sized = False
     for n in counts:
         # a class of its own colour alone: its area ratio, as before (a blob far from a whole number of parts
@@ -577,8 +578,12 @@ def _split_by_shape(search: _Search, o: _Outline, sub, ox, oy, outline_mm, norma
             continue
         sized = True
         fits, explained = _piece_fits(search, outline_mm, normals, o.k, pieces, members)
-        if row_n == len(pieces) or explained:
+        if explained:
             return pieces, status, reason, fits
+        if row_n == len(pieces) and row is None:      # a row of one class's parts, unless pieces explain it
+            row = (pieces, status, reason, fits)     # (disc, cube, disc in a row is as long as 4 cubes)
+    if row is not None:
+        return row
     if sized:
         return whole, PartStatus.UNKNOWN_SHAPE, "", []
     return (*first, [])
@@ -589,10 +594,11 @@ def _piece_fits(search: _Search, outline_mm, normals, k_blob, pieces, members) -
     face fits the piece best, as (name, class, k, top-face fit), or None when none holds: the blob's
     outline points nearest each piece's centre are that piece's own edge (the cut between pieces has
     none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
-    Also whether the pieces explain the whole outline: every piece has a fit, and 90 % of the outline
-    lies within 1 mm of the union of their silhouettes (:func:`vision.topface.beyond_silhouette_mm`; the
-    fit's own gates see the outer half of each piece's stretch only, which a corner of a larger shape
-    passes)."""
+    Also whether the pieces explain the whole outline: every piece has a fit, 80 % of the outline lies
+    within 1 mm of the union of their silhouettes (:func:`vision.topface.beyond_silhouette_mm`; the fit's
+    own gates see the outer half of each piece's stretch only, which a corner of a larger shape passes),
+    and no fitted top face lies more than 40 % inside another (:func:`vision.topface.top_faces_overlap`:
+    a row of a disc, a cube and a disc cut into four cube-sized pieces covers the outline too)."""
     centres = np.array([p[0] for p in pieces])
     owner = np.linalg.norm(outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
     problems, owners = [], []
@@ -607,18 +613,26 @@ def _piece_fits(search: _Search, outline_mm, normals, k_blob, pieces, members) -
             problems.append(TopFaceProblem.of_class(outline_mm[sel], normals[sel], guess, search.nadir, k, cls,
                                                     min_rect(piece[1], k)[2]))
             owners.append((j, name, k))
+    scores = score_top_faces(problems)
+    # a piece whose own stretch has no outer half (a corner piece of an L whose outside faces the nadir: its
+    # far side is the cut) is fitted to all of its stretch (a problem centred on its nadir keeps every point)
+    again = [i for i, sc in enumerate(scores) if sc.scale_ratio != sc.scale_ratio]
+    for i, sc in zip(again, score_top_faces([replace(problems[i], nadir=problems[i].centre) for i in again])):
+        scores[i] = sc
     best: dict[int, tuple] = {}
-    for (j, name, k), score in zip(owners, score_top_faces(problems)):
+    for (j, name, k), score in zip(owners, scores):
         if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
             best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
     fits = [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else None for j in range(len(pieces))]
     if any(f is None for f in fits):
         return fits, False
     beyond = np.min([beyond_silhouette_mm(outline_mm, fit, search.nadir, k, cls) for _, cls, k, fit in fits], axis=0)
-    return fits, bool(np.percentile(beyond, 80) <= _BEYOND_MM)
+    overlap = top_faces_overlap([(fit, cls) for _, cls, _, fit in fits])
+    return fits, bool(np.percentile(beyond, 80) <= _BEYOND_MM and overlap <= _OVERLAP)
 
 
-_BEYOND_MM = 1.0        # an outline explained by its pieces: 80 % of it within this of their silhouettes
+_BEYOND_MM = 1.0        # an outline explained by its pieces: 80 % of it within this of their silhouettes,
+_OVERLAP = 0.4          # and no piece's top face more than this fraction inside another's (one part twice)
 
 
 def _shape_words(o: _Outline, outline_mm, k: float) -> str:

@@ -140,11 +140,15 @@ def test_a_60_mm_disc_of_a_class_colour_is_too_large_and_stays():
     assert odd.reason.startswith("a coloured region of 27") and odd.reason.endswith("mm², not a part")
 
 
-def test_touching_parts_of_one_colour_are_still_split_into_their_classes():
-    # an L of three touching cubes, and two touching discs beside a cube, all of one red
+@pytest.mark.parametrize("placed", [
+    # an L of three touching cubes, and two touching discs with a cube beside one of them
+    [("red", 150, -60), ("red", 172.1, -60), ("red", 150, -37.9),
+     ("red_disc", 230, 50), ("red_disc", 260.1, 50), ("red", 256.1, 76.1)],
+    # a disc, a cube and a disc in a row: as long as four cubes (82 mm), which the row rule alone took it for
+    [("red_disc", 230, 50), ("red", 256.1, 50), ("red_disc", 282.2, 50), ("red", 150, -60), ("red", 150, -37.9)],
+], ids=["L_and_discs", "disc_cube_disc_row"])
+def test_touching_parts_of_one_colour_are_still_split_into_their_classes(placed):
     cell = _two_shape_cell()
-    placed = [("red", 150, -60), ("red", 172.1, -60), ("red", 150, -37.9),
-              ("red_disc", 230, 50), ("red_disc", 260.1, 50), ("red", 256.1, 76.1)]
     parts = [ScenePart.model_validate({"id": f"t{i}", "class": c, "x_mm": x, "y_mm": y})
              for i, (c, x, y) in enumerate(placed)]
     image, truth = _photo(cell, Scene(camera=CameraSpec(centre_mm=[200, 0, 760]), parts=parts))
@@ -172,3 +176,43 @@ def test_unknown_shape_and_its_reason_reach_detect_json_and_plan_json():
     # measured 44 x 43 mm (no yaw: taken as a box) is 51 mm across the tangential jaws
     assert (part["bin"], part["status"], part["rejection"]["check"]) == ("reject", "rejected", "grip_fit")
     assert part["rejection"]["value"] == pytest.approx(51.0, abs=1.5) and part["rejection"]["limit"] == 38.0
+
+
+def test_report_shows_why_a_part_went_to_the_reject_bin(tmp_path):
+    from gripsight.app.report import write_report
+
+    cell = _two_shape_cell()
+    reason = "colour of red, red_disc but the shape or size of none, nor of touching parts of them (its outline measures 44 x 43 mm)"
+    row = {"photo": "a.jpg", "status": "ok", "error": "", "found": {"red": 1, "unknown": 1}, "planned": 1,
+           "rejected": {}, "cycle_s": 4.0, "truth": None, "thumbnail": "", "warnings": [],
+           "unknown": [f"p2 unknown_shape: {reason}"]}
+    totals = {"photos": 1, "planned": 1, "parts": 2, "rejected": {}, "refused": 0, "errors": 0, "cycle_s": 4.0}
+    write_report(tmp_path / "report.html", [row], totals, cell)
+    page = (tmp_path / "report.html").read_text()
+    assert f'<td class="num">1<br><span class="muted">p2 unknown_shape: {reason}</span></td>' in page
+    old = dict(row)
+    del old["unknown"]                          # a row written before (batch --resume): the count alone
+    write_report(tmp_path / "report.html", [old], totals, cell)
+    # red_disc 0, unknown 1, planned 1
+    assert '<td class="num">0</td><td class="num">1</td><td class="num">1</td>' in (tmp_path / "report.html").read_text()
+
+
+def test_silhouette_and_overlap_of_fitted_top_faces():
+    from gripsight.vision.topface import beyond_silhouette_mm, top_faces_overlap
+
+    cube = SimpleNamespace(shape="box", length_width_mm=(20.0, 20.0))
+    disc = SimpleNamespace(shape="cylinder", length_width_mm=(30.0, 30.0))
+    # a 20 mm box's top face at (100, 0), scale k = 1.1, seen from a nadir at the origin: the footprint is the
+    # 20 mm box at (100 / 1.1, 0) = (90.909, 0); the silhouette is the hull of both (homothetic squares)
+    fit = (np.array([100.0, 0.0]), np.array([1.0, 0.0]), 1.1)
+    pts = np.array([[111.0, 0.0], [112.0, 0.0], [100.0, 13.0], [80.909, 0.0], [79.0, 0.0], [95.0, 10.5]])
+    # 111: on the top face's edge (100 + 11); 112: 1 mm out; (100, 13): 2 mm past the top face's side (11);
+    # 80.909: the footprint's far edge (90.909 - 10); 79: 1.909 mm past it; (95, 10.5): inside the hull
+    assert beyond_silhouette_mm(pts, fit, np.zeros(2), 1.1, cube) == pytest.approx([0, 1, 2, 0, 1.909, 0], abs=1e-3)
+    # two 20 mm faces 20 mm apart meet along an edge: no overlap; 10 mm apart: the 9 x 9 inner grid (-8 .. 8 mm)
+    # has the columns at 2, 4, 6, 8 mm (from the near edge: x > 0 in the other's) inside: 4 of 9 columns
+    a = (np.array([0.0, 0.0]), np.array([1.0, 0.0]), 1.0)
+    assert top_faces_overlap([(a, cube), ((np.array([20.0, 0.0]), a[1], 1.0), cube)]) == 0.0
+    assert top_faces_overlap([(a, cube), ((np.array([10.0, 0.0]), a[1], 1.0), cube)]) == pytest.approx(4 / 9)
+    # a disc of radius 15 touching a cube's face: none of either inside the other
+    assert top_faces_overlap([(a, cube), ((np.array([25.0, 0.0]), a[1], 1.0), disc)]) == 0.0
