@@ -33,6 +33,7 @@ import numpy as np
 from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
 from gripsight.vision.polygon import points_in_polygon
 from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.outlineedge import edge_outlines_px
 from gripsight.vision.topface import (
     TopFaceProblem,
     beyond_silhouette_mm,
@@ -237,7 +238,7 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     groups = colour_groups(cell.parts)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
+    search = _Search(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -325,7 +326,8 @@ class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+    def __init__(self, image_bgr, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+        self.image_bgr = image_bgr
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
         self.groups: dict[str, ColourGroup] = groups
@@ -404,11 +406,12 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     classified, mapping, nadir, parallax = search.classified, search.mapping, search.nadir, search.parallax
     u0, v0 = classified.origin
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
-    outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
+    on_edges, shaded = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
+    outlines_mm = np.split(mapping(np.concatenate(on_edges)), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
     outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
-    for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
+    for o, outline_mm, area_mapped, m, normal, in_shade in zip(outlines, outlines_mm, areas, centroids, normals, shaded):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
         shape_misfit = unknown and o.group is not None
@@ -467,7 +470,8 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             blob.piece_classes = [f if f is not None else (blob.name, blob.cls, blob.k, None) for f in piece_fits]
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
-            blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
+            edge = ~in_shade if in_shade.mean() < 0.5 else np.ones(len(in_shade), bool)   # not a shadow's edge
+            blob.problem = TopFaceProblem.of_class(outline_mm[edge], normal[edge], guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
 
