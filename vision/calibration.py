@@ -23,7 +23,7 @@ from enum import StrEnum
 
 import numpy as np
 
-from gripsight.vision.camerapose import centre_for_height, centre_from_raised
+from gripsight.vision.camerapose import fit_pinhole
 from gripsight.vision.errors import CalibrationError
 from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
 from gripsight.vision.lens import DivisionLens, NoLens
@@ -40,6 +40,15 @@ _LENS_MIN_REACH = 0.55      # ... and used corners reach this fraction of the ha
 _CENTRE_MIN_MARKERS = 6     # markers needed to fit the distortion centre as well
 _CENTRE_GAIN = 0.85         # ... kept if it brings the RMS below 85 % of the centred model's
 _DEFAULT_HEIGHT_MM = 750.0
+# camera-centre priors (fit_pinhole): a tape-measured height is good to about 10 % (a rough figure, from
+# memory of how cells are set up); the principal point of a fixed lens lies within about 1 % of the image
+# diagonal of the image centre (or of the distortion centre) -- common practice to assume it at the centre,
+# the figure from memory; a lens file's K is taken as known.
+_HEIGHT_SD = 0.10
+_NO_HEIGHT_SD_GAIN = 3.0     # no height in the cell: the 750 mm default, three times as loose
+_PP_SD = 0.005
+_KNOWN_PP_SD_PX = 0.25
+_MIN_NOISE_PX = 0.05
 class Verdict(StrEnum):
     """How good a calibration is (see :func:`_verdict`)."""
 
@@ -273,6 +282,26 @@ def camera_centre_from_raised(mapping: TableMapping, raised: list[MarkerFit]) ->
     return least_squares(residual, c0, method="lm").x
 
 
+def _pinhole_centre(mapping, image_size, used, raised, height_mm, rms_px) -> np.ndarray:
+    """The camera centre (3,) table mm of the pinhole that best explains every marker corner
+    (:func:`camerapose.fit_pinhole`); NaNs where the fit fails."""
+    floor_px = np.concatenate([f.corners_px for f in used])
+    floor_mm = np.concatenate([f.corners_mm for f in used])
+    raised_px = np.concatenate([f.corners_px for f in raised]) if raised else None
+    raised_mm = np.concatenate([f.corners_mm for f in raised]) if raised else None
+    height = height_mm or _DEFAULT_HEIGHT_MM
+    known_pp = hasattr(mapping.lens, "K")
+    try:
+        centre, _, _ = fit_pinhole(mapping, image_size, floor_px, floor_mm, raised_px, raised_mm,
+                                   height_mm=height,
+                                   height_sd_mm=_HEIGHT_SD * height * (1.0 if height_mm else _NO_HEIGHT_SD_GAIN),
+                                   pp_sd_px=_KNOWN_PP_SD_PX if known_pp else _PP_SD * float(np.hypot(*image_size)),
+                                   noise_px=max(rms_px, _MIN_NOISE_PX))
+    except (ValueError, np.linalg.LinAlgError):
+        return np.full(3, np.nan)
+    return np.asarray(centre, float)
+
+
 def _verdict(rms_mm: float, max_mm: float, n_used: int) -> Verdict:
     if rms_mm <= 0.25 and max_mm <= 1.0 and n_used >= 4:
         return Verdict.GOOD
@@ -359,25 +388,22 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     raised = [f for f in fits if f.role is MarkerRole.RAISED]
     if cell.camera.centre_mm is not None:
         centre, source = np.array(cell.camera.centre_mm, float), CentreSource.MEASURED
-    elif raised:
-        # one parameter (the pinhole's focal length) for all raised corners; the free centre where that fails
-        corners_px = np.concatenate([f.corners_px for f in raised])
-        corners_mm = np.concatenate([f.corners_mm for f in raised])
-        centre = centre_from_raised(mapping, image_size, corners_px, corners_mm,
-                                    cell.camera.height_mm or _DEFAULT_HEIGHT_MM)
-        if not (np.all(np.isfinite(centre)) and centre[2] > 2 * float(corners_mm[:, 2].max())):
-            centre = camera_centre_from_raised(mapping, raised)
-        source = CentreSource.RAISED_MARKERS
     else:
-        height = cell.camera.height_mm or _DEFAULT_HEIGHT_MM
-        centre, source = centre_for_height(mapping, image_size, height), CentreSource.ASSUMED
-        if not np.all(np.isfinite(centre)):
-            w, h = image_size
-            nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
-            centre = np.array([nadir[0], nadir[1], height])
-        notes.append(f"camera centre assumed: {height:g} mm up "
-                     f"{'(camera.height_mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}"
-                     f", over the nadir the table's perspective shows ({centre[0]:.0f}, {centre[1]:.0f}) mm")
+        centre = _pinhole_centre(mapping, image_size, used, raised, cell.camera.height_mm, rms_px)
+        if raised:
+            if not (np.all(np.isfinite(centre)) and centre[2] > 2 * max(float(f.corners_mm[0, 2]) for f in raised)):
+                centre = camera_centre_from_raised(mapping, raised)
+            source = CentreSource.RAISED_MARKERS
+        else:
+            height = cell.camera.height_mm or _DEFAULT_HEIGHT_MM
+            source = CentreSource.ASSUMED
+            if not np.all(np.isfinite(centre)):
+                w, h = image_size
+                nadir = mapping(np.array([[(w - 1) / 2, (h - 1) / 2]]))[0]
+                centre = np.array([nadir[0], nadir[1], height])
+            notes.append(f"camera centre assumed: {centre[2]:.0f} mm up "
+                         f"{'(camera.height_mm ' + format(height, 'g') + ' mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}"
+                         f", over the nadir the table's perspective shows ({centre[0]:.0f}, {centre[1]:.0f}) mm")
     return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
                        rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes)
 

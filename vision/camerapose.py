@@ -1,27 +1,29 @@
-"""The camera centre from the table homography of a pinhole camera (square pixels, no skew).
+"""The camera centre of a pinhole camera (square pixels, no skew) from the calibration photo.
 
-The calibration's homography G (table z = 0 -> ideal pixels) of a pinhole camera with intrinsics
+The calibration's homography G (table z = 0 -> ideal pixels) of a pinhole with intrinsics
 K = [[f, 0, cx], [0, f, cy], [0, 0, 1]] is G ~ K [r1 r2 t] (Zhang, "A flexible new technique for camera
-calibration", IEEE TPAMI 22(11), 2000, sec. 2.3): given the principal point and f, the rotation and the
-camera centre C = -R^T t follow. Over a table seen almost straight down f is poorly fixed by the
-plane alone (a frontal plane cannot tell the focal length from the distance), but the camera's tilt
-is: so f is chosen to agree with what else is known of the camera's distance, and the centre then
-comes with the tilt the homography shows (its nadir is not under the image centre when the camera
-leans):
+calibration", IEEE TPAMI 22(11), 2000, sec. 2.3). One plane gives two constraints on (f, cx, cy) (sec. 3.1):
+a one-parameter family of cameras explains the table equally well. A tilted camera's homography fixes
+its principal point for a given focal length; one looking straight down (the usual cell) hardly does,
+and the focal length trades against the distance there. What decides:
 
-* :func:`centre_for_height`: the height from the cell (``camera.height_mm``, a tape measure);
-* :func:`centre_from_raised`: the raised markers' corners, which appear scaled about the nadir by
-  k = C_z / (C_z - z); one parameter (f) fitted to all their corners, where a free centre (three
-  parameters) from one small raised marker leaves the height and the nadir poorly fixed.
+* the raised markers: where their corners appear against where the layout puts them (they appear
+  scaled about the nadir by k = C_z / (C_z - z)), which tells the distance and the nadir;
+* the cell's ``camera.height_mm`` (a tape measure, good to about 10 %);
+* the principal point lies near the image centre, or the lens's distortion centre (common practice;
+  a lens file's K gives it outright).
 
-The principal point is taken at the lens's distortion centre (the image centre without a lens model).
+:func:`fit_pinhole` weighs all of them in one maximum a posteriori fit over the marker corners
+(reprojection error in ideal pixels, each source with its own standard deviation), so the nadir is
+not put under the image centre when the homography shows the principal point elsewhere, and a
+principal point the photo cannot show stays at its prior.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["principal_point", "pose_for_focal", "centre_for_height", "centre_from_raised"]
+__all__ = ["principal_point", "pose_for_focal", "fit_pinhole"]
 
 
 def principal_point(mapping, image_size) -> np.ndarray:
@@ -60,35 +62,69 @@ def _focal_guess(mapping, pp, height_mm: float) -> float:
     return float(height_mm / mapping.mm_per_px(np.asarray(pp, float)[None])[0])
 
 
-def centre_for_height(mapping, image_size, height_mm: float) -> np.ndarray:
-    """The camera centre (3,) at ``height_mm`` above the table, with the tilt the homography shows."""
-    pp = principal_point(mapping, image_size)
-
-    def residual(p):
-        return [pose_for_focal(mapping, pp, float(p[0]))[1][2] - height_mm]
-
-    from scipy.optimize import least_squares     # 0.5 s to import: only when fitting
-
-    f = least_squares(residual, [max(_focal_guess(mapping, pp, height_mm), 2.0)], x_scale=[100.0],
-                      bounds=([1.0], [np.inf])).x[0]      # a focal length is positive (markers that fit no pinhole)
-    return pose_for_focal(mapping, pp, float(f))[1]
+def _rodrigues(rvec: np.ndarray) -> np.ndarray:
+    """Rotation matrix of an axis-angle vector (Rodrigues' formula)."""
+    theta = float(np.linalg.norm(rvec))
+    if theta < 1e-12:
+        return np.eye(3)
+    k = rvec / theta
+    Kx = np.array([[0.0, -k[2], k[1]], [k[2], 0.0, -k[0]], [-k[1], k[0], 0.0]])
+    return np.eye(3) + np.sin(theta) * Kx + (1.0 - np.cos(theta)) * (Kx @ Kx)
 
 
-def centre_from_raised(mapping, image_size, corners_px: np.ndarray, corners_mm: np.ndarray,
-                       height_guess_mm: float) -> np.ndarray:
-    """The camera centre (3,) from raised markers' corners (photo px (N, 2) and table mm (N, 3)): the
-    focal length whose pinhole puts them where they appear through the table mapping."""
-    pp = principal_point(mapping, image_size)
-    q = mapping(corners_px)
-    P = np.asarray(corners_mm, float)
+def _axis_angle(R: np.ndarray) -> np.ndarray:
+    """Axis-angle vector of a rotation matrix (inverse of :func:`_rodrigues`, angles below pi)."""
+    c = np.clip((np.trace(R) - 1.0) / 2.0, -1.0, 1.0)
+    theta = float(np.arccos(c))
+    if theta < 1e-12:
+        return np.zeros(3)
+    w = np.array([R[2, 1] - R[1, 2], R[0, 2] - R[2, 0], R[1, 0] - R[0, 1]]) / (2.0 * np.sin(theta))
+    return w * theta
 
-    def residual(p):
-        c = pose_for_focal(mapping, pp, float(p[0]))[1]
-        k = c[2] / (c[2] - P[:, 2])
-        return (c[:2] + (P[:, :2] - c[:2]) * k[:, None] - q).ravel()
 
+def _project(p, xyz_mm):
+    """Ideal pixels (N, 2) of table points (N, 3) for pinhole parameters (f, cx, cy, rvec, centre)."""
+    R = _rodrigues(p[3:6])
+    cam = (xyz_mm - p[6:9]) @ R.T
+    return p[0] * cam[:, :2] / cam[:, 2:3] + p[1:3]
+
+
+def fit_pinhole(mapping, image_size, floor_px, floor_mm, raised_px=None, raised_mm=None, *,
+                height_mm: float, height_sd_mm: float | None, pp_sd_px: float, noise_px: float):
+    """The camera centre (3,) table mm, principal point (2,) px and focal length (px) of a pinhole with
+    square pixels seen through the calibration's lens: a maximum a posteriori fit.
+
+    Data: the table markers' corners (photo px (N, 2), table mm (N, 3) on z = 0) through the lens to
+    ideal pixels, each with the measured noise ``noise_px``; raised markers' corners (N, 2) px and
+    (N, 3) mm: where they appear against where the layout puts them tells the camera's distance and,
+    through their parallax, where it stands. Priors: the principal point near
+    :func:`principal_point` (standard deviation ``pp_sd_px``), the height near ``height_mm``
+    (``height_sd_mm``; None: no prior). A tilted camera's table homography fixes its principal point
+    for a given focal length (Zhang 2000, sec. 3.1: the two constraints a plane gives on the image of
+    the absolute conic); a camera looking straight down leaves it to the prior.
+    """
     from scipy.optimize import least_squares
 
-    f = least_squares(residual, [max(_focal_guess(mapping, pp, height_guess_mm), 2.0)], x_scale=[100.0],
-                      bounds=([1.0], [np.inf])).x[0]      # a focal length is positive (markers that fit no pinhole)
-    return pose_for_focal(mapping, pp, float(f))[1]
+    pp0 = principal_point(mapping, image_size)
+    uv_floor = mapping.lens.ideal(np.asarray(floor_px, float))
+    P_floor = np.asarray(floor_mm, float)
+    have_raised = raised_px is not None and len(raised_px) >= 4
+    if have_raised:
+        uv_raised = mapping.lens.ideal(np.asarray(raised_px, float))
+        P_raised = np.asarray(raised_mm, float)
+    f0 = max(_focal_guess(mapping, pp0, height_mm), 2.0)
+    R0, c0 = pose_for_focal(mapping, pp0, f0)
+    start = np.concatenate([[f0], pp0, _axis_angle(R0), c0])
+
+    def residual(p):
+        out = [((_project(p, P_floor) - uv_floor) / noise_px).ravel(), (p[1:3] - pp0) / pp_sd_px]
+        if have_raised:
+            r = _project(p, P_raised) - uv_raised
+            out.append((r / noise_px).ravel())
+        if height_sd_mm is not None:
+            out.append([(p[8] - height_mm) / height_sd_mm])
+        return np.concatenate(out)
+
+    scale = np.array([100.0, 10.0, 10.0, 0.01, 0.01, 0.01, 10.0, 10.0, 10.0])
+    p = least_squares(residual, start, x_scale=scale, method="lm").x
+    return p[6:9], p[1:3], float(p[0])

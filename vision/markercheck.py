@@ -21,14 +21,12 @@ The cell file's layout, duplicate ids and the size a calibration predicts are ch
 from __future__ import annotations
 
 import functools
-import warnings
 from dataclasses import dataclass
 
-import cv2
 import numpy as np
 
 from gripsight.vision.markerdict import aruco_dictionary
-from gripsight.vision.markeredges import sample_image
+from gripsight.vision.markeredges import median_where, sample_image
 
 __all__ = ["MarkerEvidence", "marker_evidence", "DECIDED_MARGIN", "MAX_UNDECIDED", "RING_LEVEL"]
 
@@ -73,6 +71,26 @@ def _grid(n: int):
     return np.concatenate([cells, ring]).astype(np.float32), border.ravel()
 
 
+def _square_to_quads(uv: np.ndarray, quads: np.ndarray) -> np.ndarray:
+    """Points ``uv`` (K, 2) of the unit square mapped onto each quadrilateral (M, 4, 2) (corners in the
+    order (0, 0), (1, 0), (1, 1), (0, 1)) by the projective map through the four corners, in closed form
+    for all M at once (Heckbert, 'Fundamentals of Texture Mapping and Image Warping', 1989, sec. 2.2.3;
+    tests/vision/test_calibration.py checks the formulas against our DLT). Returns (M, K, 2) float32."""
+    x, y = quads[..., 0], quads[..., 1]                                           # (M, 4) each
+    dx1, dx2, dy1, dy2 = x[:, 1] - x[:, 2], x[:, 3] - x[:, 2], y[:, 1] - y[:, 2], y[:, 3] - y[:, 2]
+    sx, sy = x[:, 0] - x[:, 1] + x[:, 2] - x[:, 3], y[:, 0] - y[:, 1] + y[:, 2] - y[:, 3]
+    den = dx1 * dy2 - dx2 * dy1
+    den = np.where(np.abs(den) > 1e-12, den, 1e-12)
+    g, h = (sx * dy2 - dx2 * sy) / den, (dx1 * sy - sx * dy1) / den
+    a, b = x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3]
+    d, e = y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3]
+    u, v = uv[None, :, 0], uv[None, :, 1]
+    w = g[:, None] * u + h[:, None] * v + 1.0
+    px = (a[:, None] * u + b[:, None] * v + x[:, 0:1]) / w
+    py = (d[:, None] * u + e[:, None] * v + y[:, 0:1]) / w
+    return np.stack([px, py], axis=-1).astype(np.float32)
+
+
 def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> MarkerEvidence:
     """Read the evidence for M candidates with corners (M, 4, 2) (OpenCV's order) and decoded ``ids``
     from ``lin``, the linearised photo (or patches of it, with each candidate's ``offsets_px`` (M, 2))."""
@@ -80,20 +98,15 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     m = len(corners)
     n = aruco_dictionary(dictionary_name).markerSize + 2
     local, border = _grid(n)
-    square = np.float32([[0, 0], [n, 0], [n, n], [0, n]])
-    pts = np.stack([cv2.perspectiveTransform(local[None], cv2.getPerspectiveTransform(square, np.float32(c)))[0]
-                    for c in corners]) if m else np.zeros((0, len(local), 2), np.float32)
+    pts = _square_to_quads(local / n, corners)                                     # (M, K, 2)
     if offsets_px is not None:
         pts = pts + np.asarray(offsets_px, np.float32)[:, None, :]
     values = sample_image(lin, pts[..., 0], pts[..., 1])                          # (M, K)
     cells = values[:, : n * n * 9].reshape(m, n * n, 9).mean(axis=-1)
     ring = values[:, n * n * 9:]
-    expected = np.array([_pattern(dictionary_name, int(i)) for i in ids]).reshape(m, n * n)
+    expected = np.array([_pattern(dictionary_name, int(i)) for i in ids], bool).reshape(m, n * n)
     ink = np.median(cells[:, border], axis=1)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)          # a code with no white cell: nan, refused
-        white = np.nanmedian(np.where(~expected, cells, np.nan), axis=1) if m else np.zeros(0)
-    white = np.nan_to_num(white, nan=-1.0)
+    white = median_where(cells, ~expected, -1.0)                 # a code with no white cell: -1, refused
     span = np.where(white - ink > 1e-6, white - ink, 1e-6)
     level = (cells - ink[:, None]) / span[:, None]
     decided = np.abs(level - 0.5) >= DECIDED_MARGIN

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import cv2
 import numpy as np
 
-__all__ = ["RefinedCorners", "refine_corners", "sample_image", "STRAIGHT_RMS_PX"]
+__all__ = ["RefinedCorners", "refine_corners", "sample_image", "median_where", "STRAIGHT_RMS_PX"]
 
 _ERFC = np.frompyfunc(math.erfc, 1, 1)
 
@@ -116,9 +116,9 @@ def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px, per_h
     return base, normal, across, prof
 
 
-def _crossings(prof, across, blur_px=None):
+def _crossings(prof, across, blur_px=None, widths=True):
     """Edge points along each profile: the 50 % crossing from ink to paper, its validity, and the 25-75 %
-    width of each profile (px).
+    width of each profile (px; None unless ``widths``).
 
     With ``blur_px`` (M,) known, the ink and paper levels read at the profile's ends are corrected for
     the light the blurred edge spills onto them (a Gaussian edge of that sigma: a fraction
@@ -134,29 +134,32 @@ def _crossings(prof, across, blur_px=None):
         p_paper = ndtr(-(across[:, -1] - step0) / sigma)[:, None, None, None]
         det = (1 - p_ink) * (1 - p_paper) - p_ink * p_paper
         ink, paper = ((1 - p_paper) * ink - p_ink * paper) / det, ((1 - p_ink) * paper - p_paper * ink) / det
+    ink, paper = ink.astype(np.float32), paper.astype(np.float32)
     contrast = (paper - ink)[..., 0]
-    level = (prof - ink) / np.where(np.abs(paper - ink) < 1e-6, 1e-6, paper - ink)     # 0 ink .. 1 paper
+    level = (prof - ink) / np.where(np.abs(paper - ink) < 1e-6, np.float32(1e-6), paper - ink)   # 0 ink .. 1 paper
     step = (across[:, -1] - across[:, 0]) / (_P - 1)                                    # (M,)
+    flat = level.reshape(-1, _P)
+    rows = np.arange(len(flat))
+    start = np.broadcast_to(across[:, None, None, 0], level.shape[:-1]).ravel()
+    steps = np.broadcast_to(step[:, None, None], level.shape[:-1]).ravel()
 
     def crossing(frac_level):
-        above = level >= frac_level
-        first = np.argmax(above, axis=-1)
+        first = np.argmax(flat >= frac_level, axis=-1)
         idx = np.clip(first, 1, _P - 1)
-        l0 = np.take_along_axis(level, (idx - 1)[..., None], axis=-1)[..., 0]
-        l1 = np.take_along_axis(level, idx[..., None], axis=-1)[..., 0]
+        l0, l1 = flat[rows, idx - 1], flat[rows, idx]
         frac = np.clip((frac_level - l0) / np.where(np.abs(l1 - l0) < 1e-9, 1e-9, l1 - l0), 0.0, 1.0)
-        return across[:, None, None, 0] + (idx - 1 + frac) * step[:, None, None], first > 0
+        return (start + (idx - 1 + frac) * steps).reshape(level.shape[:-1]), (first > 0).reshape(level.shape[:-1])
 
     at50, ok50 = crossing(0.5)
-    at25, _ = crossing(0.25)
-    at75, _ = crossing(0.75)
     lo = across[:, None, None, 0] + (k - 1) * step[:, None, None]
     hi = across[:, None, None, -1] - (k - 1) * step[:, None, None]
     valid = ok50 & (contrast > 12.0) & (at50 > lo) & (at50 < hi)
-    return at50, valid, np.maximum(at75 - at25, 0.0)
+    if not widths:
+        return at50, valid, None
+    return at50, valid, np.maximum(crossing(0.75)[0] - crossing(0.25)[0], 0.0)
 
 
-def _median_where(values, mask, empty):
+def median_where(values, mask, empty):
     """Median over the last axis of the values where ``mask``; ``empty`` where none is (sorted with the
     others last, then the middle of the valid ones: much faster than ``np.nanmedian`` on small rows)."""
     v = np.sort(np.where(mask, values, np.inf), axis=-1)
@@ -188,7 +191,7 @@ def _robust_lines(points, valid):
     """Lines through each group's points, refitted without points off the first line by more than
     3 robust sigmas (at least 0.15 px). Returns mean, direction, kept mask, RMS residual, count kept."""
     mean, direc, resid = _fit_lines(points, valid)
-    sigma = 1.4826 * _median_where(np.abs(resid), valid, 0.0)
+    sigma = 1.4826 * median_where(np.abs(resid), valid, 0.0)
     keep = valid & (np.abs(resid) <= np.maximum(3.0 * sigma, 0.15)[..., None])
     mean, direc, resid = _fit_lines(points, keep)
     count = keep.sum(axis=-1)
@@ -206,17 +209,16 @@ def _intersect(p1, d1, p2, d2):
 
 
 def _pass(lin, corners, side_px, cell_px, blur_px, offsets_px, blur_in=None):
-    """One refinement pass from ``corners``: corners, per-corner standard error, per-marker RMS, blur
-    measured, per-corner success."""
+    """One refinement pass from ``corners``: corners, per-corner standard error, per-marker RMS,
+    per-corner success (the blur is measured before, by :func:`_blur`)."""
     reach = np.maximum(3.0, 2.5 * blur_px)
     inside = np.minimum(0.5 * cell_px, reach)                              # never past the border cell
     outside = np.minimum(np.maximum(cell_px, 1.5), reach)                  # at most a cell into the quiet zone
     end_gap = 2.0 * blur_px + 0.5
     base, normal, across, prof = _profiles(lin, corners, inside, outside, end_gap, offsets_px)
-    at50, valid, width = _crossings(prof, across, blur_in)
+    at50, valid, _ = _crossings(prof, across, blur_in, widths=False)
     m = len(corners)
     points = base + at50[..., None] * normal[:, :, None, :]                # (M, 4, 2S, 2)
-    blur = _median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
     halves = points.reshape(m, 4, 2, _S, 2)
     hv = valid.reshape(m, 4, 2, _S)
     h_mean, h_dir, _, h_rms, h_n = _robust_lines(halves, hv)               # (M, 4, 2, ...)
@@ -242,7 +244,7 @@ def _pass(lin, corners, side_px, cell_px, blur_px, offsets_px, blur_in=None):
     sig = np.hypot(line_sigma(use_mean[:, prev, 1], use_dir[:, prev, 1], use_rms[:, prev, 1], use_n[:, prev, 1], out),
                    line_sigma(use_mean[:, :, 0], use_dir[:, :, 0], use_rms[:, :, 0], use_n[:, :, 0], out))
     used_rms = np.sqrt((use_rms ** 2).mean(axis=(1, 2)))
-    return out, sig, used_rms, blur, ok
+    return out, sig, used_rms, ok
 
 
 def _blur(lin, corners, cell_px, offsets_px):
@@ -253,7 +255,7 @@ def _blur(lin, corners, cell_px, offsets_px):
     _, _, across, prof = _profiles(lin, corners, inside, outside, np.full(len(corners), 2.5), offsets_px, per_half=3)
     _, valid, width = _crossings(prof, across)
     m = len(corners)
-    return _median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
+    return median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
 
 
 def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, offsets_px=None) -> RefinedCorners:
@@ -271,7 +273,7 @@ def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, of
     side_px = np.linalg.norm(rough - np.roll(rough, -1, axis=1), axis=-1).mean(axis=1)
     cell_px = side_px / cells_per_side
     blur = _blur(lin, rough, cell_px, offsets_px)
-    out, sig, rms, _, ok = _pass(lin, rough, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
+    out, sig, rms, ok = _pass(lin, rough, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
     limit = 0.3 + cell_px[:, None] / 3.0 + blur[:, None] + 3.0 * sig
     moved_ok = np.linalg.norm(out - rough, axis=-1) <= limit
     good = (ok & moved_ok).all(axis=1)

@@ -41,13 +41,32 @@ def linearised_gray(image) -> np.ndarray:
     return cv2.LUT(gray, _LIN_LUT)
 
 
-@functools.lru_cache(maxsize=8)
-def _detector(dictionary_name: str):
+def _params(accuracy_rate: float):
     params = cv2.aruco.DetectorParameters()
     params.cornerRefinementMethod = cv2.aruco.CORNER_REFINE_NONE    # refined from the edges here; see _fallback
-    # sensor noise makes square outlines ragged; OpenCV's default 0.03 then misses clear markers
-    params.polygonalApproxAccuracyRate = 0.05
-    return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), params)
+    params.polygonalApproxAccuracyRate = accuracy_rate
+    # OpenCV groups candidates whose corners are on average closer than minMarkerDistanceRate (default
+    # 0.125) times the smaller one's perimeter and tries the largest of a group first. A marker's own
+    # paper outline, on a table darker than the paper, is that close whenever the quiet zone is under
+    # about 2 cells (1.5 cells on our printed sheets), and a marker whose group its paper leads is
+    # sometimes lost. At 0.05 (OpenCV's default before 4.7) the outline stays a candidate of its own.
+    params.minMarkerDistanceRate = 0.05
+    return params
+
+
+@functools.lru_cache(maxsize=8)
+def _detector(dictionary_name: str):
+    """The first search: OpenCV's default outline accuracy 0.03 (a coarser one turns the cells of a
+    cutting mat or a chequered cloth into many more quadrilaterals, and OpenCV's grouping of them is
+    quadratic: 1.3x the time over 100 busy renders, up to 2.5x on one)."""
+    return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), _params(0.03))
+
+
+@functools.lru_cache(maxsize=8)
+def _second_detector(dictionary_name: str):
+    """The second look for layout markers the first search missed: outline accuracy 0.05, which keeps
+    markers whose outline sensor noise has made ragged."""
+    return cv2.aruco.ArucoDetector(aruco_dictionary(dictionary_name), _params(0.05))
 
 
 _ATLAS_HEIGHT = 8192          # patches are stacked in columns at most this tall (remap takes < 32767)
@@ -97,24 +116,37 @@ def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection]
     return [MarkerDetection(int(i), refined[k], True) for k, i in enumerate(ids)]
 
 
-def _detect_in_windows(gray, detector, expected: dict):
-    """Look for each expected marker only in a window around where it was: (ids, corners) or None if
-    any expected marker is not found there (then the caller searches the whole photo)."""
-    h, w = gray.shape
+def _window(shape, corners) -> tuple[int, int, int, int] | None:
+    """The window (x0, y0, x1, y1) around a marker's expected corners (4, 2) px, grown by 0.6 of its
+    size and 16 px, clipped to the photo; None if less than 16 px of it is in the photo."""
+    h, w = shape
+    c = np.asarray(corners, float).reshape(4, 2)
+    pad = 0.6 * np.ptp(c, axis=0).max() + 16
+    x0, y0 = np.floor(c.min(axis=0) - pad).astype(int)
+    x1, y1 = np.ceil(c.max(axis=0) + pad).astype(int)
+    x0, y0, x1, y1 = max(x0, 0), max(y0, 0), min(x1, w), min(y1, h)
+    return None if x1 - x0 < 16 or y1 - y0 < 16 else (x0, y0, x1, y1)
+
+
+def _detect_in_windows(gray, detector, expected: dict, wanted=None, all_found: bool = True):
+    """Look for each expected marker (those in ``wanted`` if given) only in a window around where it
+    was: (ids, corners (4, 2) each). With ``all_found``, None if any is not found there (then the caller
+    searches the whole photo)."""
     ids, corners = [], []
     for marker_id, c in expected.items():
-        c = np.asarray(c, float)
-        size = np.ptp(c, axis=0).max()
-        pad = 0.6 * size + 16
-        x0, y0 = np.floor(c.min(axis=0) - pad).astype(int)
-        x1, y1 = np.ceil(c.max(axis=0) + pad).astype(int)
-        x0, y0, x1, y1 = max(x0, 0), max(y0, 0), min(x1, w), min(y1, h)
-        if x1 - x0 < 16 or y1 - y0 < 16:
-            return None
+        if wanted is not None and marker_id not in wanted:
+            continue
+        box = _window(gray.shape, c)
+        if box is None:
+            if all_found:
+                return None
+            continue
+        x0, y0, x1, y1 = box
         found, found_ids, _ = detector.detectMarkers(gray[y0:y1, x0:x1])
-        if found_ids is None or marker_id not in found_ids.ravel():
+        hit = found_ids is not None and marker_id in found_ids.ravel()
+        if not hit and all_found:
             return None
-        for fc, fid in zip(found, found_ids.ravel()):
+        for fc, fid in zip(found, [] if found_ids is None else found_ids.ravel()):
             if fid == marker_id:
                 ids.append(int(fid))
                 corners.append(fc.reshape(4, 2) + [x0, y0])
@@ -141,9 +173,12 @@ def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict
     """Where an id was decoded more than once, keep the copy nearest its expected place (a calibrated
     camera), else the one with clearly the best evidence; copies that tie are all kept (calibration sets
     a duplicated id aside)."""
+    by_id: dict[int, list[int]] = {}
+    for k, d in enumerate(found):
+        by_id.setdefault(d.id, []).append(k)
     out = []
-    for marker_id in sorted({d.id for d in found}):
-        copies = [k for k, d in enumerate(found) if d.id == marker_id]
+    for marker_id in sorted(by_id):
+        copies = by_id[marker_id]
         if len(copies) > 1 and expected and marker_id in expected:
             where = np.asarray(expected[marker_id], float).reshape(4, 2).mean(axis=0)
             copies = [min(copies, key=lambda k: np.linalg.norm(found[k].corners_px.mean(axis=0) - where))]
@@ -167,8 +202,27 @@ def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
     return ok
 
 
+def _checked(gray, lin, ids, corners, dictionary_name: str, expected: dict | None):
+    """Refine the candidates (ids (M,), corners (M, 4, 2)) and keep those with the evidence of a printed
+    marker and the size a calibration predicts: the kept detections and their evidence scores."""
+    if len(ids) == 0:
+        return [], []
+    result = _fallback(gray, refine_corners(lin, corners, cells_per_side(dictionary_name)))
+    evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name)
+    keep = np.flatnonzero(evidence.accepted & _size_fits(result.corners_px, ids, expected))
+    found = [MarkerDetection(int(ids[k]), result.corners_px[k], bool(result.refined[k])) for k in keep]
+    score = list(zip(evidence.undecided_cells[keep].tolist(), (-evidence.ring_fraction[keep]).tolist()))
+    return found, score
+
+
+def _as_arrays(ids, corners) -> tuple[np.ndarray, np.ndarray]:
+    if ids is None or len(ids) == 0:
+        return np.zeros(0, int), np.zeros((0, 4, 2))
+    return np.ravel(ids).astype(int), np.asarray(corners, dtype=float).reshape(-1, 4, 2)
+
+
 def detect_markers(image, dictionary_name: str, expected: dict | None = None,
-                   layout_ids=None) -> list[MarkerDetection]:
+                   layout_ids=None, search_ids=None) -> list[MarkerDetection]:
     """Markers in an 8-bit BGR or grey photo, sorted by id.
 
     OpenCV's candidates are kept only with the evidence of a printed marker
@@ -187,6 +241,11 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
         there; if any is still missing, the whole photo is searched.
     layout_ids : collection of int, optional
         The ids the cell's layout holds; others are not returned.
+    search_ids : collection of int, optional
+        Ids to look for a second time, with other candidate settings (:func:`_second_detector`), if the
+        first search does not return them: in a window around their ``expected`` corners where those are
+        given (ids missing from ``expected`` are then not searched again), else in the whole photo. Costs
+        nothing when every one of them is found first.
     """
     if expected:
         tracked = _track(image, dictionary_name, expected)
@@ -197,19 +256,33 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
     detector = _detector(dictionary_name)
     windowed = _detect_in_windows(gray, detector, expected) if expected else None
     if windowed is not None:
-        ids, corners = np.array(windowed[0]), windowed[1]
+        ids, rough = _as_arrays(*windowed)
     else:
         corners, ids, _ = detector.detectMarkers(gray)
-    if ids is None or len(ids) == 0:
-        return []
-    ids = np.ravel(ids)
-    rough = np.array([np.asarray(c).reshape(4, 2) for c in corners], dtype=float)
-    if layout_ids is not None:
-        keep = np.isin(ids, np.fromiter(layout_ids, int))
+        ids, rough = _as_arrays(ids, corners)
+    layout = None if layout_ids is None else np.fromiter(layout_ids, int)
+    if layout is not None:
+        keep = np.isin(ids, layout)
         ids, rough = ids[keep], rough[keep]
-    result = _fallback(gray, refine_corners(lin, rough, cells_per_side(dictionary_name)))
-    evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name)
-    keep = evidence.accepted & _size_fits(result.corners_px, ids, expected)
-    found = [MarkerDetection(int(ids[k]), result.corners_px[k], bool(result.refined[k])) for k in np.flatnonzero(keep)]
-    score = [(int(evidence.undecided_cells[k]), -float(evidence.ring_fraction[k])) for k in np.flatnonzero(keep)]
+    found, score = _checked(gray, lin, ids, rough, dictionary_name, expected)
+    missing = set() if search_ids is None else {int(i) for i in search_ids} - {d.id for d in found}
+    if layout is not None:
+        missing &= set(layout.tolist())
+    if missing:
+        more, more_score = _checked(gray, lin, *_second_look(gray, dictionary_name, expected, missing),
+                                    dictionary_name, expected)
+        found, score = found + more, score + more_score
     return _one_per_id(found, score, expected)
+
+
+def _second_look(gray, dictionary_name: str, expected: dict | None, missing: set) -> tuple[np.ndarray, np.ndarray]:
+    """Candidates (ids, corners) of the ``missing`` ids from :func:`_second_detector`: in windows around
+    their expected corners where ``expected`` is given, else in the whole photo."""
+    detector = _second_detector(dictionary_name)
+    if expected:
+        ids, rough = _as_arrays(*_detect_in_windows(gray, detector, expected, wanted=missing, all_found=False))
+    else:
+        corners, ids, _ = detector.detectMarkers(gray)
+        ids, rough = _as_arrays(ids, corners)
+    keep = np.isin(ids, np.fromiter(missing, int))
+    return ids[keep], rough[keep]

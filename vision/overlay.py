@@ -131,6 +131,8 @@ def detection_overlay(image_bgr, detection, mapping, camera_centre_mm, cell) -> 
         cv2.drawMarker(out, ci, (255, 255, 255), cv2.MARKER_CROSS, 16, 3, cv2.LINE_AA)
         cv2.drawMarker(out, ci, (0, 0, 0), cv2.MARKER_CROSS, 16, 1, cv2.LINE_AA)
         label = f"{p.id} {p.class_name}" + ("" if ok else f": {p.status}")
+        if p.status == "unknown_shape":             # its measured size: why it fits no class of its colour
+            label += f" {p.length_mm:.0f}x{p.width_mm:.0f} mm"
         pos = (ci[0] + 12, ci[1] - 12)
         cv2.putText(out, label, pos, cv2.FONT_HERSHEY_SIMPLEX, 0.5, (0, 0, 0), 3, cv2.LINE_AA)
         cv2.putText(out, label, pos, cv2.FONT_HERSHEY_SIMPLEX, 0.5, (255, 255, 255) if ok else (80, 80, 255), 1, cv2.LINE_AA)

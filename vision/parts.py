@@ -33,8 +33,11 @@ import numpy as np
 from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
 from gripsight.vision.polygon import points_in_polygon
 from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.outlineedge import edge_outlines_px
 from gripsight.vision.topface import (
     TopFaceProblem,
+    beyond_silhouette_mm,
+    top_faces_overlap,
     expected_area_mm2,
     fit_row_of_tops,
     fit_top_faces,
@@ -272,7 +275,7 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     groups = colour_groups(cell.parts)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
+    search = _Search(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in _outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
@@ -360,7 +363,8 @@ class _Search:
     """What every window of one photo shares: the classified pixels, the searched area's edge band, the
     mapping, the cell's classes and the camera centre."""
 
-    def __init__(self, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+    def __init__(self, image_bgr, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
+        self.image_bgr = image_bgr
         self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
         self.parallax, self.seen_as = parallax, seen_as
         self.groups: dict[str, ColourGroup] = groups
@@ -439,11 +443,12 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     classified, mapping, nadir, parallax = search.classified, search.mapping, search.nadir, search.parallax
     u0, v0 = classified.origin
     lengths = np.cumsum([len(o.outline_px) for o in outlines])[:-1]
-    outlines_mm = np.split(mapping(np.concatenate([o.outline_px for o in outlines])), lengths)
+    on_edges, shaded = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
+    outlines_mm = np.split(mapping(np.concatenate(on_edges)), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
     outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
-    for o, outline_mm, area_mapped, m, normal in zip(outlines, outlines_mm, areas, centroids, normals):
+    for o, outline_mm, area_mapped, m, normal, in_shade in zip(outlines, outlines_mm, areas, centroids, normals, shaded):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
         unknown = cls is None
         shape_misfit = unknown and o.group is not None
@@ -482,15 +487,28 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             if ratio < _MIN_RATIO:
                 status, reason = PartStatus.TOO_SMALL, f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
             elif ratio > _MAX_RATIO or o.split_into >= 2:
-                pieces, status, reason = _split(sub, x + u0, y + v0, mapping, k, expected,
-                                                max(ratio, o.split_into), name, whole)
+                members = o.members or (name,)
+                pieces, status, reason, piece_fits = _split_by_shape(
+                    search, o, sub, x + u0, y + v0, outline_mm, normal, area_mapped, members, whole)
+                if status is PartStatus.UNKNOWN_SHAPE:      # no split into parts of its colour's classes holds
+                    height = max(search.cell.parts[n].height_mm for n in members)
+                    name, cls, k, mode = "unknown", None, search.k_of(height), search.seen_as or "auto"
+                    area = float(area_mapped) / (k * k)
+                    pieces = [(m, outline_mm, o.outline_px, area, pixel_uv)]
+                    o = replace(o, height_mm=float(height))
+                    if area > _UNKNOWN_MAX_RATIO * search.typical:
+                        status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
+                    else:
+                        reason = (f"colour of {', '.join(members)} but the shape or size of none, nor of touching "
+                                  f"parts of {'them' if len(members) > 1 else 'it'} ({_shape_words(o, outline_mm, k)})")
         blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
                      min_rect(outline_mm, k))
-        if len(pieces) > 1 and o.members and parallax:
-            blob.piece_classes = _classify_pieces(search, blob, o.members)
+        if len(pieces) > 1 and o.members:
+            blob.piece_classes = [f if f is not None else (blob.name, blob.cls, blob.k, None) for f in piece_fits]
         if parallax and mode == "auto" and cls is not None and len(pieces) == 1:
             guess = top_face_guess(m, area * k * k, nadir, k, expected_area_mm2(cls))
-            blob.problem = TopFaceProblem.of_class(outline_mm, normal, guess, nadir, k, cls, blob.rect[2])
+            edge = ~in_shade if in_shade.mean() < 0.5 else np.ones(len(in_shade), bool)   # not a shadow's edge
+            blob.problem = TopFaceProblem.of_class(outline_mm[edge], normal[edge], guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
 
@@ -572,31 +590,90 @@ def _row_of_parts(search: _Search, members, outline_mm) -> tuple[str | None, int
     return best[0], best[1]
 
 
-def _classify_pieces(search: _Search, b: _Blob, members) -> list:
-    """The class of each piece of a blob split from touching parts of one colour's several classes: the
-    blob's outline points nearest each piece's centre are that piece's own edge (the cut between pieces
-    has none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
-    A piece no class fits keeps the blob's class and its area-based centre."""
-    centres = np.array([p[0] for p in b.pieces])
-    owner = np.linalg.norm(b.outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
+def _split_by_shape(search: _Search, o: _Outline, sub, ox, oy, outline_mm, normals, area_mapped, members, whole):
+    """Split a blob larger than one part of its colour into n touching parts, only where its outline says it
+    is n parts: (pieces, status, reason, per-piece fits). Each count n that a class of its colour gives by
+    area (and the count its outline's length gave) is tried, by k-means (:func:`_split`); a split holds when
+    the outline is a row of n parts of one class (:func:`_row_of_parts`) or when every piece's own stretch
+    of the outline fits a class's top face with the fit's gates (:func:`_piece_fits`: circle or box, size
+    within 15 %, median residual <= 0.4 mm). A blob whose pieces have parts' sizes but whose outline no
+    split explains is ``UNKNOWN_SHAPE`` (a 44 mm disc is not two 22 mm cubes); one that no count splits into
+    pieces of a part's size keeps the split's own verdict (``too_large``, ``touching``), as before."""
+    classes = [search.cell.parts[n] for n in members]
+    counts = [o.split_into] if o.split_into >= 2 else []
+    ratios = [float(area_mapped) / search.k_of(c.height_mm) ** 2 / expected_area_mm2(c) for c in classes]
+    counts += [int(round(r)) for r in sorted(ratios, key=lambda r: abs(r - round(r)) / max(round(r), 1))]
+    counts = list(dict.fromkeys(n for n in counts if n >= 2)) or [int(round(max(ratios)))]
+    areas = [expected_area_mm2(c) for c in classes]
+    row_name, row_n = _row_of_parts(search, members, outline_mm)
+    first = row = None
+    sized = False
+    for n in counts:
+        # a class of its own colour alone: its area ratio, as before (a blob far from a whole number of parts
+        # is too large)
+        ratio = n if len(members) > 1 or o.split_into >= 2 else ratios[0]
+        pieces, status, reason = _split(sub, ox, oy, search.mapping, o.k, (min(areas), max(areas)), ratio, o.name,
+                                        whole)
+        if status is not PartStatus.OK:
+            first = first or (pieces, status, reason)
+            continue
+        sized = True
+        fits, explained = _piece_fits(search, outline_mm, normals, o.k, pieces, members)
+        if explained:
+            return pieces, status, reason, fits
+        if row_n == len(pieces) and row is None:      # a row of one class's parts, unless pieces explain it
+            row = (pieces, status, reason, fits)     # (disc, cube, disc in a row is as long as 4 cubes)
+    if row is not None:
+        return row
+    if sized:
+        return whole, PartStatus.UNKNOWN_SHAPE, "", []
+    return (*first, [])
+
+
+def _piece_fits(search: _Search, outline_mm, normals, k_blob, pieces, members) -> tuple[list, bool]:
+    """Per piece of a blob split from touching parts of one colour, the class among ``members`` whose top
+    face fits the piece best, as (name, class, k, top-face fit), or None when none holds: the blob's
+    outline points nearest each piece's centre are that piece's own edge (the cut between pieces has
+    none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
+    Also whether the pieces explain the whole outline: every piece has a fit, 80 % of the outline lies
+    within 1 mm of the union of their silhouettes (:func:`vision.topface.beyond_silhouette_mm`; the fit's
+    own gates see the outer half of each piece's stretch only, which a corner of a larger shape passes),
+    and no fitted top face lies more than 40 % inside another (:func:`vision.topface.top_faces_overlap`:
+    a row of a disc, a cube and a disc cut into four cube-sized pieces covers the outline too)."""
+    centres = np.array([p[0] for p in pieces])
+    owner = np.linalg.norm(outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
     problems, owners = [], []
-    for j, piece in enumerate(b.pieces):
+    for j, piece in enumerate(pieces):
         sel = owner == j
         if sel.sum() < 12:
             continue
         for name in members:
             cls = search.cell.parts[name]
             k = search.k_of(cls.height_mm)
-            guess = top_face_guess(piece[0], piece[3] * b.k * b.k, search.nadir, k, expected_area_mm2(cls))
-            problems.append(TopFaceProblem.of_class(b.outline_mm[sel], b.normals[sel], guess, search.nadir, k, cls,
+            guess = top_face_guess(piece[0], piece[3] * k_blob * k_blob, search.nadir, k, expected_area_mm2(cls))
+            problems.append(TopFaceProblem.of_class(outline_mm[sel], normals[sel], guess, search.nadir, k, cls,
                                                     min_rect(piece[1], k)[2]))
             owners.append((j, name, k))
+    scores = score_top_faces(problems)
+    # a piece whose own stretch has no outer half (a corner piece of an L whose outside faces the nadir: its
+    # far side is the cut) is fitted to all of its stretch (a problem centred on its nadir keeps every point)
+    again = [i for i, sc in enumerate(scores) if sc.scale_ratio != sc.scale_ratio]
+    for i, sc in zip(again, score_top_faces([replace(problems[i], nadir=problems[i].centre) for i in again])):
+        scores[i] = sc
     best: dict[int, tuple] = {}
-    for (j, name, k), score in zip(owners, score_top_faces(problems)):
+    for (j, name, k), score in zip(owners, scores):
         if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
             best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
-    return [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else (b.name, b.cls, b.k, None)
-            for j in range(len(b.pieces))]
+    fits = [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else None for j in range(len(pieces))]
+    if any(f is None for f in fits):
+        return fits, False
+    beyond = np.min([beyond_silhouette_mm(outline_mm, fit, search.nadir, k, cls) for _, cls, k, fit in fits], axis=0)
+    overlap = top_faces_overlap([(fit, cls) for _, cls, _, fit in fits])
+    return fits, bool(np.percentile(beyond, 80) <= _BEYOND_MM and overlap <= _OVERLAP)
+
+
+_BEYOND_MM = 1.0        # an outline explained by its pieces: 80 % of it within this of their silhouettes,
+_OVERLAP = 0.4          # and no piece's top face more than this fraction inside another's (one part twice)
 
 
 def _shape_words(o: _Outline, outline_mm, k: float) -> str:
@@ -645,9 +722,11 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
 _KMEANS_POINTS = 400
 
 
-def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
-    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size.
+def _split(sub, ox, oy, mapping, k, expected_mm2, ratio, name, whole):
+    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size
+    (``expected_mm2``: the area of a part, or the smallest and largest of the classes it may be).
     ``whole`` is the blob as one piece, returned when it cannot be split."""
+    low, high = (expected_mm2, expected_mm2) if np.isscalar(expected_mm2) else expected_mm2
     n = int(round(ratio))
     if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
         return whole, PartStatus.TOO_LARGE, \
@@ -667,7 +746,7 @@ def _split(sub, ox, oy, mapping, k, expected, ratio, name, whole):
     for j in range(n):
         sel = labels == j
         area = sel.sum() * per_px / (k * k)
-        if not _MIN_RATIO < area / expected < 1.4:
+        if not (_MIN_RATIO < area / low and area / high < 1.4):
             return whole, PartStatus.TOUCHING, \
                 f"{n} touching {name} parts that could not be split into parts of the right size"
         pts_mm = xy[sel].astype(float)

@@ -25,7 +25,7 @@ import numpy as np
 
 from gripsight.vision.colour import delta_e_2000
 
-__all__ = ["ColourGroup", "colour_groups"]
+__all__ = ["ColourGroup", "colour_groups", "shape_clashes", "SHAPE_TOO_CLOSE"]
 
 
 @dataclass(frozen=True)
@@ -66,3 +66,28 @@ def colour_groups(classes: dict) -> dict[str, ColourGroup]:
         groups[name] = ColourGroup(name, tuple(float(v) for v in lab), float(max(classes[n].tolerance for n in group)),
                                    tuple(group))
     return groups
+
+
+SHAPE_TOO_CLOSE = 0.15      # footprint sides within this fraction: the top-face fit's size gate (15 %)
+
+
+def _sides_mm(cls) -> list[float]:
+    fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
+    return sorted((float(v) for v in fp), reverse=True)
+
+
+def shape_clashes(classes: dict, groups: dict[str, ColourGroup] | None = None) -> list[tuple[str, str]]:
+    """Pairs of classes of one colour group that shape and size cannot tell apart either: the same shape
+    (box or cylinder) and both footprint sides (longer with longer) within 15 % of each other, the
+    tolerance of the top-face fit's size and of the size rule (:mod:`vision.parts`). A blob of either may
+    take the other's class."""
+    groups = colour_groups(classes) if groups is None else groups
+    out = []
+    for group in groups.values():
+        for i, a in enumerate(group.members):
+            for b in group.members[i + 1:]:
+                ca, cb = classes[a], classes[b]
+                if ca.shape == cb.shape and all(abs(x / y - 1.0) <= SHAPE_TOO_CLOSE
+                                                for x, y in zip(_sides_mm(ca), _sides_mm(cb))):
+                    out.append((a, b))
+    return out

@@ -20,7 +20,8 @@ import numpy as np
 from gripsight.vision.robust import masked_median, robust_lm, soft_l1
 
 __all__ = ["outlines_geometry", "expected_area_mm2", "footprint_centre", "outward_normals",
-           "TopFaceProblem", "TopFaceScore", "top_face_guess", "fit_top_faces", "score_top_faces", "fit_row_of_tops", "min_rect"]
+           "TopFaceProblem", "TopFaceScore", "top_face_guess", "fit_top_faces", "score_top_faces", "fit_row_of_tops", "min_rect",
+           "beyond_silhouette_mm", "top_faces_overlap"]
 
 
 def outlines_geometry(outlines: list[np.ndarray], step: int = 3):
@@ -255,3 +256,60 @@ def min_rect(points_mm: np.ndarray, scale: float):
         length, width, yaw = b, a, ang + 90.0
     yaw = (yaw + 90.0) % 180.0 - 90.0
     return float(length / scale), float(width / scale), float(yaw)
+
+
+def beyond_silhouette_mm(points_mm: np.ndarray, fit, nadir, k: float, part_class) -> np.ndarray:
+    """How far (mm, 0 inside) each outline point (N, 2; table-mapped mm) lies outside the silhouette of a
+    part whose top face was fitted (``fit`` as :func:`fit_top_faces` gives it): the top face swept toward
+    the nadir down to the footprint (centre n + (m - n) / k, scale 1/k), the part's visible sides
+    included. An outline that runs past it belongs to something larger than the part: the fit's gates
+    look at the outer half of the outline only, where a corner of a larger box fits any box."""
+    centre, axis, scale = fit
+    nadir = np.asarray(nadir, float)
+    half = np.asarray(part_class.length_width_mm, float) / 2.0
+    bottom = nadir + (np.asarray(centre, float) - nadir) / k
+    t = np.linspace(0.0, 1.0, 6)[:, None, None]
+    centres = centre + t * (bottom - centre)                       # (6, 1, 2)
+    scales = (scale * (1.0 - t) + (scale / k) * t)[..., 0]          # (6, 1)
+    d = np.asarray(points_mm, float)[None] - centres                # (6, N, 2)
+    along, across = d @ axis, d @ np.array([-axis[1], axis[0]])
+    if part_class.shape == "cylinder":
+        dist = np.sqrt(along * along + across * across) - scales * half[0]
+    else:
+        qx, qy = np.abs(along) - scales * half[0], np.abs(across) - scales * half[1]
+        dist = np.sqrt(np.maximum(qx, 0.0) ** 2 + np.maximum(qy, 0.0) ** 2)
+    return np.maximum(dist.min(axis=0), 0.0)
+
+
+def _top_face_distance_mm(points_mm: np.ndarray, fit, part_class) -> np.ndarray:
+    """Signed distance (mm, negative inside) of points (N, 2) to a fitted top face (``fit`` as
+    :func:`fit_top_faces` gives it, for a part of ``part_class``)."""
+    centre, axis, scale = fit
+    half = np.asarray(part_class.length_width_mm, float) / 2.0 * scale
+    d = np.asarray(points_mm, float) - centre
+    along, across = d @ axis, d @ np.array([-axis[1], axis[0]])
+    if part_class.shape == "cylinder":
+        return np.sqrt(along * along + across * across) - half[0]
+    qx, qy = np.abs(along) - half[0], np.abs(across) - half[1]
+    return np.sqrt(np.maximum(qx, 0.0) ** 2 + np.maximum(qy, 0.0) ** 2) + np.minimum(np.maximum(qx, qy), 0.0)
+
+
+def top_faces_overlap(fitted: list) -> float:
+    """The largest fraction of one fitted top face that lies inside another, over pairs of (fit, class):
+    touching parts' top faces meet but do not overlap; pieces that do are one part counted twice (a row
+    of a disc, a cube and a disc is as long as four cubes). Each face is sampled on a 9 x 9 grid inside its
+    edges (a face's own edge meets its neighbour's)."""
+    s = np.linspace(-0.5, 0.5, 11)[1:-1]
+    gx, gy = np.meshgrid(s, s)
+    unit = np.column_stack([gx.ravel(), gy.ravel()])
+    worst = 0.0
+    for i, (fit_i, cls_i) in enumerate(fitted):
+        centre, axis, scale = fit_i
+        local = unit * np.asarray(cls_i.length_width_mm, float) * scale
+        if cls_i.shape == "cylinder":
+            local = local[(unit ** 2).sum(axis=1) <= 0.25 + 1e-9]
+        pts = centre + local[:, :1] * axis + local[:, 1:] * np.array([-axis[1], axis[0]])
+        for j, (fit_j, cls_j) in enumerate(fitted):
+            if j != i:
+                worst = max(worst, float((_top_face_distance_mm(pts, fit_j, cls_j) < 0.0).mean()))
+    return worst

@@ -103,6 +103,8 @@ def _process_photo(job: BatchJob) -> dict:
             row["status"] = "ok"
             for p in pp.analysis.detection.parts:
                 row["found"][p.class_name] = row["found"].get(p.class_name, 0) + 1
+                if p.class_name not in cell.parts and p.status.pickable:     # to the reject bin: why
+                    row.setdefault("unknown", []).append(f"{p.id} {p.status.value}: {p.reason}")
             row["parts"] = len(pp.analysis.detection.parts)
             row["planned"] = len(pp.plan.picks)
             for o in pp.plan.parts:

@@ -55,6 +55,8 @@ def plan_to_dict(plan: Plan, cell, created: str | None = None, photo: dict | Non
                       "table_mm": _r(p.xy_mm, 3), "height_mm": round(p.height_mm, 3),
                       "yaw_deg": round(p.yaw_deg, 2), "width_mm": round(p.width_mm, 3), "length_mm": round(p.length_mm, 3),
                       "bin": o.bin_name, "status": o.status.value,
+                      # what the photo analysis made of it (unknown_shape, unknown_colour: the reject bin), and why
+                      "photo_status": p.vision_status, "photo_detail": p.vision_detail or None,
                       "reason": None if o.rejection is None else o.rejection.label,
                       "rejection": None if o.rejection is None else o.rejection.as_dict()})
     rejected: dict[str, int] = {}

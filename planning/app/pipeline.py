@@ -47,7 +47,7 @@ def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
         photo = Path(cell.source_path).parent / "calibration.jpg"
         if photo.is_file():
             image = read_photo(photo)
-            cal = calibrate(detect_markers(image, cell.markers.dictionary), cell, (image.shape[1], image.shape[0]),
+            cal = calibrate(detect_markers(image, cell.markers.dictionary, search_ids=cell.markers.layout), cell, (image.shape[1], image.shape[0]),
                             str(photo))
             write_calibration(path, cal, cell, photo)
             if say is not None:
@@ -70,7 +70,7 @@ def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     check_photo_fits_calibration(photo, image, stored)
     check_calibration_fits_cell(stored, cell)
     expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
-    markers = detect_markers(image, cell.markers.dictionary, expected=expected)
+    markers = detect_markers(image, cell.markers.dictionary, expected=expected, search_ids=cell.markers.layout)
     reg = register(stored, markers, cell, (image.shape[1], image.shape[0]), str(photo))
     detection = None
     if reg.action is not RegistrationAction.REFUSED:

@@ -91,7 +91,9 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
         reasons = ", ".join(f"{k} {v}" for k, v in sorted(r["rejected"].items()))
         status = r["status"] + (f": {r['error']}" if r["error"] else "")
         cells = [f"<td>{e(r['photo'])}</td>", f"<td>{thumb}</td>", f"<td>{e(status)}</td>"]
-        cells += [f'<td class="num">{r["found"].get(c, 0)}</td>' for c in classes]
+        cells += [f'<td class="num">{r["found"].get(c, 0)}</td>' for c in classes[:-1]]
+        why = "".join(f'<br><span class="muted">{e(line)}</span>' for line in r.get("unknown", []))   # reject bin
+        cells.append(f'<td class="num">{r["found"].get("unknown", 0)}{why}</td>')
         cells += [f'<td class="num">{r["planned"]}</td>', f"<td>{e(reasons)}</td>", f'<td class="num">{r["cycle_s"]:.1f}</td>',
                   f"<td>{e('; '.join(r.get('warnings', [])))}</td>"]
         if truth:

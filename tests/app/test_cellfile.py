@@ -160,3 +160,35 @@ def test_validate_refuses_what_plan_refuses_naming_the_key(tmp_path, capsys, cha
     assert f"{cell}: {key}: {fragment}" in said
     assert main(["plan", "--parts", str(parts), "--cell", str(cell), "--out", str(tmp_path / "o")]) == 2
     assert f"{key}: {fragment}" in capsys.readouterr().err
+
+
+def test_validate_lists_shared_colours_and_warns_when_shapes_cannot_tell_them_apart(tmp_path, capsys):
+    data = copy.deepcopy(sample_cell_data())
+    red = data["parts"]["red"]                      # box 22 x 22 mm, 22 mm high
+    data["parts"]["red_disc"] = {"lab": list(red["lab"]), "tolerance": 20, "height_mm": 14, "shape": "cylinder",
+                                 "footprint_mm": [30]}
+    data["bins"]["red_disc"] = {"x": 150, "y": 240}
+    path = tmp_path / "cell.yaml"
+    path.write_text(yaml.safe_dump(data))
+    assert main(["validate", str(path)]) == 0
+    out, err = capsys.readouterr()
+    assert ("shared colour: red, red_disc (CIEDE2000 up to 0.0 apart, under half the tolerance): told apart by shape "
+            "and size (red box 22x22 mm, 22 mm high; red_disc cylinder 30 mm, 14 mm high)") in out
+    assert "blue" not in out.split("shared colour:")[1] and err == ""
+    # a 24 x 24 box of (nearly) the red: sides 9 % from the cube's, the same shape: too close, a warning, exit 0
+    data["parts"]["red_big"] = {"lab": [48, 60, 42], "tolerance": 20, "height_mm": 22, "shape": "box",
+                                "footprint_mm": [24, 24]}
+    data["bins"]["red_big"] = {"x": 60, "y": 240}
+    path.write_text(yaml.safe_dump(data))
+    assert main(["validate", str(path)]) == 0
+    out, err = capsys.readouterr()
+    # CIEDE2000 (46, 60, 42) to (48, 60, 42) = dL / SL = 2 / 1.0251 = 1.951 (Sharma, Wu and Dalal 2005: only
+    # lightness differs, SL = 1 + 0.015 (L - 50)^2 / sqrt(20 + (L - 50)^2) at the mean L 47); members in file order
+    assert "shared colour: red, red_big, red_disc (CIEDE2000 up to 2.0 apart" in out
+    assert err.strip() == ("warning: parts.red and parts.red_big: one colour, and shapes and sizes too close to tell "
+                           "apart (box 22x22 mm, 22 mm high; box 24x24 mm, 22 mm high: the same shape, footprints "
+                           "within 15%); a part of either may be sorted as the other: change a colour or a size")
+    # the demo cell (one class per colour) says nothing more
+    assert main(["validate", str(SAMPLE_CELL)]) == 0
+    out, err = capsys.readouterr()
+    assert "shared colour" not in out and err == ""

@@ -36,7 +36,7 @@ def main(count: int = 100) -> None:
             gray = cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
             for _ in range(3):
                 t0 = time.perf_counter()
-                detect_markers(image, cell.markers.dictionary)
+                detect_markers(image, cell.markers.dictionary, search_ids=cell.markers.layout)
                 t1 = time.perf_counter()
                 det.detectMarkers(gray)
                 t2 = time.perf_counter()

@@ -45,7 +45,8 @@ class _Calibrations:
         photo = Path(photo).resolve()
         if photo not in self.cache:
             image = read_photo(photo)
-            cal = calibrate(detect_markers(image, self.cell.markers.dictionary), self.cell,
+            cal = calibrate(detect_markers(image, self.cell.markers.dictionary, search_ids=self.cell.markers.layout),
+                            self.cell,
                             (image.shape[1], image.shape[0]), str(photo))
             path = self.folder / f"{photo.stem}.calibration.yaml"
             write_calibration(path, cal, self.cell, photo)

@@ -48,7 +48,7 @@ def score(cell, seed: int) -> BusyResult:
     def is_true(marker_id, corners):
         return marker_id in truth and np.abs(np.asarray(corners).reshape(4, 2) - truth[marker_id]).max() < 3.0
 
-    found = detect_markers(image, cell.markers.dictionary)
+    found = detect_markers(image, cell.markers.dictionary, search_ids=cell.markers.layout)     # as calibrate does
     good = {d.id for d in found if is_true(d.id, d.corners_px)}
     false = sum(not is_true(d.id, d.corners_px) for d in found)
     det = cv2.aruco.ArucoDetector(cv2.aruco.getPredefinedDictionary(cv2.aruco.DICT_4X4_50), cv2.aruco.DetectorParameters())

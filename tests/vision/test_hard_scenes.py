@@ -9,6 +9,7 @@ import numpy as np
 import pytest
 
 from gripsight.app.cli import main
+from gripsight.vision.calibration import calibrate
 from gripsight.vision.markers import detect_markers
 from gripsight.vision.synth.hard import DISTRACTORS, add_hard_parts, hard_conditions
 from gripsight.vision.synth.render import render_scene
@@ -29,7 +30,7 @@ def _gap_to_paper_mm(part, marker, cell) -> float:
 @pytest.mark.parametrize("seed", [0, 1])
 def test_hard_scene_has_every_condition_and_its_markers_are_found(sample_cell, seed):
     rng = np.random.default_rng(seed)
-    scene = add_hard_parts(random_scene(sample_cell, rng, **hard_conditions(rng)), sample_cell, rng)
+    scene = add_hard_parts(random_scene(sample_cell, rng, **hard_conditions(rng, cell=sample_cell)), sample_cell, rng)
     rendered = render_scene(sample_cell, scene)
     parts = {p["class"]: p for p in rendered.truth["parts"]}
     for name, (lab, shape, _, height) in DISTRACTORS.items():
@@ -100,3 +101,22 @@ def test_every_surface_renders(sample_cell):
         if surface != Surface.PLYWOOD:
             spread = np.abs(means[surface] - means[Surface.PLYWOOD]).max()
             assert spread > 8 or surface == Surface.PRINTED_TEXT
+
+
+def test_a_hand_mounted_camera_is_placed_from_the_markers(sample_cell):
+    """Hard scenes' cameras (tilted up to 2 degrees, principal point up to 12 px off centre, 700-800 mm up)
+    placed by calibration against the render's truth (cv2.projectPoints' camera): the nadir within 1.2 mm
+    in the median of six (measured 0.5 mm; holding the principal point at the image centre gave 4.4 mm),
+    4.5 mm at worst (measured 4.2), the height within 2 %."""
+    nadir_mm, height = [], []
+    for seed in range(6):
+        rng = np.random.default_rng(seed)
+        scene = random_scene(sample_cell, rng, n_parts=(0, 0), **hard_conditions(rng, cell=sample_cell))
+        rendered = render_scene(sample_cell, scene)
+        h, w = rendered.image_bgr.shape[:2]
+        cal = calibrate(detect_markers(rendered.image_bgr, sample_cell.markers.dictionary), sample_cell, (w, h))
+        truth = rendered.camera.centre_mm
+        nadir_mm.append(float(np.hypot(*(cal.camera_centre_mm[:2] - truth[:2]))))
+        height.append(abs(cal.camera_centre_mm[2] - truth[2]) / truth[2])
+    assert np.median(nadir_mm) <= 1.2 and max(nadir_mm) <= 4.5
+    assert max(height) <= 0.02

@@ -135,3 +135,60 @@ def test_false_candidate_refused_by_its_quiet_zone():
     assert 17 in _opencv_subpixel(on_mat.image_bgr)
     assert detect_markers(on_mat.image_bgr, "aruco_4x4_50") == []
     assert [d.id for d in detect_markers(on_paper.image_bgr, "aruco_4x4_50")] == [17]
+
+
+def test_marker_grouped_with_its_paper_outline_is_found(sample_cell):
+    """Busy render 18: marker 9's paper outline is within OpenCV's minMarkerDistanceRate 0.125 of its
+    black square (a 1.5-cell quiet zone on a darker mat); OpenCV (the outside reference, default
+    parameters) groups the two and loses the marker. Ours keeps the outline apart (rate 0.05) and finds
+    it within 0.5 px of the render's truth."""
+    from tests.vision.busy import busy_render
+
+    _, image, rendered = busy_render(sample_cell, 18)
+    truth = {m["id"]: np.array(m["corners_px"]) for m in rendered.truth["markers"]}
+    assert 9 not in _opencv_subpixel(image)
+    found = {d.id: d for d in detect_markers(image, "aruco_4x4_50")}
+    assert sorted(found) == sorted(truth) and np.abs(found[9].corners_px - truth[9]).max() < 0.5
+
+
+def test_second_look_finds_layout_markers_the_first_search_missed(sample_cell, monkeypatch):
+    """With a first search that loses marker 9 of busy render 18 (the settings before this fix: outline
+    accuracy 0.05, OpenCV's grouping rate 0.125), the layout's ids asked for bring it back within 0.5 px
+    of the truth: searched again over the whole photo, and in a window around its calibrated place when
+    the markers cannot all be tracked (marker 3 covered). Without the ids nothing is searched again."""
+    from gripsight.vision import markers
+    from tests.vision.busy import busy_render
+
+    params = cv2.aruco.DetectorParameters()
+    params.polygonalApproxAccuracyRate = 0.05
+    old = cv2.aruco.ArucoDetector(cv2.aruco.getPredefinedDictionary(cv2.aruco.DICT_4X4_50), params)
+    monkeypatch.setattr(markers, "_detector", lambda name: old)
+    _, image, rendered = busy_render(sample_cell, 18)
+    truth = {m["id"]: np.array(m["corners_px"]) for m in rendered.truth["markers"]}
+    layout = sample_cell.markers.layout
+    assert 9 not in {d.id for d in detect_markers(image, "aruco_4x4_50")}
+    found = {d.id: d for d in detect_markers(image, "aruco_4x4_50", search_ids=layout)}
+    assert sorted(found) == sorted(truth) and np.abs(found[9].corners_px - truth[9]).max() < 0.5
+    covered = image.copy()
+    x0, y0 = (truth[3].min(axis=0) - 25).astype(int)
+    x1, y1 = (truth[3].max(axis=0) + 25).astype(int)
+    covered[y0:y1, x0:x1] = (90, 120, 60)
+    tracked = {d.id: d for d in detect_markers(covered, "aruco_4x4_50", expected=truth, search_ids=layout)}
+    assert sorted(tracked) == sorted(set(truth) - {3}) and np.abs(tracked[9].corners_px - truth[9]).max() < 0.5
+
+
+def test_cell_sample_points_agree_with_opencv_perspective_transform():
+    """The evidence reads each candidate's cells through the projective map of its corners, computed for
+    all candidates at once in closed form; OpenCV's getPerspectiveTransform + perspectiveTransform on the
+    same quadrilaterals is the reference (agree to 1e-3 px)."""
+    from gripsight.vision.markercheck import _square_to_quads
+
+    rng = np.random.default_rng(3)
+    square = np.array([[0, 0], [1, 0], [1, 1], [0, 1]], float)
+    quads = 40 + 200 * square[None] + rng.uniform(-30, 30, (20, 4, 2))
+    uv = rng.uniform(-0.2, 1.2, (50, 2))
+    ours = _square_to_quads(uv, quads)
+    for q, o in zip(quads, ours):
+        H = cv2.getPerspectiveTransform(np.float32(square), np.float32(q))
+        ref = cv2.perspectiveTransform(uv[None].astype(np.float64), H)[0]
+        assert np.abs(o - ref).max() < 1e-3

@@ -6,7 +6,9 @@
 - a wood-grain or busy table (:mod:`gripsight.vision.synth.surfaces`);
 - distractors of colours no class has (orange, purple) and thin white cards;
 - a part 1.5-5 mm from a marker's paper;
-- a class's colour in the other shape (a cube's colour as a disc, a disc's as a cube).
+- a class's colour in the other shape (a cube's colour as a disc, a disc's as a cube);
+- a camera of its own (:func:`hard_camera`): tilted up to 2 degrees, 700-800 mm up and off the
+  markers' middle, its principal point up to 12 px off the image centre.
 
 :func:`hard_conditions` draws the light, sensor and surface; :func:`add_hard_parts` adds the parts to a
 scene from :func:`gripsight.vision.synth.scene.random_scene`. Both only use the generator they are given.
@@ -17,10 +19,10 @@ from __future__ import annotations
 import numpy as np
 
 from gripsight.vision.polygon import points_in_polygon
-from gripsight.vision.synth.scene import LightingSpec, Scene, ScenePart, SensorSpec
+from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, ScenePart, SensorSpec
 from gripsight.vision.synth.surfaces import Surface
 
-__all__ = ["DISTRACTORS", "hard_conditions", "add_hard_parts"]
+__all__ = ["DISTRACTORS", "hard_conditions", "hard_camera", "add_hard_parts"]
 
 # distractors: (CIELAB, shape, size_mm, height_mm); colours of no demo class
 DISTRACTORS = {
@@ -30,8 +32,9 @@ DISTRACTORS = {
 }
 
 
-def hard_conditions(rng: np.random.Generator, surface: Surface | None = None) -> dict:
-    """Random unkind light, sensor and surface, as keyword arguments for ``random_scene``."""
+def hard_conditions(rng: np.random.Generator, surface: Surface | None = None, cell=None) -> dict:
+    """Random unkind light, sensor and surface (and, given the cell, camera), as keyword arguments for
+    ``random_scene``."""
     side_deg = float(rng.uniform(0, 360))
     warm = float(rng.uniform(0.0, 1.0))
     lighting = LightingSpec(
@@ -49,7 +52,22 @@ def hard_conditions(rng: np.random.Generator, surface: Surface | None = None) ->
     if surface is None:
         surface = Surface.WOOD_GRAIN if rng.random() < 0.6 else Surface(str(rng.choice(
             [Surface.PLYWOOD.value, Surface.CUTTING_MAT.value, Surface.PRINTED_TEXT.value])))
-    return {"lighting": lighting, "sensor": sensor, "surface": surface}
+    out = {"lighting": lighting, "sensor": sensor, "surface": surface}
+    if cell is not None:
+        out["camera"] = hard_camera(cell, rng)
+    return out
+
+
+def hard_camera(cell, rng: np.random.Generator) -> CameraSpec:
+    """A camera mounted by hand: 700-800 mm up (not the cell's tape-measured figure), up to 30 mm off the
+    markers' middle, tilted up to 2 degrees, its principal point up to 12 px off the image centre (the
+    outside photo set's cameras: 4-11 px); the focal length fits the markers as ``make_camera`` does."""
+    xy = np.array([[m.x, m.y] for m in cell.markers.layout.values()], float)
+    middle = 0.5 * (xy.min(axis=0) + xy.max(axis=0))
+    return CameraSpec(centre_mm=[float(middle[0] + rng.uniform(-30, 30)), float(middle[1] + rng.uniform(-30, 30)),
+                                 float(rng.uniform(700, 800))],
+                      tilt_deg=float(rng.uniform(0.0, 2.0)), tilt_azimuth_deg=float(rng.uniform(0, 360)),
+                      principal_offset_px=[float(v) for v in rng.uniform(-12.0, 12.0, 2)])
 
 
 def _radius(size, shape) -> float:

@@ -96,8 +96,11 @@ def render(
                 cam.update(lens)
             table = Surface(surface) if surface else Surface.PLYWOOD
             if hard:
-                conditions = hard_conditions(rng, Surface(surface) if surface else None)
+                conditions = hard_conditions(rng, Surface(surface) if surface else None, cfg)
                 lighting, sensor, table = conditions["lighting"], conditions["sensor"], conditions["surface"]
+                # a camera mounted by hand (its place, tilt and principal point); the lens stays as asked
+                cam.update(conditions["camera"].model_dump(
+                    include={"centre_mm", "tilt_deg", "tilt_azimuth_deg", "principal_offset_px"}), focal_px=None)
             sc = random_scene(cfg, rng, touching=touching, unknown_lab=UNKNOWN_LAB if unknown else None,
                               camera=CameraSpec(**cam), lighting=lighting, sensor=sensor, surface=table)
             if hard:
@@ -148,7 +151,7 @@ def calibrate(
     overlay = overlay or out.with_name(out.stem + "_overlay.png")
     check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
-    detections = detect_markers(image, cfg.markers.dictionary)
+    detections = detect_markers(image, cfg.markers.dictionary, search_ids=cfg.markers.layout)
     try:
         cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo),
                   lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
@@ -280,7 +283,8 @@ def check(
     check_calibration_fits_cell(stored, cfg)
     image = read_photo(photo)
     check_photo_fits_calibration(photo, image, stored)
-    detections = detect_markers(image, cfg.markers.dictionary)
+    expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
+    detections = detect_markers(image, cfg.markers.dictionary, expected=expected, search_ids=cfg.markers.layout)
     if not detections:       # nothing to compare: not "moved", and not a photo to calibrate from
         raise CalibrationError(f"{photo}: no {cfg.markers.dictionary} markers seen, so the camera cannot be checked; "
                                "check the light and that the markers are in view")

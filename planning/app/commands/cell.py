@@ -53,6 +53,36 @@ def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
         f"ok: {cfg.cell}: {link} arm {cfg.arm.upper_arm_mm:g}+{cfg.arm.forearm_mm:g} mm, "
         f"{len(cfg.markers.layout)} markers ({raised} raised), {len(cfg.parts)} part classes, "
         f"{len(cfg.bins)} bins; reach at grip height {grip.describe()}")
+    _say_shared_colours(cfg)
+
+
+def _shape_words(cls) -> str:
+    fp = "x".join(f"{v:g}" for v in cls.footprint_mm)
+    return f"{cls.shape} {fp} mm, {cls.height_mm:g} mm high"
+
+
+def _say_shared_colours(cfg) -> None:
+    """The classes that share a colour (told apart by shape and size), and a warning for two of one colour
+    whose shapes and sizes are too close to tell apart (:func:`gripsight.vision.shapes.shape_clashes`)."""
+    from gripsight.vision.colour import delta_e_2000
+    from gripsight.vision.shapes import SHAPE_TOO_CLOSE, colour_groups, shape_clashes
+
+    import numpy as np
+
+    groups = colour_groups(cfg.parts)
+    for group in groups.values():
+        if len(group.members) < 2:
+            continue
+        labs = np.array([cfg.parts[n].lab for n in group.members], float)
+        apart = max(float(delta_e_2000(a, b)) for i, a in enumerate(labs) for b in labs[i + 1:])
+        typer.echo(f"shared colour: {', '.join(group.members)} (CIEDE2000 up to {apart:.1f} apart, under half the "
+                   f"tolerance): told apart by shape and size ("
+                   + "; ".join(f"{n} {_shape_words(cfg.parts[n])}" for n in group.members) + ")")
+    for a, b in shape_clashes(cfg.parts, groups):
+        typer.echo(f"warning: parts.{a} and parts.{b}: one colour, and shapes and sizes too close to tell apart "
+                   f"({_shape_words(cfg.parts[a])}; {_shape_words(cfg.parts[b])}: the same shape, footprints within "
+                   f"{SHAPE_TOO_CLOSE:.0%}); a part of either may be sorted as the other: change a colour or a size",
+                   err=True)
 
 
 # ------------------------------------------------------------------ reach

@@ -102,7 +102,7 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
         from gripsight.app.errors import GripsightError
 
         raise GripsightError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
-    ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary), cfg)
+    ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary, search_ids=cfg.markers.layout), cfg)
     patch = lab_image(image[v - 3:v + 4, u - 3:u + 4], ill, (u - 3, v - 3)).reshape(-1, 3)
     lab = np.median(patch, axis=0)
     typer.echo(f"CIELAB at ({u}, {v}): [{lab[0]:.1f}, {lab[1]:.1f}, {lab[2]:.1f}]"
