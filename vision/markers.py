@@ -173,6 +173,8 @@ def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict
     """Where an id was decoded more than once, keep the copy nearest its expected place (a calibrated
     camera), else the one with clearly the best evidence; copies that tie are all kept (calibration sets
     a duplicated id aside)."""
+    if len({d.id for d in found}) == len(found):
+        return sorted(found, key=lambda d: d.id)
     by_id: dict[int, list[int]] = {}
     for k, d in enumerate(found):
         by_id.setdefault(d.id, []).append(k)
@@ -192,8 +194,10 @@ def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict
 def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
     """Whether each candidate's side is within a quarter of the side the calibration predicts for its id
     (True where nothing is predicted)."""
-    side = np.linalg.norm(corners - np.roll(corners, -1, axis=1), axis=-1).mean(axis=1)
     ok = np.ones(len(corners), bool)
+    if not expected:
+        return ok
+    side = np.linalg.norm(corners - np.roll(corners, -1, axis=1), axis=-1).mean(axis=1)
     for k, marker_id in enumerate(ids):
         if expected and int(marker_id) in expected:
             c = np.asarray(expected[int(marker_id)], float).reshape(4, 2)
@@ -218,7 +222,7 @@ def _checked(gray, lin, ids, corners, dictionary_name: str, expected: dict | Non
 def _as_arrays(ids, corners) -> tuple[np.ndarray, np.ndarray]:
     if ids is None or len(ids) == 0:
         return np.zeros(0, int), np.zeros((0, 4, 2))
-    return np.ravel(ids).astype(int), np.asarray(corners, dtype=float).reshape(-1, 4, 2)
+    return np.ravel(ids).astype(int), np.concatenate(corners, axis=0).astype(float).reshape(-1, 4, 2)
 
 
 def detect_markers(image, dictionary_name: str, expected: dict | None = None,
