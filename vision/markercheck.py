@@ -72,20 +72,20 @@ def _grid(n: int):
 
 
 def _square_to_quads_xy(uv: np.ndarray, quads: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`_square_to_quads` as x and y (M, K) each, float32."""
+    """:func:`_square_to_quads` as x and y (M, K) each, float32 (the map as a 3 x 3 matrix per quad,
+    applied to all points with one matrix product)."""
     x, y = quads[..., 0], quads[..., 1]                                           # (M, 4) each
     dx1, dx2, dy1, dy2 = x[:, 1] - x[:, 2], x[:, 3] - x[:, 2], y[:, 1] - y[:, 2], y[:, 3] - y[:, 2]
     sx, sy = x[:, 0] - x[:, 1] + x[:, 2] - x[:, 3], y[:, 0] - y[:, 1] + y[:, 2] - y[:, 3]
     den = dx1 * dy2 - dx2 * dy1
     den = np.where(np.abs(den) > 1e-12, den, 1e-12)
     g, h = (sx * dy2 - dx2 * sy) / den, (dx1 * sy - sx * dy1) / den
-    a, b = x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3]
-    d, e = y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3]
-    u, v = uv[None, :, 0], uv[None, :, 1]
-    w = g[:, None] * u + h[:, None] * v + 1.0
-    px = (a[:, None] * u + b[:, None] * v + x[:, 0:1]) / w
-    py = (d[:, None] * u + e[:, None] * v + y[:, 0:1]) / w
-    return px.astype(np.float32), py.astype(np.float32)
+    H = np.empty((len(quads), 3, 3))
+    H[:, 0] = np.column_stack([x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3], x[:, 0]])
+    H[:, 1] = np.column_stack([y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3], y[:, 0]])
+    H[:, 2] = np.column_stack([g, h, np.ones(len(quads))])
+    q = (H.reshape(-1, 3) @ np.vstack([uv.T, np.ones(len(uv))])).reshape(len(quads), 3, len(uv))   # (M, 3, K)
+    return (q[:, 0] / q[:, 2]).astype(np.float32), (q[:, 1] / q[:, 2]).astype(np.float32)
 
 
 def _square_to_quads(uv: np.ndarray, quads: np.ndarray) -> np.ndarray:

@@ -221,7 +221,9 @@ def _robust_lines(px, py, valid):
     off = np.abs(resid)
     sigma = 1.4826 * median_where(off, valid, 0.0)
     keep = valid & (off <= np.maximum(3.0 * sigma, 0.15)[..., None])
-    mean, direc, resid = _fit_lines(px, py, keep)
+    again = np.nonzero((keep != valid).any(axis=-1))                      # only groups that lost points
+    if len(again[0]):
+        mean[again], direc[again], resid[again] = _fit_lines(px[again], py[again], keep[again])
     count = keep.sum(axis=-1)
     rms = np.sqrt((resid ** 2 * keep).sum(axis=-1) / np.maximum(count, 1))
     return mean, direc, keep, rms, count
