@@ -103,10 +103,9 @@ def _spread(count: int) -> np.ndarray:
     return np.linspace(0.0, 1.0, count)
 
 
-def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px, per_half=_S):
-    """Sample the profiles of every marker: returns the points along each edge as x and y (M, 4, 2S)
-    each, the outward normals (M, 4, 2), the across-edge offsets (M, P) and the profiles (M, 4, 2S, P)."""
-    m = len(corners)
+def _edge_frames(corners):
+    """Each marker's edges: start corners (M, 4, 2), edge vectors (M, 4, 2), lengths (M, 4) and unit
+    normals from ink to paper (M, 4, 2). Both passes sample from the detector's corners, so once."""
     a = corners
     b = corners[:, [1, 2, 3, 0]]
     d = b - a
@@ -116,6 +115,15 @@ def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px, per_h
     centre = corners.mean(axis=1, keepdims=True)
     outward = np.sign(np.einsum("mkj,mkj->mk", normal, (a + b) / 2 - centre))[..., None]
     normal = normal * np.where(outward == 0, 1.0, outward)                 # from ink to paper
+    return a, d, length, normal
+
+
+def _profiles(lin, frames, inside_px, outside_px, end_gap_px, offsets_px, per_half=_S):
+    """Sample the profiles of every marker (edges ``frames`` from :func:`_edge_frames`): returns the
+    points along each edge as x and y (M, 4, 2S) each, the across-edge offsets (M, P) and the profiles
+    (M, 4, 2S, P)."""
+    a, d, length, normal = frames
+    m = len(a)
     # along each edge: S places on each half, from end_gap from the corner to 45 % of the edge
     f0 = np.minimum(np.maximum(end_gap_px[:, None] / length, 0.08), 0.3)  # (M, 4)
     first = f0[..., None] + (0.45 - f0[..., None]) * _spread(per_half)     # (M, 4, S)
@@ -133,7 +141,7 @@ def _profiles(lin, corners, inside_px, outside_px, end_gap_px, offsets_px, per_h
     px = bx[..., None] + acr * nrm[:, :, None, None, 0]
     py = by[..., None] + acr * nrm[:, :, None, None, 1]
     prof = sample_image(lin, px.reshape(m, -1), py.reshape(m, -1)).reshape(px.shape)   # one row per marker
-    return base_x, base_y, normal, across, prof
+    return base_x, base_y, across, prof
 
 
 def _crossings(prof, across, blur_px=None, widths=True):
@@ -151,36 +159,40 @@ def _crossings(prof, across, blur_px=None, widths=True):
     if blur_px is not None:
         step0 = (across[:, -1] - across[:, 0]) / (_P - 1)
         sigma = np.maximum(blur_px, 0.3)
-        p_ink = ndtr(-(-across[:, 0] - step0) / sigma)[:, None, None]       # spill onto the ink end
-        p_paper = ndtr(-(across[:, -1] - step0) / sigma)[:, None, None]
+        spill = ndtr(np.concatenate([-(-across[:, 0] - step0) / sigma,       # onto the ink end
+                                     -(across[:, -1] - step0) / sigma]))       # onto the paper end
+        p_ink, p_paper = spill[:len(sigma), None, None], spill[len(sigma):, None, None]
         det = (1 - p_ink) * (1 - p_paper) - p_ink * p_paper
         ink, paper = ((1 - p_paper) * ink - p_ink * paper) / det, ((1 - p_ink) * paper - p_paper * ink) / det
         ink, paper = ink.astype(np.float32), paper.astype(np.float32)
     contrast = paper - ink
     step = (across[:, -1] - across[:, 0]) / (_P - 1)                                    # (M,)
     flat = prof.reshape(-1, _P)
-    ink_f, span_f = ink.ravel(), contrast.ravel()
-    rows = np.arange(len(flat))
+    rows_p = np.arange(0, flat.size, _P)[:, None]                                     # each row's first sample
     per = len(flat) // len(across)
-    start = np.repeat(across[:, 0], per)
-    steps = np.repeat(step, per)
+    start = np.repeat(across[:, 0], per)[:, None]
+    steps = np.repeat(step, per)[:, None]
 
-    def crossing(frac_level):
-        level = ink_f + np.float32(frac_level) * span_f
-        first = np.argmax(flat >= level[:, None], axis=-1)
-        idx = np.clip(first, 1, _P - 1)
-        l0, l1 = flat[rows, idx - 1], flat[rows, idx]
+    def crossings(fracs):
+        """The first crossing of each level (R, L) and whether there is one (all levels at once)."""
+        level = ink.reshape(-1, 1) + np.asarray(fracs, np.float32) * contrast.reshape(-1, 1)
+        first = np.argmax(flat[:, None, :] >= level[:, :, None], axis=-1)
+        idx = rows_p + np.clip(first, 1, _P - 1)
+        l0, l1 = prof.ravel()[idx - 1], prof.ravel()[idx]
         rise = l1 - l0
         frac = np.clip((level - l0) / np.where(rise > 0, rise, np.float32(1.0)), 0.0, 1.0)
-        return (start + (idx - 1 + frac) * steps).reshape(ink.shape), (first > 0).reshape(ink.shape)
+        return start + (idx - rows_p - 1 + frac) * steps, first > 0
 
-    at50, ok50 = crossing(0.5)
+    if widths:
+        at, ok = crossings((0.5, 0.25, 0.75))
+        width = np.maximum(at[:, 2] - at[:, 1], 0.0).reshape(ink.shape)
+    else:
+        at, ok = crossings((0.5,))
+    at50, ok50 = at[:, 0].reshape(ink.shape), ok[:, 0].reshape(ink.shape)
     lo = across[:, None, None, 0] + (k - 1) * step[:, None, None]
     hi = across[:, None, None, -1] - (k - 1) * step[:, None, None]
     valid = ok50 & (contrast > 12.0) & (at50 > lo) & (at50 < hi)
-    if not widths:
-        return at50, valid, None
-    return at50, valid, np.maximum(crossing(0.75)[0] - crossing(0.25)[0], 0.0)
+    return at50, valid, (width if widths else None)
 
 
 def median_where(values, mask, empty):
@@ -238,16 +250,17 @@ def _intersect(p1, d1, p2, d2):
     return p1 + t[..., None] * d1, safe
 
 
-def _pass(lin, corners, side_px, cell_px, blur_px, offsets_px, blur_in=None):
-    """One refinement pass from ``corners``: corners, per-corner standard error, per-marker RMS,
-    per-corner success (the blur is measured before, by :func:`_blur`)."""
+def _pass(lin, frames, side_px, cell_px, blur_px, offsets_px, blur_in=None):
+    """One refinement pass from the corners of ``frames``: corners, per-corner standard error, per-marker
+    RMS, per-corner success (the blur is measured before, by :func:`_blur`)."""
     reach = np.maximum(3.0, 2.5 * blur_px)
     inside = np.minimum(0.5 * cell_px, reach)                              # never past the border cell
     outside = np.minimum(np.maximum(cell_px, 1.5), reach)                  # at most a cell into the quiet zone
     end_gap = 2.0 * blur_px + 0.5
-    base_x, base_y, normal, across, prof = _profiles(lin, corners, inside, outside, end_gap, offsets_px)
+    base_x, base_y, across, prof = _profiles(lin, frames, inside, outside, end_gap, offsets_px)
     at50, valid, _ = _crossings(prof, across, blur_in, widths=False)
-    m = len(corners)
+    normal = frames[3]
+    m = len(normal)
     px = base_x + at50 * normal[:, :, None, 0]                             # (M, 4, 2S) edge points
     py = base_y + at50 * normal[:, :, None, 1]
     h_mean, h_dir, _, h_rms, h_n = _robust_lines(px.reshape(m, 4, 2, _S), py.reshape(m, 4, 2, _S),
@@ -283,14 +296,14 @@ def _pass(lin, corners, side_px, cell_px, blur_px, offsets_px, blur_in=None):
     return out, sig, used_rms, ok
 
 
-def _blur(lin, corners, cell_px, offsets_px):
+def _blur(lin, frames, cell_px, offsets_px):
     """Each marker's edge blur (Gaussian sigma, px) from a few profiles across its edges (3 per half
     edge, reaching 3 px or half a cell), read at the detector's corners: the 25-75 % width / 1.349."""
     inside = np.minimum(0.5 * cell_px, 3.0)
     outside = np.minimum(np.maximum(cell_px, 1.5), 3.0)
-    _, _, _, across, prof = _profiles(lin, corners, inside, outside, np.full(len(corners), 2.5), offsets_px, per_half=3)
+    m = len(cell_px)
+    _, _, across, prof = _profiles(lin, frames, inside, outside, np.full(m, 2.5), offsets_px, per_half=3)
     _, valid, width = _crossings(prof, across)
-    m = len(corners)
     return median_where(width.reshape(m, -1), valid.reshape(m, -1), 1.349) / 1.349
 
 
@@ -306,10 +319,11 @@ def refine_corners(lin: np.ndarray, corners: np.ndarray, cells_per_side: int, of
     if m == 0:
         empty = np.zeros(0)
         return RefinedCorners(rough.copy(), np.zeros(0, bool), empty, empty)
-    side_px = np.linalg.norm(rough - np.roll(rough, -1, axis=1), axis=-1).mean(axis=1)
+    frames = _edge_frames(rough)
+    side_px = frames[2].mean(axis=1)
     cell_px = side_px / cells_per_side
-    blur = _blur(lin, rough, cell_px, offsets_px)
-    out, sig, rms, ok = _pass(lin, rough, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
+    blur = _blur(lin, frames, cell_px, offsets_px)
+    out, sig, rms, ok = _pass(lin, frames, side_px, cell_px, np.clip(blur, 0.5, None), offsets_px, blur)
     limit = 0.3 + cell_px[:, None] / 3.0 + blur[:, None] + 3.0 * sig
     moved_ok = np.linalg.norm(out - rough, axis=-1) <= limit
     good = (ok & moved_ok).all(axis=1)
