@@ -216,10 +216,11 @@ def _fit_lines(px, py, valid):
     signed distance of every point from its line."""
     w = valid.astype(float)
     n = np.maximum(w.sum(axis=-1), 1.0)
-    mx, my = (px * w).sum(axis=-1) / n, (py * w).sum(axis=-1) / n
+    dot = functools.partial(np.einsum, "...i,...i->...")                  # sums of products, no temporaries
+    mx, my = dot(px, w) / n, dot(py, w) / n
     ux, uy = px - mx[..., None], py - my[..., None]
-    dx, dy = ux * w, uy * w
-    sxx, syy, sxy = (dx * dx).sum(axis=-1), (dy * dy).sum(axis=-1), (dx * dy).sum(axis=-1)
+    dx, dy = ux * w, uy * w                                                 # w is 0 or 1: dx * ux = dx * dx
+    sxx, syy, sxy = dot(dx, ux), dot(dy, uy), dot(dx, uy)
     theta = 0.5 * np.arctan2(2.0 * sxy, sxx - syy)
     cos, sin = np.cos(theta), np.sin(theta)
     resid = ux * -sin[..., None] + uy * cos[..., None]
