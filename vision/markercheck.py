@@ -111,8 +111,8 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     cells = values[:, : n * n * 9].reshape(m, n * n, 9).mean(axis=-1)
     ring = values[:, n * n * 9:]
     expected = np.array([_pattern(dictionary_name, int(i)) for i in ids], bool).reshape(m, n * n)
-    ring_cells = np.sort(cells[:, border], axis=1)                  # the median, as np.median has it, sorted
-    ink = 0.5 * (ring_cells[:, (len(ring_cells[0]) - 1) // 2] + ring_cells[:, len(ring_cells[0]) // 2])
+    border_cells = np.sort(cells[:, border], axis=1)                # the median as np.median has it, by a sort
+    ink = 0.5 * (border_cells[:, (border_cells.shape[1] - 1) // 2] + border_cells[:, border_cells.shape[1] // 2])
     white = median_where(cells, ~expected, -1.0)                 # a code with no white cell: -1, refused
     span = np.where(white - ink > 1e-6, white - ink, 1e-6)
     level = (cells - ink[:, None]) / span[:, None]
