@@ -71,24 +71,29 @@ def _grid(n: int):
     return np.concatenate([cells, ring]).astype(np.float32), border.ravel()
 
 
-def _square_to_quads(uv: np.ndarray, quads: np.ndarray) -> np.ndarray:
-    """Points ``uv`` (K, 2) of the unit square mapped onto each quadrilateral (M, 4, 2) (corners in the
-    order (0, 0), (1, 0), (1, 1), (0, 1)) by the projective map through the four corners, in closed form
-    for all M at once (Heckbert, 'Fundamentals of Texture Mapping and Image Warping', 1989, sec. 2.2.3;
-    tests/vision/test_calibration.py checks the formulas against our DLT). Returns (M, K, 2) float32."""
+def _square_to_quads_xy(uv: np.ndarray, quads: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_square_to_quads` as x and y (M, K) each, float32 (the map as a 3 x 3 matrix per quad,
+    applied to all points with one matrix product)."""
     x, y = quads[..., 0], quads[..., 1]                                           # (M, 4) each
     dx1, dx2, dy1, dy2 = x[:, 1] - x[:, 2], x[:, 3] - x[:, 2], y[:, 1] - y[:, 2], y[:, 3] - y[:, 2]
     sx, sy = x[:, 0] - x[:, 1] + x[:, 2] - x[:, 3], y[:, 0] - y[:, 1] + y[:, 2] - y[:, 3]
     den = dx1 * dy2 - dx2 * dy1
     den = np.where(np.abs(den) > 1e-12, den, 1e-12)
     g, h = (sx * dy2 - dx2 * sy) / den, (dx1 * sy - sx * dy1) / den
-    a, b = x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3]
-    d, e = y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3]
-    u, v = uv[None, :, 0], uv[None, :, 1]
-    w = g[:, None] * u + h[:, None] * v + 1.0
-    px = (a[:, None] * u + b[:, None] * v + x[:, 0:1]) / w
-    py = (d[:, None] * u + e[:, None] * v + y[:, 0:1]) / w
-    return np.stack([px, py], axis=-1).astype(np.float32)
+    H = np.empty((len(quads), 3, 3))
+    H[:, 0] = np.column_stack([x[:, 1] - x[:, 0] + g * x[:, 1], x[:, 3] - x[:, 0] + h * x[:, 3], x[:, 0]])
+    H[:, 1] = np.column_stack([y[:, 1] - y[:, 0] + g * y[:, 1], y[:, 3] - y[:, 0] + h * y[:, 3], y[:, 0]])
+    H[:, 2] = np.column_stack([g, h, np.ones(len(quads))])
+    q = (H.reshape(-1, 3) @ np.vstack([uv.T, np.ones(len(uv))])).reshape(len(quads), 3, len(uv))   # (M, 3, K)
+    return (q[:, 0] / q[:, 2]).astype(np.float32), (q[:, 1] / q[:, 2]).astype(np.float32)
+
+
+def _square_to_quads(uv: np.ndarray, quads: np.ndarray) -> np.ndarray:
+    """Points ``uv`` (K, 2) of the unit square mapped onto each quadrilateral (M, 4, 2) (corners in the
+    order (0, 0), (1, 0), (1, 1), (0, 1)) by the projective map through the four corners, in closed form
+    for all M at once (Heckbert, 'Fundamentals of Texture Mapping and Image Warping', 1989, sec. 2.2.3;
+    tests/vision/test_calibration.py checks the formulas against our DLT). Returns (M, K, 2) float32."""
+    return np.stack(_square_to_quads_xy(uv, quads), axis=-1)
 
 
 def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_name: str, offsets_px=None) -> MarkerEvidence:
@@ -98,14 +103,16 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     m = len(corners)
     n = aruco_dictionary(dictionary_name).markerSize + 2
     local, border = _grid(n)
-    pts = _square_to_quads(local / n, corners)                                     # (M, K, 2)
+    px, py = _square_to_quads_xy(local / n, corners)                               # (M, K) each
     if offsets_px is not None:
-        pts = pts + np.asarray(offsets_px, np.float32)[:, None, :]
-    values = sample_image(lin, pts[..., 0], pts[..., 1])                          # (M, K)
+        off = np.asarray(offsets_px, np.float32)
+        px, py = px + off[:, 0:1], py + off[:, 1:2]
+    values = sample_image(lin, px, py)                                            # (M, K)
     cells = values[:, : n * n * 9].reshape(m, n * n, 9).mean(axis=-1)
     ring = values[:, n * n * 9:]
     expected = np.array([_pattern(dictionary_name, int(i)) for i in ids], bool).reshape(m, n * n)
-    ink = np.median(cells[:, border], axis=1)
+    border_cells = np.sort(cells[:, border], axis=1)                # the median as np.median has it, by a sort
+    ink = 0.5 * (border_cells[:, (border_cells.shape[1] - 1) // 2] + border_cells[:, border_cells.shape[1] // 2])
     white = median_where(cells, ~expected, -1.0)                 # a code with no white cell: -1, refused
     span = np.where(white - ink > 1e-6, white - ink, 1e-6)
     level = (cells - ink[:, None]) / span[:, None]

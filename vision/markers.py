@@ -98,6 +98,20 @@ def _linearised_around(image, corners: np.ndarray) -> tuple[np.ndarray, np.ndarr
     return atlas, (at - lo).astype(np.float32)
 
 
+def _linearised_box(gray, corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`linearised_gray` of the one box holding every marker with the room
+    :func:`_linearised_around` gives each (a quarter of its size and 8 px), and each marker's offset
+    (M, 2) from photo to box pixels: markers on a sheet or a table seldom fill the photo, and the
+    table of linear values is written only where it is read."""
+    h, w = gray.shape[:2]
+    lo, hi = corners.min(axis=1), corners.max(axis=1)                       # (M, 2) each
+    pad = 0.25 * (hi - lo).max(axis=1, keepdims=True) + 8.0
+    x0, y0 = np.maximum(np.floor((lo - pad).min(axis=0)), 0).astype(int)
+    x1, y1 = np.minimum(np.ceil((hi + pad).max(axis=0)), [w, h]).astype(int)
+    x1, y1 = max(x1, x0 + 1), max(y1, y0 + 1)
+    return linearised_gray(gray[y0:y1, x0:x1]), np.tile(np.array([-x0, -y0], np.float64), (len(corners), 1))
+
+
 def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
     """The expected markers where they were (a camera that has not moved, or moved by a pixel or two):
     corners refined from the edges next to the expected ones, identities read from the cells. None if
@@ -173,6 +187,8 @@ def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict
     """Where an id was decoded more than once, keep the copy nearest its expected place (a calibrated
     camera), else the one with clearly the best evidence; copies that tie are all kept (calibration sets
     a duplicated id aside)."""
+    if len({d.id for d in found}) == len(found):
+        return sorted(found, key=lambda d: d.id)
     by_id: dict[int, list[int]] = {}
     for k, d in enumerate(found):
         by_id.setdefault(d.id, []).append(k)
@@ -192,8 +208,10 @@ def _one_per_id(found: list[MarkerDetection], score: list[tuple], expected: dict
 def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
     """Whether each candidate's side is within a quarter of the side the calibration predicts for its id
     (True where nothing is predicted)."""
-    side = np.linalg.norm(corners - np.roll(corners, -1, axis=1), axis=-1).mean(axis=1)
     ok = np.ones(len(corners), bool)
+    if not expected:
+        return ok
+    side = np.linalg.norm(corners - np.roll(corners, -1, axis=1), axis=-1).mean(axis=1)
     for k, marker_id in enumerate(ids):
         if expected and int(marker_id) in expected:
             c = np.asarray(expected[int(marker_id)], float).reshape(4, 2)
@@ -202,13 +220,14 @@ def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
     return ok
 
 
-def _checked(gray, lin, ids, corners, dictionary_name: str, expected: dict | None):
+def _checked(gray, ids, corners, dictionary_name: str, expected: dict | None):
     """Refine the candidates (ids (M,), corners (M, 4, 2)) and keep those with the evidence of a printed
     marker and the size a calibration predicts: the kept detections and their evidence scores."""
     if len(ids) == 0:
         return [], []
-    result = _fallback(gray, refine_corners(lin, corners, cells_per_side(dictionary_name)))
-    evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name)
+    lin, offsets = _linearised_box(gray, corners)
+    result = _fallback(gray, refine_corners(lin, corners, cells_per_side(dictionary_name), offsets))
+    evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name, offsets)
     keep = np.flatnonzero(evidence.accepted & _size_fits(result.corners_px, ids, expected))
     found = [MarkerDetection(int(ids[k]), result.corners_px[k], bool(result.refined[k])) for k in keep]
     score = list(zip(evidence.undecided_cells[keep].tolist(), (-evidence.ring_fraction[keep]).tolist()))
@@ -218,7 +237,7 @@ def _checked(gray, lin, ids, corners, dictionary_name: str, expected: dict | Non
 def _as_arrays(ids, corners) -> tuple[np.ndarray, np.ndarray]:
     if ids is None or len(ids) == 0:
         return np.zeros(0, int), np.zeros((0, 4, 2))
-    return np.ravel(ids).astype(int), np.asarray(corners, dtype=float).reshape(-1, 4, 2)
+    return np.ravel(ids).astype(int), np.concatenate(corners, axis=0).astype(float).reshape(-1, 4, 2)
 
 
 def detect_markers(image, dictionary_name: str, expected: dict | None = None,
@@ -252,7 +271,6 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
         if tracked is not None:
             return tracked
     gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
-    lin = linearised_gray(gray)
     detector = _detector(dictionary_name)
     windowed = _detect_in_windows(gray, detector, expected) if expected else None
     if windowed is not None:
@@ -264,12 +282,12 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
     if layout is not None:
         keep = np.isin(ids, layout)
         ids, rough = ids[keep], rough[keep]
-    found, score = _checked(gray, lin, ids, rough, dictionary_name, expected)
+    found, score = _checked(gray, ids, rough, dictionary_name, expected)
     missing = set() if search_ids is None else {int(i) for i in search_ids} - {d.id for d in found}
     if layout is not None:
         missing &= set(layout.tolist())
     if missing:
-        more, more_score = _checked(gray, lin, *_second_look(gray, dictionary_name, expected, missing),
+        more, more_score = _checked(gray, *_second_look(gray, dictionary_name, expected, missing),
                                     dictionary_name, expected)
         found, score = found + more, score + more_score
     return _one_per_id(found, score, expected)

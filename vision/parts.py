@@ -24,8 +24,7 @@ Per photo (see DESIGN.md sec. 6):
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
-from enum import StrEnum
+from dataclasses import dataclass, replace
 
 import cv2
 import numpy as np
@@ -33,83 +32,28 @@ import numpy as np
 from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
 from gripsight.vision.polygon import points_in_polygon
 from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.blobclass import choose_classes, shape_words, split_by_shape
+from gripsight.vision.blobsearch import MAX_RATIO, MIN_RATIO, BlobSearch, ColourOutline, outlines_in_window
 from gripsight.vision.outlineedge import edge_outlines_px
+from gripsight.vision.partresult import STATUSES, Detection, DetectedPart, PartStatus
 from gripsight.vision.topface import (
     TopFaceProblem,
-    beyond_silhouette_mm,
-    top_faces_overlap,
     expected_area_mm2,
     fit_row_of_tops,
     fit_top_faces,
     footprint_centre,
     min_rect,
     outlines_geometry,
-    score_top_faces,
     top_face_guess,
 )
-from gripsight.vision.shapes import ColourGroup, colour_groups
-from gripsight.vision.whitebalance import Illumination, fit_illumination
+from gripsight.vision.shapes import colour_groups
+from gripsight.vision.whitebalance import fit_illumination
 
 __all__ = ["DetectedPart", "Detection", "PartStatus", "detect_parts", "STATUSES"]
 
-
-class PartStatus(StrEnum):
-    """What the photo analysis made of a blob."""
-
-    OK = "ok"                              # a part of a known class
-    CUT_BY_EDGE = "cut_by_edge"            # cut by the photo's edge, a marker or the searched area
-    TOO_SMALL = "too_small"
-    TOO_LARGE = "too_large"
-    TOUCHING = "touching"                  # touching parts that could not be split
-    UNKNOWN_COLOUR = "unknown_colour"      # a part of no class's colour: goes to the reject bin
-    UNKNOWN_SHAPE = "unknown_shape"        # a class's colour but no class's shape and size: the reject bin
-
-    @property
-    def pickable(self) -> bool:
-        """Goes to a bin (its class's, or the reject bin); the others stay on the table."""
-        return self in (PartStatus.OK, PartStatus.UNKNOWN_COLOUR, PartStatus.UNKNOWN_SHAPE)
-
-
-STATUSES = tuple(s.value for s in PartStatus)
 _UNKNOWN_MAX_RATIO = 3.0      # an unknown blob larger than this many typical parts is not a part
-_MIN_RATIO, _MAX_RATIO = 0.45, 1.6
 _NOISE_RATIO = 0.15           # a blob under this fraction of a part's area is noise, not reported
 _MIN_UNKNOWN_MM2 = 60.0
-
-
-@dataclass(frozen=True)
-class DetectedPart:
-    """A part found in a photo, in table coordinates (footprint centre corrected for parallax)."""
-
-    id: str
-    class_name: str
-    status: PartStatus
-    reason: str
-    pixel_uv: tuple[float, float]
-    xy_mm: tuple[float, float]
-    height_mm: float
-    area_mm2: float
-    yaw_deg: float
-    length_mm: float
-    width_mm: float
-    seen_as: str
-    delta_e: float
-    outline_px: np.ndarray = field(repr=False, compare=False, default=None)
-
-    def as_dict(self) -> dict:
-        return {"id": self.id, "class": self.class_name, "status": self.status.value, "reason": self.reason,
-                "pixel": [round(self.pixel_uv[0], 2), round(self.pixel_uv[1], 2)],
-                "table_mm": [round(self.xy_mm[0], 3), round(self.xy_mm[1], 3)], "height_mm": self.height_mm,
-                "area_mm2": round(self.area_mm2, 1), "yaw_deg": round(self.yaw_deg, 2),
-                "length_mm": round(self.length_mm, 2), "width_mm": round(self.width_mm, 2),
-                "seen_as": self.seen_as, "delta_e": round(self.delta_e, 2)}
-
-
-@dataclass
-class Detection:
-    parts: list[DetectedPart]
-    illumination: Illumination | None
-    notes: list[str]
 
 
 # ------------------------------------------------------------------ masks
@@ -275,9 +219,9 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     groups = colour_groups(cell.parts)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
-    search = _Search(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
+    search = BlobSearch(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
-                for o in _outlines_in_window(search, group, window)]
+                for o in outlines_in_window(search, group, window)]
     blobs = _blobs(search, outlines)
     nadir = search.nadir
     fits = iter(fit_top_faces([b.problem for b in blobs if b.problem is not None]))
@@ -359,83 +303,7 @@ class _Blob:
     #                                             (name, class, k, top-face fit or None)
 
 
-class _Search:
-    """What every window of one photo shares: the classified pixels, the searched area's edge band, the
-    mapping, the cell's classes and the camera centre."""
-
-    def __init__(self, image_bgr, classified, edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm):
-        self.image_bgr = image_bgr
-        self.classified, self.edge_band, self.mapping, self.cell = classified, edge_band, mapping, cell
-        self.parallax, self.seen_as = parallax, seen_as
-        self.groups: dict[str, ColourGroup] = groups
-        self.names = list(groups)
-        self.nadir = np.asarray(camera_centre_mm[:2], float)
-        self.cz = float(camera_centre_mm[2])
-        self.kernel = cv2.getStructuringElement(cv2.MORPH_ELLIPSE, (3, 3))
-        self.tallest = max(c.height_mm for c in cell.parts.values())
-        self.typical = float(np.median([expected_area_mm2(c) for c in cell.parts.values()]))
-
-    def k_of(self, height_mm: float) -> float:
-        """The top face's scale about the nadir for a part of this height (1 without parallax)."""
-        return self.cz / (self.cz - height_mm) if self.parallax else 1.0
-
-
-@dataclass
-class _Outline:
-    """One contour of one class's colour (or an unknown colour), before it is measured: its class, its
-    outline (photo px), its pixels ``sub`` and where they sit in the searched rectangle (x, y)."""
-
-    name: str
-    cls: object
-    height_mm: float
-    k: float
-    outline_px: np.ndarray
-    sub: np.ndarray
-    x: int
-    y: int
-    group: ColourGroup | None = None          # its colour group, when that holds several classes
-    members: tuple[str, ...] = ()             # once a class is chosen: the classes of its colour
-    split_into: int = 0                       # parts side by side its outline's length says it holds
-
-
-def _outlines_in_window(search: _Search, group: int, window) -> list[_Outline]:
-    """The outlines of every class in one group's window of classified pixels (a blob of another group
-    that reaches into the window is left to its own)."""
-    wx, wy, ww, wh = window
-    classified, names, cz = search.classified, search.names, search.cz
-    rh, rw = classified.label.shape
-    x0, y0 = max(wx - 2, 0), max(wy - 2, 0)               # a margin for the morphology
-    x1, y1 = min(wx + ww + 2, rw), min(wy + wh + 2, rh)
-    labels = classified.label[y0:y1, x0:x1]
-    u0, v0 = classified.origin
-    out = []
-    for k_label in np.flatnonzero(np.bincount(labels.ravel(), minlength=len(names) + 2)[1:]) + 1:
-        mask = cv2.morphologyEx((labels == k_label).astype(np.uint8), cv2.MORPH_OPEN, search.kernel)
-        mask = cv2.morphologyEx(mask, cv2.MORPH_CLOSE, search.kernel)
-        contours, _ = cv2.findContours(mask, cv2.RETR_EXTERNAL, cv2.CHAIN_APPROX_NONE)
-        unknown = k_label == len(names) + 1
-        colour = None if unknown else search.groups[names[k_label - 1]]
-        several = colour is not None and len(colour.members) > 1
-        name = "unknown" if unknown else (colour.name if several else colour.members[0])
-        cls = None if unknown or several else search.cell.parts[name]
-        height = cls.height_mm if cls is not None else (
-            max(search.cell.parts[n].height_mm for n in colour.members) if several else search.tallest)
-        k = search.k_of(height)
-        for contour in contours:
-            if len(contour) < 10:                             # a speck of a few pixels
-                continue
-            outline = contour.reshape(-1, 2)
-            if classified.group_at(int(outline[0, 0]) + x0, int(outline[0, 1]) + y0) != group:
-                continue
-            x, y, w, h = cv2.boundingRect(contour)
-            sub = np.zeros((h, w), np.uint8)
-            cv2.drawContours(sub, [contour], -1, 1, thickness=cv2.FILLED, offset=(-x, -y))
-            out.append(_Outline(name, cls, float(height), k, (outline + (x0 + u0, y0 + v0)).astype(float), sub,
-                                x + x0, y + y0, colour if several else None))
-    return out
-
-
-def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
+def _blobs(search: BlobSearch, outlines: list[ColourOutline]) -> list[_Blob]:
     """Measure every outline in table mm (one mapping, areas, centroids and normals for all), then give
     each blob its verdict, its pieces and, where wanted, its top-face fit problem."""
     if not outlines:
@@ -446,7 +314,7 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
     on_edges, shaded = edge_outlines_px(search.image_bgr, [o.outline_px for o in outlines])
     outlines_mm = np.split(mapping(np.concatenate(on_edges)), lengths)
     areas, centroids, normals = outlines_geometry(outlines_mm)
-    outlines = _choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
+    outlines = choose_classes(search, outlines, outlines_mm, areas, centroids, normals)
     blobs = []
     for o, outline_mm, area_mapped, m, normal, in_shade in zip(outlines, outlines_mm, areas, centroids, normals, shaded):
         name, cls, k, sub, x, y = o.name, o.cls, o.k, o.sub, o.x, o.y
@@ -476,7 +344,7 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
                 status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
             elif shape_misfit:
                 status, reason = PartStatus.UNKNOWN_SHAPE, (f"colour of {', '.join(o.group.members)} but the shape or "
-                                                            f"size of none ({_shape_words(o, outline_mm, k)})")
+                                                            f"size of none ({shape_words(o, outline_mm, k)})")
             else:
                 status, reason = PartStatus.UNKNOWN_COLOUR, "colour matches no class"
         elif cut:
@@ -484,11 +352,11 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
         else:
             expected = expected_area_mm2(cls)
             ratio = area / expected
-            if ratio < _MIN_RATIO:
+            if ratio < MIN_RATIO:
                 status, reason = PartStatus.TOO_SMALL, f"{area:.0f} mm² is {ratio:.2f}x a {name} part's {expected:.0f} mm²"
-            elif ratio > _MAX_RATIO or o.split_into >= 2:
+            elif ratio > MAX_RATIO or o.split_into >= 2:
                 members = o.members or (name,)
-                pieces, status, reason, piece_fits = _split_by_shape(
+                pieces, status, reason, piece_fits = split_by_shape(
                     search, o, sub, x + u0, y + v0, outline_mm, normal, area_mapped, members, whole)
                 if status is PartStatus.UNKNOWN_SHAPE:      # no split into parts of its colour's classes holds
                     height = max(search.cell.parts[n].height_mm for n in members)
@@ -500,7 +368,7 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
                         status, reason = PartStatus.TOO_LARGE, f"a coloured region of {area:.0f} mm², not a part"
                     else:
                         reason = (f"colour of {', '.join(members)} but the shape or size of none, nor of touching "
-                                  f"parts of {'them' if len(members) > 1 else 'it'} ({_shape_words(o, outline_mm, k)})")
+                                  f"parts of {'them' if len(members) > 1 else 'it'} ({shape_words(o, outline_mm, k)})")
         blob = _Blob(name, cls, o.height_mm, k, mode, status, reason, pieces, outline_mm, normal, m, de,
                      min_rect(outline_mm, k))
         if len(pieces) > 1 and o.members:
@@ -511,175 +379,6 @@ def _blobs(search: _Search, outlines: list[_Outline]) -> list[_Blob]:
             blob.problem = TopFaceProblem.of_class(outline_mm[edge], normal[edge], guess, nadir, k, cls, blob.rect[2])
         blobs.append(blob)
     return blobs
-
-
-def _choose_classes(search: _Search, outlines, outlines_mm, areas, centroids, normals) -> list[_Outline]:
-    """Give each blob of a colour group of several classes the class whose shape and size fit it
-    (:mod:`vision.shapes`), all blobs' candidate fits at once. A blob of a part's size that no class
-    fits stays ``unknown`` (with its group: ``unknown_shape``); one too large or too small for every
-    class takes the class whose area it is nearest a whole number of (touching parts, or a speck)."""
-    problems, owners, fallback = [], [], {}
-    for i, o in enumerate(outlines):
-        if o.group is None:
-            continue
-        ratios = []
-        for name in o.group.members:
-            cls = search.cell.parts[name]
-            k = search.k_of(cls.height_mm)
-            expected = expected_area_mm2(cls)
-            ratio = float(areas[i]) / (k * k) / expected
-            ratios.append(ratio)
-            if _MIN_RATIO < ratio < _MAX_RATIO:
-                guess = top_face_guess(centroids[i], areas[i], search.nadir, k, expected)
-                problems.append(TopFaceProblem.of_class(outlines_mm[i], normals[i], guess, search.nadir, k, cls,
-                                                        min_rect(outlines_mm[i], k)[2]))
-                owners.append((i, name))
-        if not any(_MIN_RATIO < r < _MAX_RATIO for r in ratios):
-            off = [abs(r - max(round(r), 1)) / max(round(r), 1) for r in ratios]
-            fallback[i] = o.group.members[int(np.argmin(off))]
-    best: dict[int, tuple[str, float]] = {}
-    for (i, name), score in zip(owners, score_top_faces(problems)):
-        if score.fit is not None and (i not in best or score.median_mm < best[i][1]):
-            best[i] = (name, score.median_mm)
-    out = []
-    for i, o in enumerate(outlines):
-        name = best[i][0] if i in best else fallback.get(i)
-        split_into = 0
-        if o.group is not None and name is None:
-            # no top face fits (shading, a shadow): its size alone, if that says one class and no other
-            name = _by_size(search, o.group.members, outlines_mm[i])
-        if o.group is not None and name is None:
-            # no class fits it as one part: is it parts side by side (an outline a whole number of parts long)?
-            name, split_into = _row_of_parts(search, o.group.members, outlines_mm[i])
-        if o.group is None or name is None:
-            out.append(o)
-            continue
-        cls = search.cell.parts[name]
-        out.append(replace(o, name=name, cls=cls, height_mm=float(cls.height_mm), k=search.k_of(cls.height_mm),
-                           group=None, members=o.group.members, split_into=split_into))
-    return out
-
-
-_SIZE_FIT = 0.15          # a footprint side within 15 % of a class's: that size
-
-
-def _by_size(search: _Search, members, outline_mm) -> str | None:
-    """The one class of the colour whose footprint sides the outline's (length and width, as a top face)
-    are within 15 % of, when every other class's are farther than that; None otherwise."""
-    fits = []
-    for name in members:
-        cls = search.cell.parts[name]
-        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
-        fp = sorted(list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1), reverse=True)
-        fits.append(abs(length / fp[0] - 1.0) <= _SIZE_FIT and abs(width / fp[1] - 1.0) <= _SIZE_FIT)
-    return members[fits.index(True)] if sum(fits) == 1 else None
-
-
-def _row_of_parts(search: _Search, members, outline_mm) -> tuple[str | None, int]:
-    """(class, n) when a blob's outline is about n >= 2 parts of a class long and one wide (touching parts
-    whose colour was partly lost to shading, so their area alone does not say so), else (None, 0)."""
-    best = (None, 0, np.inf)
-    for name in members:
-        cls = search.cell.parts[name]
-        length, width, _ = min_rect(outline_mm, search.k_of(cls.height_mm))
-        fp = list(cls.footprint_mm) * (2 if len(cls.footprint_mm) == 1 else 1)
-        n = int(round(length / max(fp)))
-        off = abs(length / max(fp) - n) + abs(width / min(fp) - 1.0)
-        if n >= 2 and abs(length / max(fp) - n) < 0.3 and abs(width / min(fp) - 1.0) < 0.3 and off < best[2]:
-            best = (name, n, off)
-    return best[0], best[1]
-
-
-def _split_by_shape(search: _Search, o: _Outline, sub, ox, oy, outline_mm, normals, area_mapped, members, whole):
-    """Split a blob larger than one part of its colour into n touching parts, only where its outline says it
-    is n parts: (pieces, status, reason, per-piece fits). Each count n that a class of its colour gives by
-    area (and the count its outline's length gave) is tried, by k-means (:func:`_split`); a split holds when
-    the outline is a row of n parts of one class (:func:`_row_of_parts`) or when every piece's own stretch
-    of the outline fits a class's top face with the fit's gates (:func:`_piece_fits`: circle or box, size
-    within 15 %, median residual <= 0.4 mm). A blob whose pieces have parts' sizes but whose outline no
-    split explains is ``UNKNOWN_SHAPE`` (a 44 mm disc is not two 22 mm cubes); one that no count splits into
-    pieces of a part's size keeps the split's own verdict (``too_large``, ``touching``), as before."""
-    classes = [search.cell.parts[n] for n in members]
-    counts = [o.split_into] if o.split_into >= 2 else []
-    ratios = [float(area_mapped) / search.k_of(c.height_mm) ** 2 / expected_area_mm2(c) for c in classes]
-    counts += [int(round(r)) for r in sorted(ratios, key=lambda r: abs(r - round(r)) / max(round(r), 1))]
-    counts = list(dict.fromkeys(n for n in counts if n >= 2)) or [int(round(max(ratios)))]
-    areas = [expected_area_mm2(c) for c in classes]
-    row_name, row_n = _row_of_parts(search, members, outline_mm)
-    first = row = None
-    sized = False
-    for n in counts:
-        # a class of its own colour alone: its area ratio, as before (a blob far from a whole number of parts
-        # is too large)
-        ratio = n if len(members) > 1 or o.split_into >= 2 else ratios[0]
-        pieces, status, reason = _split(sub, ox, oy, search.mapping, o.k, (min(areas), max(areas)), ratio, o.name,
-                                        whole)
-        if status is not PartStatus.OK:
-            first = first or (pieces, status, reason)
-            continue
-        sized = True
-        fits, explained = _piece_fits(search, outline_mm, normals, o.k, pieces, members)
-        if explained:
-            return pieces, status, reason, fits
-        if row_n == len(pieces) and row is None:      # a row of one class's parts, unless pieces explain it
-            row = (pieces, status, reason, fits)     # (disc, cube, disc in a row is as long as 4 cubes)
-    if row is not None:
-        return row
-    if sized:
-        return whole, PartStatus.UNKNOWN_SHAPE, "", []
-    return (*first, [])
-
-
-def _piece_fits(search: _Search, outline_mm, normals, k_blob, pieces, members) -> tuple[list, bool]:
-    """Per piece of a blob split from touching parts of one colour, the class among ``members`` whose top
-    face fits the piece best, as (name, class, k, top-face fit), or None when none holds: the blob's
-    outline points nearest each piece's centre are that piece's own edge (the cut between pieces has
-    none), and each class's top face is fitted to them as for a lone part (:func:`_choose_classes`).
-    Also whether the pieces explain the whole outline: every piece has a fit, 80 % of the outline lies
-    within 1 mm of the union of their silhouettes (:func:`vision.topface.beyond_silhouette_mm`; the fit's
-    own gates see the outer half of each piece's stretch only, which a corner of a larger shape passes),
-    and no fitted top face lies more than 40 % inside another (:func:`vision.topface.top_faces_overlap`:
-    a row of a disc, a cube and a disc cut into four cube-sized pieces covers the outline too)."""
-    centres = np.array([p[0] for p in pieces])
-    owner = np.linalg.norm(outline_mm[:, None, :] - centres[None], axis=2).argmin(axis=1)
-    problems, owners = [], []
-    for j, piece in enumerate(pieces):
-        sel = owner == j
-        if sel.sum() < 12:
-            continue
-        for name in members:
-            cls = search.cell.parts[name]
-            k = search.k_of(cls.height_mm)
-            guess = top_face_guess(piece[0], piece[3] * k_blob * k_blob, search.nadir, k, expected_area_mm2(cls))
-            problems.append(TopFaceProblem.of_class(outline_mm[sel], normals[sel], guess, search.nadir, k, cls,
-                                                    min_rect(piece[1], k)[2]))
-            owners.append((j, name, k))
-    scores = score_top_faces(problems)
-    # a piece whose own stretch has no outer half (a corner piece of an L whose outside faces the nadir: its
-    # far side is the cut) is fitted to all of its stretch (a problem centred on its nadir keeps every point)
-    again = [i for i, sc in enumerate(scores) if sc.scale_ratio != sc.scale_ratio]
-    for i, sc in zip(again, score_top_faces([replace(problems[i], nadir=problems[i].centre) for i in again])):
-        scores[i] = sc
-    best: dict[int, tuple] = {}
-    for (j, name, k), score in zip(owners, scores):
-        if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
-            best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
-    fits = [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else None for j in range(len(pieces))]
-    if any(f is None for f in fits):
-        return fits, False
-    beyond = np.min([beyond_silhouette_mm(outline_mm, fit, search.nadir, k, cls) for _, cls, k, fit in fits], axis=0)
-    overlap = top_faces_overlap([(fit, cls) for _, cls, _, fit in fits])
-    return fits, bool(np.percentile(beyond, 80) <= _BEYOND_MM and overlap <= _OVERLAP)
-
-
-_BEYOND_MM = 1.0        # an outline explained by its pieces: 80 % of it within this of their silhouettes,
-_OVERLAP = 0.4          # and no piece's top face more than this fraction inside another's (one part twice)
-
-
-def _shape_words(o: _Outline, outline_mm, k: float) -> str:
-    """The measured footprint of a blob that fits no class, in words for its reason."""
-    length, width, _ = min_rect(outline_mm, k)
-    return f"its outline measures {length:.0f} x {width:.0f} mm"
 
 
 def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPart]:
@@ -719,38 +418,3 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
     return parts
 
 
-_KMEANS_POINTS = 400
-
-
-def _split(sub, ox, oy, mapping, k, expected_mm2, ratio, name, whole):
-    """Split a blob of about n parts' area by k-means on its pixels; each piece must have a part's size
-    (``expected_mm2``: the area of a part, or the smallest and largest of the classes it may be).
-    ``whole`` is the blob as one piece, returned when it cannot be split."""
-    low, high = (expected_mm2, expected_mm2) if np.isscalar(expected_mm2) else expected_mm2
-    n = int(round(ratio))
-    if n < 2 or abs(ratio - n) > 0.4 * n or n > 6:
-        return whole, PartStatus.TOO_LARGE, \
-            f"{ratio:.1f}x a {name} part's area and not a whole number of parts"
-    py, px = np.nonzero(sub)
-    uv = np.column_stack([px + ox, py + oy]).astype(float)
-    xy = mapping(uv).astype(np.float32)
-    crit = (cv2.TERM_CRITERIA_EPS | cv2.TERM_CRITERIA_MAX_ITER, 50, 0.01)
-    cv2.setRNGSeed(0)
-    # the centres from an even subsample (a few hundred pixels place them as well as thousands), then
-    # every pixel to its nearest centre
-    stride = max(1, len(xy) // _KMEANS_POINTS)
-    _, _, centres = cv2.kmeans(np.ascontiguousarray(xy[::stride]), n, None, crit, 2, cv2.KMEANS_PP_CENTERS)
-    labels = ((xy[:, None, :] - centres[None]) ** 2).sum(axis=2).argmin(axis=1)
-    per_px = (mapping.mm_per_px(uv[:1]) ** 2)[0]
-    pieces = []
-    for j in range(n):
-        sel = labels == j
-        area = sel.sum() * per_px / (k * k)
-        if not (_MIN_RATIO < area / low and area / high < 1.4):
-            return whole, PartStatus.TOUCHING, \
-                f"{n} touching {name} parts that could not be split into parts of the right size"
-        pts_mm = xy[sel].astype(float)
-        hull = cv2.convexHull(pts_mm.astype(np.float32)).reshape(-1, 2).astype(float)
-        pieces.append((pts_mm.mean(axis=0), hull, mapping.inverse(hull), float(area),
-                       (float(uv[sel, 0].mean()), float(uv[sel, 1].mean()))))
-    return pieces, PartStatus.OK, f"split from {n} touching parts"
