@@ -51,11 +51,11 @@ def colour_groups(classes: dict) -> dict[str, ColourGroup]:
             i = parent[i]
         return i
 
-    for i in range(len(names)):
-        for j in range(i + 1, len(names)):
-            a, b = classes[names[i]], classes[names[j]]
-            if float(delta_e_2000(np.asarray(a.lab, float), np.asarray(b.lab, float))) < 0.5 * min(a.tolerance, b.tolerance):
-                parent[root(j)] = root(i)
+    labs = np.array([classes[n].lab for n in names], float).reshape(-1, 3)
+    tolerances = np.array([classes[n].tolerance for n in names], float)
+    close = delta_e_2000(labs[:, None, :], labs[None, :, :]) < 0.5 * np.minimum(tolerances[:, None], tolerances[None, :])
+    for i, j in zip(*np.nonzero(np.triu(close, k=1))):      # every pair at once, then single linkage
+        parent[root(int(j))] = root(int(i))
     members: dict[int, list[str]] = {}
     for i, name in enumerate(names):
         members.setdefault(root(i), []).append(name)
