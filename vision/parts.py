@@ -97,11 +97,12 @@ def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
     cached = _REGION_CACHE.get(key)
     if cached is None:
         grown = _grown_work_area(shape, mapping, cell)
-        cached = (grown, _region_of(grown, mapping, cell), cv2.countNonZero(grown))
+        block_px = block_size_px(_smallest_part_px(mapping, cell))
+        cached = (grown, _region_of(grown, block_px), cv2.countNonZero(grown), block_px)
         if len(_REGION_CACHE) >= 8:
             _REGION_CACHE.clear()
         _REGION_CACHE[key] = cached
-    grown, region, count = cached
+    grown, region, count, block_px = cached
     holes = _marker_holes(cell, detections)
     if not holes:
         return region
@@ -110,16 +111,17 @@ def _search_region(shape, mapping, cell, detections) -> _SearchRegion:
         cv2.fillPoly(mask, [hole], 0, shift=3)
     if cv2.countNonZero(mask) == count:
         return region
-    return _region_of(mask, mapping, cell)
+    u0, v0, w, h = region.rect                  # what is left lies in the grown area's box
+    return _region_of(mask[v0:v0 + h, u0:u0 + w], block_px, (u0, v0))
 
 
-def _region_of(mask, mapping, cell) -> _SearchRegion:
+def _region_of(mask, block_px: int, origin=(0, 0)) -> _SearchRegion:
+    """The searched region of a mask (uint8, 255 searched) whose top-left pixel is at ``origin`` (photo px)."""
     u0, v0, w, h = cv2.boundingRect(mask)
     valid = mask[v0:v0 + h, u0:u0 + w] > 0
-    block_px = block_size_px(_smallest_part_px(mapping, cell))
     valid_small = coarse_mask(valid, block_px)
     edge_band = valid & ~(cv2.erode(valid.astype(np.uint8), np.ones((3, 3), np.uint8)) > 0) if valid.size else valid
-    return _SearchRegion((u0, v0, w, h), valid, valid_small, edge_band, block_px)
+    return _SearchRegion((u0 + origin[0], v0 + origin[1], w, h), valid, valid_small, edge_band, block_px)
 
 
 def _region_key(shape, mapping, cell) -> tuple:
