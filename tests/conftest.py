@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import shutil
 from pathlib import Path
 
 import pytest
@@ -46,3 +47,19 @@ def sample_cell():
     from gripsight.app.cellfile import load_cell
 
     return load_cell(SAMPLE_CELL)
+
+
+def calibrated_photos(tmp: Path, photos) -> tuple[Path, Path]:
+    """In ``tmp``: the sample cell (cell.yaml), a folder ``photos`` holding copies of ``photos`` and the
+    sample calibration made with that cell (calibration.yaml). Returns (the folder, the calibration)."""
+    from gripsight.app.cli import main
+
+    shutil.copy(SAMPLE_CELL, tmp / "cell.yaml")
+    folder = tmp / "photos"
+    folder.mkdir()
+    for photo in photos:
+        shutil.copy(photo, folder / Path(photo).name)
+    cal = tmp / "calibration.yaml"
+    assert main(["calibrate", str(ROOT / "sample_images" / "calibration.jpg"), "--cell", str(tmp / "cell.yaml"),
+                 "--out", str(cal)]) == 0
+    return folder, cal

@@ -21,6 +21,7 @@ principal point the photo cannot show stays at its prior.
 
 from __future__ import annotations
 
+import cv2
 import numpy as np
 
 __all__ = ["principal_point", "pose_for_focal", "fit_pinhole"]
@@ -62,29 +63,9 @@ def _focal_guess(mapping, pp, height_mm: float) -> float:
     return float(height_mm / mapping.mm_per_px(np.asarray(pp, float)[None])[0])
 
 
-def _rodrigues(rvec: np.ndarray) -> np.ndarray:
-    """Rotation matrix of an axis-angle vector (Rodrigues' formula)."""
-    theta = float(np.linalg.norm(rvec))
-    if theta < 1e-12:
-        return np.eye(3)
-    k = rvec / theta
-    Kx = np.array([[0.0, -k[2], k[1]], [k[2], 0.0, -k[0]], [-k[1], k[0], 0.0]])
-    return np.eye(3) + np.sin(theta) * Kx + (1.0 - np.cos(theta)) * (Kx @ Kx)
-
-
-def _axis_angle(R: np.ndarray) -> np.ndarray:
-    """Axis-angle vector of a rotation matrix (inverse of :func:`_rodrigues`, angles below pi)."""
-    c = np.clip((np.trace(R) - 1.0) / 2.0, -1.0, 1.0)
-    theta = float(np.arccos(c))
-    if theta < 1e-12:
-        return np.zeros(3)
-    w = np.array([R[2, 1] - R[1, 2], R[0, 2] - R[2, 0], R[1, 0] - R[0, 1]]) / (2.0 * np.sin(theta))
-    return w * theta
-
-
 def _project(p, xyz_mm):
     """Ideal pixels (N, 2) of table points (N, 3) for pinhole parameters (f, cx, cy, rvec, centre)."""
-    R = _rodrigues(p[3:6])
+    R = cv2.Rodrigues(np.asarray(p[3:6], float))[0]
     cam = (xyz_mm - p[6:9]) @ R.T
     return p[0] * cam[:, :2] / cam[:, 2:3] + p[1:3]
 
@@ -114,7 +95,7 @@ def fit_pinhole(mapping, image_size, floor_px, floor_mm, raised_px=None, raised_
         P_raised = np.asarray(raised_mm, float)
     f0 = max(_focal_guess(mapping, pp0, height_mm), 2.0)
     R0, c0 = pose_for_focal(mapping, pp0, f0)
-    start = np.concatenate([[f0], pp0, _axis_angle(R0), c0])
+    start = np.concatenate([[f0], pp0, cv2.Rodrigues(R0)[0].ravel(), c0])
 
     def residual(p):
         out = [((_project(p, P_floor) - uv_floor) / noise_px).ravel(), (p[1:3] - pp0) / pp_sd_px]

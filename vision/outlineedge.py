@@ -33,7 +33,7 @@ from gripsight.vision.colour import linear_from_srgb
 from gripsight.vision.topface import outlines_geometry
 
 
-def linear_of_codes(codes: np.ndarray) -> np.ndarray:
+def _linear_of_codes(codes: np.ndarray) -> np.ndarray:
     """Linear light of (fractional) 8-bit sRGB codes."""
     return linear_from_srgb(np.asarray(codes, float) / 255.0)
 
@@ -87,7 +87,7 @@ def _shading_step(near: np.ndarray, far: np.ndarray) -> np.ndarray:
     """(N,) bool: the far side (N, 3 codes) is the near side's colour in less light: darker, and its
     chromaticity (linear light, normalised to sum 1) closer to the near side's than a quarter of the
     near side's own distance from grey. A shadow cast on a part's top face, not the part's edge."""
-    lin_near, lin_far = linear_of_codes(near), linear_of_codes(far)
+    lin_near, lin_far = _linear_of_codes(near), _linear_of_codes(far)
     sum_near, sum_far = lin_near.sum(axis=1), lin_far.sum(axis=1)
     chroma_near = lin_near / np.maximum(sum_near, 1e-6)[:, None]
     chroma_far = lin_far / np.maximum(sum_far, 1e-6)[:, None]

@@ -120,14 +120,20 @@ class _Camera(threading.Thread):
             time.sleep(self.gap_s)
 
 
-@pytest.mark.slow
-def test_a_live_run_writes_the_sequence_a_run_over_saved_photos_writes(tmp_path, monkeypatch):
-    cell, stored = _live_cell(tmp_path)
-    photos = sorted((SAMPLES / "demo").glob("*.jpg"))[:5]
+def _saved_demo_photos(tmp_path, n: int):
+    """The first n demo photos and a folder ``saved`` holding copies of them."""
+    photos = sorted((SAMPLES / "demo").glob("*.jpg"))[:n]
     saved = tmp_path / "saved"
     saved.mkdir()
     for p in photos:
         shutil.copy(p, saved / p.name)
+    return photos, saved
+
+
+@pytest.mark.slow
+def test_a_live_run_writes_the_sequence_a_run_over_saved_photos_writes(tmp_path, monkeypatch):
+    cell, stored = _live_cell(tmp_path)
+    photos, saved = _saved_demo_photos(tmp_path, 5)
     ref = run_folder(saved, cell, stored, tmp_path / "ref")
 
     import gripsight.app.photo_outputs as outputs
@@ -174,11 +180,7 @@ class _InterruptAfter:
 @pytest.mark.slow
 def test_ctrl_c_in_a_live_run_leaves_a_state_resume_continues(tmp_path):
     cell, stored = _live_cell(tmp_path)
-    photos = sorted((SAMPLES / "demo").glob("*.jpg"))[:4]
-    saved = tmp_path / "saved"
-    saved.mkdir()
-    for p in photos:
-        shutil.copy(p, saved / p.name)
+    photos, saved = _saved_demo_photos(tmp_path, 4)
     run_folder(saved, cell, stored, tmp_path / "ref")
     cam = tmp_path / "cam"
     cam.mkdir()

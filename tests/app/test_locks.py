@@ -5,17 +5,15 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
 import signal
 import subprocess
 import sys
 
 import pytest
 
-from gripsight.app.cli import main
 from gripsight.app.errors import GripsightError
 from gripsight.app.lock import LOCK_NAME, output_lock
-from tests.conftest import ROOT, SAMPLE_CELL
+from tests.conftest import ROOT, calibrated_photos
 
 SAMPLES = ROOT / "sample_images"
 PAIRS = 50
@@ -47,15 +45,8 @@ print(json.dumps(results))
 
 @pytest.fixture(scope="module")
 def one_photo(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("lock")
-    shutil.copy(SAMPLE_CELL, tmp / "cell.yaml")
-    folder = tmp / "photos"
-    folder.mkdir()
-    for name in ("demo_01.jpg", "demo_02.jpg", "demo_03.jpg", "demo_04.jpg"):   # work far longer than the skew
-        shutil.copy(SAMPLES / "demo" / name, folder / name)
-    cal = tmp / "calibration.yaml"
-    assert main(["calibrate", str(SAMPLES / "calibration.jpg"), "--cell", str(tmp / "cell.yaml"), "--out", str(cal)]) == 0
-    return folder, cal
+    names = ("demo_01.jpg", "demo_02.jpg", "demo_03.jpg", "demo_04.jpg")      # work far longer than the skew
+    return calibrated_photos(tmp_path_factory.mktemp("lock"), [SAMPLES / "demo" / n for n in names])
 
 
 @pytest.mark.slow

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
 import signal
 import subprocess
 import sys
@@ -17,7 +16,7 @@ import time
 import pytest
 
 from gripsight.app.cli import main
-from tests.conftest import ROOT, SAMPLE_CELL
+from tests.conftest import ROOT, calibrated_photos
 
 SAMPLES = ROOT / "sample_images"
 CLI = [sys.executable, "-c", "from gripsight.app.cli import entry; entry()"]
@@ -28,16 +27,9 @@ HANG_GUARD_S = 20.0
 
 @pytest.fixture(scope="module")
 def photos(tmp_path_factory):
-    tmp = tmp_path_factory.mktemp("stop")
-    shutil.copy(SAMPLE_CELL, tmp / "cell.yaml")
-    folder = tmp / "photos"
-    folder.mkdir()
     # every batch photo: a batch of ten finished in about half a second once the pipeline got fast, and a
     # Ctrl-C sent after its second row could arrive after its last
-    for photo in sorted((SAMPLES / "batch").glob("*.jpg")):
-        shutil.copy(photo, folder / photo.name)
-    cal = tmp / "calibration.yaml"
-    assert main(["calibrate", str(SAMPLES / "calibration.jpg"), "--cell", str(tmp / "cell.yaml"), "--out", str(cal)]) == 0
+    folder, _ = calibrated_photos(tmp_path_factory.mktemp("stop"), sorted((SAMPLES / "batch").glob("*.jpg")))
     return folder
 
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from gripsight.vision.camera import Camera
-from gripsight.vision.camerapose import _project, _axis_angle, fit_pinhole, principal_point
+from gripsight.vision.camerapose import _project, fit_pinhole, principal_point
 from gripsight.vision.homography import TableMapping, fit_homography_dlt
 
 # eight 40 mm markers around a 320 x 440 mm bench, one raised 60 mm on a box (our own layout)
@@ -38,7 +38,7 @@ def test_projection_agrees_with_opencv():
     cam = Camera.create([180.0, -30.0, 720.0], 1250.0, tilt_deg=4.0, tilt_azimuth_deg=70.0,
                         principal_offset_px=(7.0, -4.0))
     xyz = np.column_stack([rng.uniform(0, 400, 50), rng.uniform(-250, 250, 50), rng.uniform(0, 80, 50)])
-    p = np.concatenate([[cam.K[0, 0]], cam.K[:2, 2], _axis_angle(cam.R_camera_from_table), cam.centre_mm])
+    p = np.concatenate([[cam.K[0, 0]], cam.K[:2, 2], np.ravel(cam.rvec), cam.centre_mm])
     ref, _ = cv2.projectPoints(xyz, cam.rvec, cam.tvec, cam.K, None)
     np.testing.assert_allclose(_project(p, xyz), ref.reshape(-1, 2), atol=1e-8)
 

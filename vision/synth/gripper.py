@@ -9,17 +9,11 @@ its plane, ``K [R e_x, R e_y, R (c - C)]``, so its corners land where ``Camera.p
 
 from __future__ import annotations
 
-import cv2
 import numpy as np
 
-from gripsight.vision.markers import aruco_dictionary
+from gripsight.vision.synth.paper import marker_paper
 
 __all__ = ["marker_axes", "gripper_marker_corners_mm", "draw_gripper_marker"]
-
-_MASTER_PX_PER_MM = 12.0
-_PAPER_ALBEDO = 0.80
-_INK_ALBEDO = 0.025
-
 
 def marker_axes(yaw_deg: float, pitch_deg: float) -> tuple[np.ndarray, np.ndarray]:
     """The marker's x (toward its top edge) and y (toward its left edge) axes in the table frame."""
@@ -37,26 +31,13 @@ def gripper_marker_corners_mm(spec, margin_mm: float = 0.0) -> np.ndarray:
     return np.asarray(spec.centre_mm, float) + local[:, :1] * ex + local[:, 1:] * ey
 
 
-def _paper(dictionary: str, marker_id: int, size_mm: float, margin_mm: float, px_per_mm: float):
-    side = int(round(size_mm * _MASTER_PX_PER_MM))
-    total = int(round((size_mm + 2 * margin_mm) * _MASTER_PX_PER_MM))
-    ink = cv2.aruco.generateImageMarker(aruco_dictionary(dictionary), int(marker_id), side, borderBits=1)
-    paper = np.full((total, total), _PAPER_ALBEDO, np.float32)
-    off = (total - side) // 2
-    paper[off:off + side, off:off + side] = np.where(ink > 127, _PAPER_ALBEDO, _INK_ALBEDO)
-    n = max(8, int(round((size_mm + 2 * margin_mm) * px_per_mm)))
-    if n < total:
-        paper = cv2.resize(paper, (n, n), interpolation=cv2.INTER_AREA)
-    return np.repeat(paper[..., None], 3, axis=2), paper.shape[0]
-
-
 def draw_gripper_marker(canvas, cam, K_canvas, dictionary: str, spec, warp_into, shade: float = 1.0) -> None:
     """Warp the marker's paper into the canvas at its pose (``warp_into`` is the renderer's blender)."""
     centre = np.asarray(spec.centre_mm, float)
     depth = float(cam.to_camera(centre[None])[0, 2])
     if depth <= 1.0:
         return
-    paper, n = _paper(dictionary, spec.id, spec.size_mm, spec.margin_mm, 1.25 * K_canvas[0, 0] / depth)
+    paper, n = marker_paper(dictionary, spec.id, spec.size_mm, spec.margin_mm, 1.25 * K_canvas[0, 0] / depth)
     h = spec.size_mm / 2 + spec.margin_mm
     res = n / (2 * h)
     # paper pixel (col, row) -> marker-local (x, y): image down = -x, image right = -y

@@ -29,8 +29,8 @@ from pydantic import BaseModel
 
 from gripsight.vision.camera import Camera
 from gripsight.vision.colour import linear_from_srgb, srgb_from_lab, srgb_from_linear
-from gripsight.vision.markerdict import aruco_dictionary
 from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.synth.paper import marker_paper
 from gripsight.vision.synth.scene import ResolvedPart, Scene, make_camera, resolve_parts
 from gripsight.vision.synth.surfaces import BUSY_PX_PER_MM, Surface, busy_texture
 
@@ -38,10 +38,7 @@ __all__ = ["Rendered", "render_scene", "encode_photo"]
 
 _SS = 2                      # supersampling factor
 _MAP_STEP = 8                # coarse grid step (fine pixels) of the lens map
-_PAPER_PX_PER_MM = 12.0
 _TEXTURE_PX_PER_MM = 2.0
-_PAPER_ALBEDO = 0.80         # linear
-_INK_ALBEDO = 0.025
 _TABLE_LAB = (74.0, 1.5, 9.0)
 _BASE_LAB = (24.0, 0.0, -1.0)
 _RISER_LAB = (62.0, 2.0, 6.0)
@@ -123,19 +120,8 @@ def _table_texture(rng: np.random.Generator, shape, base_lab=_TABLE_LAB) -> np.n
 
 
 def _paper_image(cell, marker_id: int, px_per_mm: float):
-    """The marker's paper (ink square and white margin) at ``px_per_mm``, each pixel the exact area
-    average of a 12 px/mm master, so edges keep their sub-pixel position at any resolution."""
-    size, margin = cell.markers.size_mm, cell.markers.margin_mm
-    side = int(round(size * _PAPER_PX_PER_MM))
-    total = int(round((size + 2 * margin) * _PAPER_PX_PER_MM))
-    ink = cv2.aruco.generateImageMarker(aruco_dictionary(cell.markers.dictionary), int(marker_id), side, borderBits=1)
-    paper = np.full((total, total), _PAPER_ALBEDO, np.float32)
-    off = (total - side) // 2
-    paper[off:off + side, off:off + side] = np.where(ink > 127, _PAPER_ALBEDO, _INK_ALBEDO)
-    n = max(8, int(round((size + 2 * margin) * px_per_mm)))
-    if n < total:
-        paper = cv2.resize(paper, (n, n), interpolation=cv2.INTER_AREA)
-    return np.repeat(paper[..., None], 3, axis=2), paper.shape[0]
+    """The cell's marker ``marker_id`` on its paper at ``px_per_mm`` (:func:`paper.marker_paper`)."""
+    return marker_paper(cell.markers.dictionary, marker_id, cell.markers.size_mm, cell.markers.margin_mm, px_per_mm)
 
 
 def _warp_into(canvas, image, H_canvas_from_image, corners_canvas):
