@@ -26,7 +26,7 @@ from pathlib import Path
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, write_text_atomic
 
 __all__ = ["BatchJob", "BatchInterrupted", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch",
-           "write_batch_tables"]
+           "start_workers", "stop_workers", "write_batch_tables"]
 
 _CACHE: dict = {}
 SAMPLE_EVERY = 10           # with Pictures.SOME, photos 1, 11, 21, ... (name order) get pictures too
@@ -243,10 +243,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
 
     out = output_dir(out)
     photos = photos_in(folder)
-    if workers > 1 and not scheduler:       # numpy's BLAS threads would spin beside the other workers
-        for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-            os.environ.setdefault(name, "1")
-    pool_context = _start_workers_early() if workers > 1 and not scheduler else None
+    pool_context = start_workers(workers, scheduler)
     cell, _, _, stored = _context(str(cell_path), str(calibration_path) if calibration_path else None)   # fail early
     remove_leftover_temps(out)
     jobs = [BatchJob(str(p), str(cell_path), str(calibration_path) if calibration_path else None, str(out),
@@ -288,7 +285,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             try:
                 pool.terminate()
                 pool.join()
-                _stop_fork_server()
+                stop_workers()
             finally:
                 signal.signal(signal.SIGINT, previous)
             raise BatchInterrupted(len(rows), len(photos)) from None
@@ -321,16 +318,26 @@ class BatchInterrupted(KeyboardInterrupt):
         self.done, self.total = done, total
 
 
-def _stop_fork_server() -> None:
-    """End the fork server now rather than when it notices the batch is gone (it would first unload
-    the workers' modules, a second or more): the batch is stopping and starts no more workers."""
-    from multiprocessing import forkserver
+def stop_workers() -> None:
+    """End the fork server of :func:`start_workers`, if one runs, now rather than when it notices the batch
+    is gone (it would first unload the workers' modules, a second or more); a later batch in this process
+    starts a new one."""
+    from multiprocessing import forkserver, util
 
-    pid = getattr(getattr(forkserver, "_forkserver", None), "_forkserver_pid", None)
-    if pid:
+    server = getattr(forkserver, "_forkserver", None)
+    pid = getattr(server, "_forkserver_pid", None)
+    if not pid:
+        return
+    with contextlib.suppress(OSError):
+        os.kill(pid, signal.SIGKILL)
+        os.waitpid(pid, 0)
+    with contextlib.suppress(OSError, TypeError):
+        os.close(server._forkserver_alive_fd)
+    address = server._forkserver_address
+    if address and not util.is_abstract_socket_namespace(address):
         with contextlib.suppress(OSError):
-            os.kill(pid, signal.SIGKILL)
-            os.waitpid(pid, 0)
+            os.unlink(address)
+    server._forkserver_pid = server._forkserver_alive_fd = server._forkserver_address = None
 
 
 def _worker_start(parent_pid: int) -> None:
@@ -377,19 +384,26 @@ def _alive(pid: int) -> bool:
 
 # what every worker imports: the fork server imports them once, while the main process reads the cell
 # (scipy.optimize: the refit's least squares, imported on a worker's first photo, a quarter of a second;
-# a module that cannot be imported is skipped by the fork server)
+# the cell file's pydantic models, 50 ms; a module that cannot be imported is skipped by the fork server)
 _WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot",
+                   "gripsight.app.cellfile", "gripsight.app.calfile", "gripsight.app.fixedtext",
                    "gripsight.vision.parts", "gripsight.vision.markers", "gripsight.vision.drift",
                    "gripsight.vision.overlay", "gripsight.app.truthcheck", "gripsight.app.jointcheck", "yaml",
                    "scipy.optimize", "isal.isal_zlib"]
 
 
-def _start_workers_early():
-    """The worker processes' start method; on POSIX a fork server, started now with the workers' modules
-    imported in it, so that work overlaps the main process loading the cell (each worker then starts
-    with them imported instead of importing them itself)."""
+def start_workers(workers: int, scheduler: str | None = None):
+    """The worker processes' start method for a local batch of ``workers`` (> 1) processes, or None (one
+    worker works in this process; a scheduler has its own). On POSIX a fork server, started at the first
+    call with the workers' modules imported in it, so that its start-up (a third of a second) overlaps
+    what the command does before its first photo; call it as early as the worker count is known (a
+    second call returns the same server)."""
     import multiprocessing
 
+    if workers <= 1 or scheduler:
+        return None
+    for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ.setdefault(name, "1")        # numpy's BLAS threads would spin beside the other workers
     if os.name != "posix":
         return multiprocessing.get_context("spawn")
     ctx = multiprocessing.get_context("forkserver")

@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import csv
 import json
+import os
 import shutil
 import subprocess
 from pathlib import Path
@@ -193,6 +194,20 @@ def _batch_folder(tmp_path, n=5) -> Path:
     return folder
 
 
+def _children_running(word: str) -> list[str]:
+    """Command lines of this process's children that contain ``word`` (Linux /proc; [] elsewhere)."""
+    found = []
+    for path in Path(f"/proc/{os.getpid()}/task").glob("*/children"):
+        for pid in path.read_text().split():
+            try:
+                cmd = Path(f"/proc/{pid}/cmdline").read_bytes().replace(b"\0", b" ").decode(errors="replace")
+            except OSError:
+                continue
+            if word in cmd:
+                found.append(cmd)
+    return found
+
+
 def test_batch_two_workers_equal_one_and_bad_files_are_rows(tmp_path, capsys):
     folder = _batch_folder(tmp_path)
     (folder / "empty.jpg").write_bytes(b"")
@@ -200,6 +215,7 @@ def test_batch_two_workers_equal_one_and_bad_files_are_rows(tmp_path, capsys):
     code1 = main(["batch", str(folder), "--workers", "1", "--out", str(tmp_path / "one")])
     code2 = main(["batch", str(folder), "--workers", "2", "--out", str(tmp_path / "two")])
     capsys.readouterr()
+    assert _children_running("forkserver") == []              # the workers' fork server is stopped with the batch
     assert code1 == code2 == 5                                 # some photos failed: exit code says so
     one, two = (tmp_path / "one" / "batch.csv").read_text(), (tmp_path / "two" / "batch.csv").read_text()
     assert one == two

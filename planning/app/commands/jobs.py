@@ -179,8 +179,6 @@ def _print_plan_summary(data: dict, out: Path) -> None:
     from rich.console import Console
     from rich.table import Table
 
-    from gripsight.vision.parts import PartStatus
-
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     table = Table(title=f"{data['cell']}: picks in order", title_justify="left")
     for col in ("#", "part", "class", "bin", "duration s"):
@@ -230,7 +228,6 @@ def run(
     from rich.console import Console
     from rich.table import Table
 
-    from gripsight.vision.parts import PartStatus
 
     from gripsight.app.pipeline import load_or_make_calibration
     from gripsight.app.cellfile import load_cell
@@ -322,31 +319,36 @@ def batch(
                                       "refusals and every 10th photo), all, or none."),
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
-    from gripsight.app.batch import Pictures, run_batch, write_batch_tables
-    from gripsight.app.cellfile import load_cell
+    from gripsight.app.batch import Pictures, start_workers, stop_workers
     from gripsight.app.errors import GripsightError
-    from gripsight.app.run import photos_in
 
     try:
         chosen = Pictures(pictures)
     except ValueError:
         raise GripsightError(f"--pictures: expected some, all or none, got '{pictures}'") from None
+    cell_path = _find_cell(cell, folder)
+    start_workers(workers, scheduler)       # their start-up overlaps reading the cell and the photo folder
+    try:
+        _batch(folder, cell_path, calibration, out, workers, scheduler, resume, chosen)
+    finally:
+        stop_workers()
 
+
+def _batch(folder, cell_path, calibration, out, workers, scheduler, resume, chosen) -> None:
+    import signal
+    import threading
+
+    from gripsight.app.batch import BatchInterrupted, run_batch, write_batch_tables
+    from gripsight.app.cellfile import load_cell
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
-
     from gripsight.app.outpaths import check_output_paths
+    from gripsight.app.run import photos_in
 
-    cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
     check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
                                                        "--calibration": calibration})
     n = len(photos_in(folder))
-    from gripsight.app.batch import BatchInterrupted
-
-    import signal
-    import threading
-
     stop = threading.Event()
 
     def _on_ctrl_c(signum, frame):
@@ -389,8 +391,6 @@ _LIST_AT_MOST = 100
 def _print_batch(rows, totals, out) -> None:
     from rich.console import Console
     from rich.table import Table
-
-    from gripsight.vision.parts import PartStatus
 
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     shown = rows if len(rows) <= _LIST_EVERY_PHOTO_UP_TO else [r for r in rows if r["status"] != "ok" or r["rejected"]]
