@@ -150,7 +150,7 @@ def class_carry_problems(cell, arm: Arm) -> list[Problem]:
     work = np.asarray(cell.work_area, float)
     edges = np.concatenate([work[i] + np.linspace(0, 1, 50)[:, None] * (work[(i + 1) % len(work)] - work[i])
                             for i in range(len(work))]) if len(work) else np.zeros((0, 2))
-    r_work = np.hypot(edges[:, 0], edges[:, 1]) if len(edges) else np.zeros(0)
+    r_work = np.hypot(*(edges - np.asarray(arm.base_xy_mm, float)).T) if len(edges) else np.zeros(0)   # from the base axis
     for name, height in heights.items():
         if height <= cell.motion.grip_depth_mm:
             continue                          # the cell file's own check names this one

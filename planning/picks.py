@@ -146,14 +146,15 @@ class Planner:
         return [Segment(kind, StraightPath(p0, p1), part_id=part_id, gripper_closed=closed)]
 
     def _transfer(self, p0, p1, part_id, closed) -> list[Segment]:
-        """Arc at safe height from p0 to p1 through the point at the mid base angle and mean radius."""
+        """Arc at safe height from p0 to p1 through the point at the mid base angle and mean radius (both
+        about the base axis)."""
         p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
         if math.dist(p1, p0) < _SAME_POINT_MM:
             return []
-        r0, r1 = np.hypot(*p0[:2]), np.hypot(*p1[:2])
-        a0, a1 = np.arctan2(p0[1], p0[0]), np.arctan2(p1[1], p1[0])
-        am, rm = 0.5 * (a0 + a1), 0.5 * (r0 + r1)
-        via = np.array([rm * np.cos(am), rm * np.sin(am), 0.5 * (p0[2] + p1[2])])
+        base = np.asarray(self.arm.base_xy_mm, float)
+        (x0, y0), (x1, y1) = p0[:2] - base, p1[:2] - base
+        am, rm = 0.5 * (math.atan2(y0, x0) + math.atan2(y1, x1)), 0.5 * (math.hypot(x0, y0) + math.hypot(x1, y1))
+        via = np.array([base[0] + rm * math.cos(am), base[1] + rm * math.sin(am), 0.5 * (p0[2] + p1[2])])
         chord = p1 - p0
         off = via - p0
         bulge = math.hypot(*(off - chord * (off @ chord) / (chord @ chord)))

@@ -48,9 +48,9 @@ def _max_radius_mm(arm: Arm) -> float:
 
 
 def radial_reach(arm: Arm, z_mm: float, step_mm: float = 0.05) -> RadialReach:
-    """Smallest and largest reachable radius at tool height ``z_mm`` (base at 0, limits applied)."""
+    """Smallest and largest reachable radius from the base axis at tool height ``z_mm`` (limits applied)."""
     r = np.arange(0.0, _max_radius_mm(arm), step_mm)
-    ok = arm.inverse(np.column_stack([r, np.zeros_like(r), np.full_like(r, z_mm)])).ok
+    ok = arm.inverse(_from_base_along_x(arm, r, np.full_like(r, z_mm))).ok
     if not ok.any():
         return RadialReach(z_mm, None, None)
     return RadialReach(z_mm, float(r[ok].min()), float(r[ok].max()))
@@ -64,10 +64,16 @@ def reachable_xy(arm: Arm, x_mm: np.ndarray, y_mm: np.ndarray, z_mm: float) -> n
 
 
 def reachable_rz(arm: Arm, r_mm: np.ndarray, z_mm: np.ndarray) -> np.ndarray:
-    """Mask of reachable (r, z) points in the arm's vertical plane, base at 0, shape (nz, nr)."""
+    """Mask of reachable (r, z) points in the arm's vertical plane (r from the base axis, along the
+    table's +x), shape (nz, nr)."""
     rr, zz = np.meshgrid(np.asarray(r_mm, float), np.asarray(z_mm, float))
-    pts = np.column_stack([rr.ravel(), np.zeros(rr.size), zz.ravel()])
-    return arm.inverse(pts).ok.reshape(rr.shape)
+    return arm.inverse(_from_base_along_x(arm, rr.ravel(), zz.ravel())).ok.reshape(rr.shape)
+
+
+def _from_base_along_x(arm: Arm, r_mm: np.ndarray, z_mm: np.ndarray) -> np.ndarray:
+    """Table points (N, 3) at radii ``r_mm`` from the base axis along the table's +x, heights ``z_mm``."""
+    bx, by = arm.base_xy_mm
+    return np.column_stack([bx + r_mm, np.full(len(r_mm), float(by)), z_mm])
 
 
 def lowest_grip_z_mm(cell) -> float:

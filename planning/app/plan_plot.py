@@ -97,9 +97,10 @@ def path_plot_png(plan, cell, arm) -> bytes:
     bins = [(name, float(b.x), float(b.y)) for name, b in cell.bins.items()]
     zones = _keep_out_outlines(cell)
     parts_xy = np.array([o.part.xy_mm for o in plan.parts], float).reshape(-1, 2)
-    every_x = np.concatenate([wa[:, 0], xyz[:, 0], [b[1] for b in bins], parts_xy[:, 0], [0.0]]
+    base_x, base_y = (float(v) for v in arm.base_xy_mm)      # the base axis in the table frame
+    every_x = np.concatenate([wa[:, 0], xyz[:, 0], [b[1] for b in bins], parts_xy[:, 0], [base_x]]
                              + [z[:, 0] for z in zones])
-    every_y = np.concatenate([wa[:, 1], xyz[:, 1], [b[2] for b in bins], parts_xy[:, 1], [0.0]]
+    every_y = np.concatenate([wa[:, 1], xyz[:, 1], [b[2] for b in bins], parts_xy[:, 1], [base_y]]
                              + [z[:, 1] for z in zones])
     chart = Chart(1300, 620)
     top = chart.panel((90, 40, 640, 550), _limits(every_y, 0.08), _limits(every_x, 0.08), equal=True, invert_x=True)
@@ -120,8 +121,8 @@ def path_plot_png(plan, cell, arm) -> bytes:
         else:
             top.markers(y, x, _REJECTED, "cross", 12, 3)
             top.text(y, x, f"{o.part.id}: {o.rejection.label}", colour=_REJECTED)
-    top.markers(0.0, 0.0, (0, 0, 0), "plus", 16, 2)
-    top.text(0.0, 0.0, "arm base", offset_px=(10, 16))
+    top.markers(base_y, base_x, (0, 0, 0), "plus", 16, 2)
+    top.text(base_y, base_x, "arm base", offset_px=(10, 16))
     top.axes(xlabel="y (mm, +y to the left)", ylabel="x (mm)", title="tool path from above")
     legend = [LegendEntry("work area", (0, 0, 0), "line", 1), LegendEntry("tool path", _PATH, "line", 1),
               LegendEntry("carrying a part", _CARRY, "thick", 3), LegendEntry("planned part", _PLANNED, "dot"),
@@ -130,7 +131,7 @@ def path_plot_png(plan, cell, arm) -> bytes:
         legend.append(LegendEntry("keep-out zone", _ZONE, "patch"))
     top.legend(legend, corner="lower left")
 
-    r = np.sqrt(xyz[:, 0] ** 2 + xyz[:, 1] ** 2)
+    r = np.hypot(xyz[:, 0] - base_x, xyz[:, 1] - base_y)
     safe_z = float(cell.motion.safe_z_mm)
     side = chart.panel((780, 40, 1270, 550), _limits(r, 0.08, (0.0, 300.0)),
                        _limits(np.concatenate([xyz[:, 2], [0.0, safe_z]]), 0.08), equal=True)

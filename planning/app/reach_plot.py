@@ -32,8 +32,9 @@ def draw_reach(cell, arm: Arm, out_path, resolution_mm: float = 2.0) -> None:
     motion = cell.motion
     grip_z = lowest_grip_z_mm(cell)
     layout = cell.markers.layout
-    xs = [p[0] for p in cell.work_area] + [m.x for m in layout.values()] + [b.x for b in cell.bins.values()] + [0.0]
-    ys = [p[1] for p in cell.work_area] + [m.y for m in layout.values()] + [b.y for b in cell.bins.values()] + [0.0]
+    base_xy = np.array(arm.base_xy_mm, float)           # the base axis in the table frame (arm-fit moves it)
+    xs = [p[0] for p in cell.work_area] + [m.x for m in layout.values()] + [b.x for b in cell.bins.values()] + [base_xy[0]]
+    ys = [p[1] for p in cell.work_area] + [m.y for m in layout.values()] + [b.y for b in cell.bins.values()] + [base_xy[1]]
     pad = cell.markers.size_mm + 40.0
     x_grid = np.arange(min(xs) - pad, max(xs) + pad, resolution_mm)
     y_grid = np.arange(min(ys) - pad, max(ys) + pad, resolution_mm)
@@ -68,7 +69,7 @@ def draw_reach(cell, arm: Arm, out_path, resolution_mm: float = 2.0) -> None:
             top.fill([y0, y1, y1, y0], [x0, x0, x1, x1], color="#ff7f0e", alpha=0.35, hatch="//")
     for u in bad:
         top.plot(u.xyz_mm[1], u.xyz_mm[0], "x", color=_BAD_COLOUR, ms=12, mew=3)
-    top.plot(0, 0, "k+", ms=12, mew=2)
+    top.plot(base_xy[1], base_xy[0], "k+", ms=12, mew=2)
     top.set_xlim(y_grid[-1], y_grid[0])  # +y to the left, as seen from above with +x up
     top.set_ylim(x_grid[0], x_grid[-1])
     top.set_aspect("equal")
@@ -81,7 +82,8 @@ def draw_reach(cell, arm: Arm, out_path, resolution_mm: float = 2.0) -> None:
                matplotlib.lines.Line2D([], [], marker="x", ls="", color=_BAD_COLOUR, mew=3, label="cannot reach")]
     top.legend(handles=handles, loc="lower left", fontsize=8, framealpha=0.9)
 
-    r_max = max(np.hypot(xs, ys).max(), arm.upper_arm_mm + arm.forearm_mm) + pad
+    r_max = max(np.hypot(np.array(xs) - base_xy[0], np.array(ys) - base_xy[1]).max(),
+                arm.upper_arm_mm + arm.forearm_mm) + pad
     r_grid = np.arange(0.0, r_max, resolution_mm)
     z_grid = np.arange(-20.0, arm.base_height_mm + arm.upper_arm_mm + arm.forearm_mm + 20.0, resolution_mm)
     rz_ok = reachable_rz(arm, r_grid, z_grid)
@@ -92,23 +94,23 @@ def draw_reach(cell, arm: Arm, out_path, resolution_mm: float = 2.0) -> None:
     side.axhline(motion.safe_z_mm, color=_SAFE_COLOUR, lw=1.5, ls="--")
     side.annotate(f"safe z={motion.safe_z_mm:g}", (r_grid[-1], motion.safe_z_mm), ha="right", va="bottom", fontsize=8)
     side.axhline(grip_z, color=_GRIP_COLOUR, lw=1, ls=":")
-    wa_r = np.hypot(wa[:, 0], wa[:, 1])
-    r_near = _polygon_min_radius(np.array(cell.work_area))
+    wa_r = np.hypot(wa[:, 0] - base_xy[0], wa[:, 1] - base_xy[1])
+    r_near = _polygon_min_radius(np.array(cell.work_area) - base_xy)
     side.plot([r_near, wa_r.max()], [-8, -8], color="black", lw=4, solid_capstyle="butt")
     side.annotate("work area (radial span)", (r_near, -14), fontsize=8, va="top")
     by_place: dict[tuple[float, float], list[str]] = {}
     for name, b in cell.bins.items():
-        key = (round(float(np.hypot(b.x, b.y))), round(b.z + motion.drop_z_mm))
+        key = (round(float(np.hypot(b.x - base_xy[0], b.y - base_xy[1]))), round(b.z + motion.drop_z_mm))
         by_place.setdefault(key, []).append(name)
     for (r_b, z_b), names in by_place.items():
         side.plot([r_b], [z_b], "v", color="#555555")
         side.annotate("/".join(names), (r_b, z_b), xytext=(0, 6), textcoords="offset points",
                       ha="center", fontsize=7, rotation=60)
     home = np.radians([[cell.motion.home_deg.base, cell.motion.home_deg.shoulder, cell.motion.home_deg.elbow]])
-    elbow, wrist = arm.elbow_wrist_mm(home)
+    r_chain, z_chain = arm.chain_rz_mm(home)                 # shoulder, elbow, wrist
     tool = arm.forward(home)
-    chain_r = [0, 0, arm.shoulder_offset_mm, np.hypot(*elbow[0, :2]), np.hypot(*wrist[0, :2]), np.hypot(*tool[0, :2])]
-    chain_z = [0, arm.base_height_mm, arm.base_height_mm, elbow[0, 2], wrist[0, 2], tool[0, 2]]
+    chain_r = [0, 0, *r_chain[0], float(np.hypot(*(tool[0, :2] - base_xy)))]
+    chain_z = [0, arm.base_height_mm, *z_chain[0], tool[0, 2]]
     side.plot(chain_r, chain_z, "-o", color="0.2", lw=2, ms=4, label="home pose")
     side.set_aspect("equal")
     side.set_xlim(-30, r_grid[-1])
@@ -123,7 +125,8 @@ def draw_reach(cell, arm: Arm, out_path, resolution_mm: float = 2.0) -> None:
 
 
 def _polygon_min_radius(poly_xy: np.ndarray) -> float:
-    """Distance from the base axis (origin) to the nearest point of a polygon (0 if it contains it)."""
+    """Distance from the origin (the base axis: give the polygon relative to it) to the nearest point of a
+    polygon (0 if it contains it)."""
     a = poly_xy
     b = np.roll(poly_xy, -1, axis=0)
     ab = b - a

@@ -63,3 +63,26 @@ def test_console_script_help_and_error_exit_codes(tmp_path):
     done = subprocess.run(exe + ["validate", str(tmp_path / "missing.yaml")], capture_output=True, text=True)
     assert done.returncode == 2
     assert done.stderr.strip() == f"error: {tmp_path / 'missing.yaml'}: no such cell file"
+
+
+def test_reach_is_measured_from_the_base_axis(sample_cell):
+    """With the base axis away from the table origin (``arm.base_xy_mm``, written by arm-fit), the radial
+    reach, the side view's reachable region and the classes' carry checks are those of the arm at the
+    origin (reach depends only on distances from the base axis: geometry)."""
+    import dataclasses
+
+    from gripsight.planning.held import class_carry_problems
+    from gripsight.planning.reach import reachable_rz
+
+    arm = Arm.from_config(sample_cell.arm)
+    dx, dy = 300.0, -25.0                      # far enough that radii from the table origin are out of reach
+    moved = dataclasses.replace(arm, base_xy_mm=(dx, dy))
+    for z in (30.0, 100.0):
+        a, b = radial_reach(arm, z, step_mm=0.5), radial_reach(moved, z, step_mm=0.5)
+        assert (a.r_min_mm, a.r_max_mm) == (b.r_min_mm, b.r_max_mm)
+    r, z = np.arange(0.0, 400.0, 5.0), np.arange(-20.0, 300.0, 5.0)
+    np.testing.assert_array_equal(reachable_rz(moved, r, z), reachable_rz(arm, r, z))
+    shifted = sample_cell.model_copy(update={
+        "work_area": [[x + dx, y + dy] for x, y in sample_cell.work_area],
+        "bins": {k: b.model_copy(update={"x": b.x + dx, "y": b.y + dy}) for k, b in sample_cell.bins.items()}})
+    assert class_carry_problems(shifted, moved) == class_carry_problems(sample_cell, arm) == []

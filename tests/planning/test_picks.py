@@ -22,7 +22,7 @@ from gripsight.planning.ordering import order_cost_mm, order_nearest_two_opt
 from gripsight.planning.picks import Planner
 from gripsight.planning.safety import SAFETY_LINES
 from gripsight.app.partsfile import parse_parts
-from tests.conftest import SAMPLE_CELL, cell_data_with_linkage
+from tests.conftest import SAMPLE_CELL, cell_data_with_linkage, sample_cell_data
 
 SIX_REACHABLE_TWO_NOT = [
     {"id": "r1", "class": "red", "x_mm": 200, "y_mm": 0},
@@ -364,3 +364,32 @@ def test_a_way_home_that_fails_is_left_out_and_the_picks_kept():
     assert "(rise at t=" in plan.warnings[0]
     last_bin = cell.bins[plan.picks[-1].bin_name]
     np.testing.assert_allclose(plan.samples.xyz_mm[-1], [last_bin.x, last_bin.y, cell.motion.safe_z_mm], atol=1e-6)
+
+
+def test_a_cell_shifted_with_its_base_plans_the_same_joint_sequence():
+    """A rigid shift of the whole cell (markers, work area, trays, keep-out zones, parts) together with the
+    arm's base axis (``arm.base_xy_mm``, written by arm-fit) changes no joint angle: the same motion in a
+    shifted frame (geometry: joint angles depend only on positions relative to the base). Before, the
+    arc transfers' via points were taken about the table origin, not the base axis."""
+    shift = np.array([35.0, -20.0])
+
+    def shifted(data):
+        data["markers"]["layout"] = {k: {**m, "x": m["x"] + shift[0], "y": m["y"] + shift[1]}
+                                     for k, m in data["markers"]["layout"].items()}
+        data["work_area"] = [[x + shift[0], y + shift[1]] for x, y in data["work_area"]]
+        data["bins"] = {k: {**b, "x": b["x"] + shift[0], "y": b["y"] + shift[1]} for k, b in data["bins"].items()}
+        data["keep_out"] = [{**z, "x": z["x"] + shift[0], "y": z["y"] + shift[1]} for z in data["keep_out"]]
+        data["arm"]["base_xy_mm"] = shift.tolist()
+        return data
+
+    plans = []
+    for data, d in ((sample_cell_data(), np.zeros(2)), (shifted(sample_cell_data()), shift)):
+        cell = parse_cell(data)
+        entries = [{**p, "x_mm": p["x_mm"] + d[0], "y_mm": p["y_mm"] + d[1]} for p in SIX_REACHABLE_TWO_NOT]
+        plans.append(Planner(cell).plan(parse_parts({"parts": entries}, cell)))
+    a, b = plans
+    assert [(o.part.id, o.rejection and o.rejection.label) for o in a.parts] == \
+           [(o.part.id, o.rejection and o.rejection.label) for o in b.parts]
+    assert sum(o.rejection is None for o in a.parts) == 6
+    np.testing.assert_allclose(b.samples.joints_rad, a.samples.joints_rad, atol=1e-9)
+    np.testing.assert_allclose(b.samples.xyz_mm[:, :2], a.samples.xyz_mm[:, :2] + shift, atol=1e-9)
