@@ -23,7 +23,9 @@ from gripsight.planning.armfit import (ASSUMED_NOISE_PX, ArmErrors, MarkerMount,
                                        _sigma_limit, _sigmas, grid_in_polygon, parameter_names)
 from gripsight.planning.errors import PlanningError
 from gripsight.planning.motion import Segment, SegmentKind
-from gripsight.planning.picks import Plan, Planner
+from gripsight.planning.pickmoves import straight_segments, transfer_segments
+from gripsight.planning.picks import Planner
+from gripsight.planning.planresult import Plan
 
 __all__ = ["Stop", "StopSequence", "choose_stops", "plan_stops", "stop_candidates_mm"]
 
@@ -110,9 +112,9 @@ def _nearest_order(start_mm: np.ndarray, points_mm: np.ndarray) -> list[int]:
 def _segments_to(planner: Planner, here: np.ndarray, stop_mm: np.ndarray, name: str, hold_s: float) -> list[Segment]:
     segs, p = planner._to_safe(here, name, False)
     above = np.array([stop_mm[0], stop_mm[1], planner.safe_z])
-    segs += planner._transfer(p, above, name, False)
+    segs += transfer_segments(planner.arm, p, above, name, False)
     kind = SegmentKind.DESCEND if stop_mm[2] < above[2] else SegmentKind.RISE
-    segs += planner._straight(kind, above, stop_mm, name, False)
+    segs += straight_segments(kind, above, stop_mm, name, False)
     segs.append(Segment(SegmentKind.HOLD, None, np.asarray(stop_mm, float), name, False, dwell_s=hold_s))
     return segs
 

@@ -15,92 +15,25 @@ one pass; after a failure the picks behind it are chained again from where the l
 
 from __future__ import annotations
 
-import math
-from dataclasses import dataclass, field
-from enum import StrEnum
-
 import numpy as np
 
 from gripsight.planning.arm import Arm
 from gripsight.planning.cellcheck import cell_problems
 from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
-                                       first_failure, grip_fit_rejection)
+                                       grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
 from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights,
                                      static_obstacles)
 from gripsight.planning.heldcheck import HeldSpec, ObstacleSet, held_part_failure
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
-from gripsight.planning.paths import ArcPath, PathGeometryError, StraightPath, TimeScaling
+from gripsight.planning.pickmoves import straight_segments, transfer_segments
+from gripsight.planning.paths import TimeScaling
+from gripsight.planning.planresult import JointSamples, PartOutcome, PickStatus, Plan, PlannedPick
 from gripsight.planning.targets import PartTarget
 
-__all__ = ["Planner", "Plan", "PartOutcome", "PickStatus", "PlannedPick", "JointSamples"]
+__all__ = ["Planner"]
 
-_MIN_ARC_BULGE_MM = 0.5     # a transfer whose via point is closer than this to the chord is straight
-_SAME_POINT_MM = 1e-6
-
-
-class PickStatus(StrEnum):
-    """What became of one part."""
-
-    PLANNED = "planned"
-    REJECTED = "rejected"
-
-
-@dataclass(frozen=True)
-class PartOutcome:
-    """What became of one part: planned, or rejected with a :class:`Rejection`."""
-
-    part: PartTarget
-    status: PickStatus
-    bin_name: str | None
-    rejection: Rejection | None = None
-
-
-@dataclass(frozen=True)
-class PlannedPick:
-    part_id: str
-    class_name: str
-    bin_name: str
-    segments: list[SampledSegment]
-    start_s: float
-
-    @property
-    def duration_s(self) -> float:
-        return float(sum(s.duration_s for s in self.segments))
-
-
-@dataclass(frozen=True)
-class JointSamples:
-    """The whole joint sequence on one clock (M samples)."""
-
-    t_s: np.ndarray               # (M,)
-    xyz_mm: np.ndarray            # (M, 3)
-    joints_rad: np.ndarray        # (M, 3)
-    gripper_closed: np.ndarray    # (M,) bool
-    segment_index: np.ndarray     # (M,) index into Plan.segments
-    segment_kind: list[str]       # per sample
-    part_id: list[str]            # per sample ('' for moves that serve no part)
-
-
-@dataclass
-class Plan:
-    """A checked plan: outcomes per part, the picks in order, the segments and the samples."""
-
-    parts: list[PartOutcome]
-    picks: list[PlannedPick]
-    segments: list[tuple[SampledSegment, float]]      # (segment, start time on the clock)
-    samples: JointSamples
-    warnings: list[str] = field(default_factory=list)
-    speed_scale: float = 1.0
-
-    @property
-    def cycle_s(self) -> float:
-        return float(self.samples.t_s[-1]) if len(self.samples.t_s) else 0.0
-
-    @property
-    def end_joints_rad(self) -> np.ndarray:
-        return self.samples.joints_rad[-1]
 
 
 class Planner:
@@ -140,39 +73,13 @@ class Planner:
             raise CellProblems(self.cell.source_path or "<cell>", problems)
 
     # ------------------------------------------------------------ segment builders
-    def _straight(self, kind, p0, p1, part_id, closed) -> list[Segment]:
-        if math.dist(p1, p0) < _SAME_POINT_MM:
-            return []
-        return [Segment(kind, StraightPath(p0, p1), part_id=part_id, gripper_closed=closed)]
-
-    def _transfer(self, p0, p1, part_id, closed) -> list[Segment]:
-        """Arc at safe height from p0 to p1 through the point at the mid base angle and mean radius (both
-        about the base axis)."""
-        p0, p1 = np.asarray(p0, float), np.asarray(p1, float)
-        if math.dist(p1, p0) < _SAME_POINT_MM:
-            return []
-        base = np.asarray(self.arm.base_xy_mm, float)
-        (x0, y0), (x1, y1) = p0[:2] - base, p1[:2] - base
-        am, rm = 0.5 * (math.atan2(y0, x0) + math.atan2(y1, x1)), 0.5 * (math.hypot(x0, y0) + math.hypot(x1, y1))
-        via = np.array([base[0] + rm * math.cos(am), base[1] + rm * math.sin(am), 0.5 * (p0[2] + p1[2])])
-        chord = p1 - p0
-        off = via - p0
-        bulge = math.hypot(*(off - chord * (off @ chord) / (chord @ chord)))
-        if bulge < _MIN_ARC_BULGE_MM:
-            return self._straight(SegmentKind.TRANSFER, p0, p1, part_id, closed)
-        try:
-            path = ArcPath(p0, via, p1)
-        except PathGeometryError:
-            return self._straight(SegmentKind.TRANSFER, p0, p1, part_id, closed)
-        return [Segment(SegmentKind.TRANSFER, path, part_id=part_id, gripper_closed=closed)]
-
     def _to_safe(self, p0, part_id, closed) -> tuple[list[Segment], np.ndarray]:
         if p0[2] > self.safe_z + 1e-9 and self._raised_ends.get(tuple(np.round(p0, 9))):
             # above a tall part just released into its tray: never lower onto it; the transfer descends
             return [], np.asarray(p0, float)
         p_safe = np.array([p0[0], p0[1], self.safe_z])
         kind = SegmentKind.RISE if p_safe[2] > p0[2] else SegmentKind.LOWER
-        return self._straight(kind, p0, p_safe, part_id, closed), p_safe
+        return straight_segments(kind, p0, p_safe, part_id, closed), p_safe
 
     def heights_for(self, part: PartTarget, tallest_other_mm: float = 0.0) -> PickHeights:
         """The tool heights of a pick of ``part`` (:func:`planning.held.pick_heights`): approach, grip,
@@ -199,14 +106,14 @@ class Planner:
         lifted = np.array([x, y, carry_z])
         above_bin = np.array([b.x, b.y, carry_z])
         end = self.pick_end_mm(part, h)
-        segs += self._transfer(p, above_part, pid, False)
-        segs += self._straight(SegmentKind.DESCEND, above_part, [x, y, grip_z], pid, False)
+        segs += transfer_segments(self.arm, p, above_part, pid, False)
+        segs += straight_segments(SegmentKind.DESCEND, above_part, [x, y, grip_z], pid, False)
         segs.append(Segment(SegmentKind.CLOSE, None, np.array([x, y, grip_z]), pid, True))
-        segs += self._straight(SegmentKind.RISE, [x, y, grip_z], lifted, pid, True)
-        segs += self._transfer(lifted, above_bin, pid, True)
-        segs += self._straight(SegmentKind.DESCEND, above_bin, [b.x, b.y, drop_z], pid, True)
+        segs += straight_segments(SegmentKind.RISE, [x, y, grip_z], lifted, pid, True)
+        segs += transfer_segments(self.arm, lifted, above_bin, pid, True)
+        segs += straight_segments(SegmentKind.DESCEND, above_bin, [b.x, b.y, drop_z], pid, True)
         segs.append(Segment(SegmentKind.OPEN, None, np.array([b.x, b.y, drop_z]), pid, False))
-        segs += self._straight(SegmentKind.RISE, [b.x, b.y, drop_z], end, pid, False)
+        segs += straight_segments(SegmentKind.RISE, [b.x, b.y, drop_z], end, pid, False)
         if end[2] > self.safe_z + 1e-9:
             self._raised_ends[tuple(np.round(end, 9))] = True
         for seg in segs:        # a descent descends, a rise rises (a bug otherwise, never a motion)
@@ -414,8 +321,8 @@ class Planner:
         if not self._ik_pose(self.home_rad):
             q_safe = self.arm.inverse(np.asarray(p, float)[None]).joints_rad[0]
             return segs + [Segment(SegmentKind.SWING, None, joints_rad=(q_safe, self.home_rad))]
-        segs += self._transfer(p, [home_mm[0], home_mm[1], self.safe_z], None, False)
-        return segs + self._straight(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
+        segs += transfer_segments(self.arm, p, [home_mm[0], home_mm[1], self.safe_z], None, False)
+        return segs + straight_segments(SegmentKind.RISE if home_mm[2] > self.safe_z else SegmentKind.LOWER,
                                      [home_mm[0], home_mm[1], self.safe_z], home_mm, None, False)
 
     @staticmethod

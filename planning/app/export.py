@@ -11,13 +11,12 @@ from __future__ import annotations
 
 import csv
 import io
-from datetime import datetime, timezone
 
 import numpy as np
 
 from gripsight.app.fileio import output_dir, strict_json, utc_now, write_files_atomic
 from gripsight.app.textsafe import one_line
-from gripsight.planning.picks import Plan
+from gripsight.planning.planresult import Plan
 from gripsight.planning.safety import SAFETY_LINES
 
 __all__ = ["CSV_COLUMNS", "plan_to_dict", "joints_csv_text", "write_plan_outputs"]
