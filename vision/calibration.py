@@ -112,6 +112,7 @@ class Calibration:
     max_px: float
     verdict: Verdict
     notes: list[str] = field(default_factory=list)
+    tone_power: float | None = None       # the photo's grey codes -> light: None the sRGB curve (vision.tonecurve)
 
     @property
     def used(self) -> list[MarkerFit]:

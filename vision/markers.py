@@ -24,6 +24,14 @@ __all__ = ["MarkerDetection", "detect_markers", "aruco_dictionary", "linearised_
 _LIN_LUT = (linear_from_srgb(np.arange(256) / 255.0) * 255.0).astype(np.float32)
 
 
+@functools.lru_cache(maxsize=16)
+def _tone_lut(tone_power: float | None) -> np.ndarray:
+    """Grey code -> light (0-255, float32): the sRGB curve (``None``) or ``255 (code / 255) ** tone_power``."""
+    if tone_power is None:
+        return _LIN_LUT
+    return (255.0 * (np.arange(256) / 255.0) ** float(tone_power)).astype(np.float32)
+
+
 @dataclass(frozen=True)
 class MarkerDetection:
     """One marker seen in a photo: its id and corners (4, 2) in pixels (OpenCV's order)."""
@@ -33,12 +41,14 @@ class MarkerDetection:
     refined: bool = True      # False where the edge refinement fell back to the detector's corners
 
 
-def linearised_gray(image) -> np.ndarray:
-    """Grey image (float32, 0-255) proportional to linear light, from an 8-bit BGR or grey photo."""
+def linearised_gray(image, tone_power: float | None = None) -> np.ndarray:
+    """Grey image (float32, 0-255) proportional to linear light, from an 8-bit BGR or grey photo whose
+    codes encode light by the sRGB curve (``tone_power`` None, what cameras write) or by a power law
+    (light = code ** ``tone_power``; 1 for codes linear in light; see :mod:`gripsight.vision.tonecurve`)."""
     gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
     if gray.dtype != np.uint8:
         gray = np.clip(gray, 0, 255).astype(np.uint8)
-    return cv2.LUT(gray, _LIN_LUT)
+    return cv2.LUT(gray, _tone_lut(tone_power))
 
 
 def _params(accuracy_rate: float):
@@ -72,7 +82,7 @@ def _second_detector(dictionary_name: str):
 _ATLAS_HEIGHT = 8192          # patches are stacked in columns at most this tall (remap takes < 32767)
 
 
-def _linearised_around(image, corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _linearised_around(image, corners: np.ndarray, tone_power: float | None) -> tuple[np.ndarray, np.ndarray]:
     """:func:`linearised_gray` only around each marker (its corners' box grown by a quarter of its size
     and 8 px, room for the edge profiles and the ring outside its cells), the patches stacked in columns
     of one small image; returns it and each marker's offset (M, 2) from photo to patch pixels (a
@@ -94,11 +104,11 @@ def _linearised_around(image, corners: np.ndarray) -> tuple[np.ndarray, np.ndarr
     atlas = np.zeros((max(int((at[:, 1] + size[:, 1]).max()), 1), max(int((at[:, 0] + size[:, 0]).max()), 1)), np.float32)
     for (x0, y0), (x1, y1), (ax, ay) in zip(lo.tolist(), hi.tolist(), at.tolist()):
         if x1 > x0 and y1 > y0:
-            atlas[ay:ay + y1 - y0, ax:ax + x1 - x0] = linearised_gray(image[y0:y1, x0:x1])
+            atlas[ay:ay + y1 - y0, ax:ax + x1 - x0] = linearised_gray(image[y0:y1, x0:x1], tone_power)
     return atlas, (at - lo).astype(np.float32)
 
 
-def _linearised_box(gray, corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _linearised_box(gray, corners: np.ndarray, tone_power: float | None) -> tuple[np.ndarray, np.ndarray]:
     """:func:`linearised_gray` of the one box holding every marker with the room
     :func:`_linearised_around` gives each (a quarter of its size and 8 px), and each marker's offset
     (M, 2) from photo to box pixels: markers on a sheet or a table seldom fill the photo, and the
@@ -109,16 +119,16 @@ def _linearised_box(gray, corners: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     x0, y0 = np.maximum(np.floor((lo - pad).min(axis=0)), 0).astype(int)
     x1, y1 = np.minimum(np.ceil((hi + pad).max(axis=0)), [w, h]).astype(int)
     x1, y1 = max(x1, x0 + 1), max(y1, y0 + 1)
-    return linearised_gray(gray[y0:y1, x0:x1]), np.tile(np.array([-x0, -y0], np.float64), (len(corners), 1))
+    return linearised_gray(gray[y0:y1, x0:x1], tone_power), np.tile(np.array([-x0, -y0], np.float64), (len(corners), 1))
 
 
-def _track(image, dictionary_name: str, expected: dict) -> list[MarkerDetection] | None:
+def _track(image, dictionary_name: str, expected: dict, tone_power: float | None) -> list[MarkerDetection] | None:
     """The expected markers where they were (a camera that has not moved, or moved by a pixel or two):
     corners refined from the edges next to the expected ones, identities read from the cells. None if
     any marker is not found so (then the markers are searched for)."""
     ids = sorted(expected)
     rough = np.array([np.asarray(expected[i], float).reshape(4, 2) for i in ids])
-    lin, offsets = _linearised_around(image, rough)
+    lin, offsets = _linearised_around(image, rough, tone_power)
     n = cells_per_side(dictionary_name)
     result = refine_corners(lin, rough, n, offsets)
     refined, good = result.corners_px, result.refined
@@ -220,12 +230,12 @@ def _size_fits(corners: np.ndarray, ids, expected: dict | None) -> np.ndarray:
     return ok
 
 
-def _checked(gray, ids, corners, dictionary_name: str, expected: dict | None):
+def _checked(gray, ids, corners, dictionary_name: str, expected: dict | None, tone_power: float | None):
     """Refine the candidates (ids (M,), corners (M, 4, 2)) and keep those with the evidence of a printed
     marker and the size a calibration predicts: the kept detections and their evidence scores."""
     if len(ids) == 0:
         return [], []
-    lin, offsets = _linearised_box(gray, corners)
+    lin, offsets = _linearised_box(gray, corners, tone_power)
     result = _fallback(gray, refine_corners(lin, corners, cells_per_side(dictionary_name), offsets))
     evidence = marker_evidence(lin, result.corners_px, ids, dictionary_name, offsets)
     keep = np.flatnonzero(evidence.accepted & _size_fits(result.corners_px, ids, expected))
@@ -241,7 +251,7 @@ def _as_arrays(ids, corners) -> tuple[np.ndarray, np.ndarray]:
 
 
 def detect_markers(image, dictionary_name: str, expected: dict | None = None,
-                   layout_ids=None, search_ids=None) -> list[MarkerDetection]:
+                   layout_ids=None, search_ids=None, tone_power: float | None = None) -> list[MarkerDetection]:
     """Markers in an 8-bit BGR or grey photo, sorted by id.
 
     OpenCV's candidates are kept only with the evidence of a printed marker
@@ -265,9 +275,12 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
         first search does not return them: in a window around their ``expected`` corners where those are
         given (ids missing from ``expected`` are then not searched again), else in the whole photo. Costs
         nothing when every one of them is found first.
+    tone_power : float, optional
+        How the photo's grey codes encode light, for the edges (:func:`linearised_gray`): None for the
+        sRGB curve, else the power a calibration found (:func:`gripsight.vision.tonecurve.calibrate_photo`).
     """
     if expected:
-        tracked = _track(image, dictionary_name, expected)
+        tracked = _track(image, dictionary_name, expected, tone_power)
         if tracked is not None:
             return tracked
     gray = image if image.ndim == 2 else cv2.cvtColor(image, cv2.COLOR_BGR2GRAY)
@@ -282,13 +295,13 @@ def detect_markers(image, dictionary_name: str, expected: dict | None = None,
     if layout is not None:
         keep = np.isin(ids, layout)
         ids, rough = ids[keep], rough[keep]
-    found, score = _checked(gray, ids, rough, dictionary_name, expected)
+    found, score = _checked(gray, ids, rough, dictionary_name, expected, tone_power)
     missing = set() if search_ids is None else {int(i) for i in search_ids} - {d.id for d in found}
     if layout is not None:
         missing &= set(layout.tolist())
     if missing:
         more, more_score = _checked(gray, *_second_look(gray, dictionary_name, expected, missing),
-                                    dictionary_name, expected)
+                                    dictionary_name, expected, tone_power)
         found, score = found + more, score + more_score
     return _one_per_id(found, score, expected)
 

@@ -190,8 +190,8 @@ def observations(pairs, cell, stored, nominal_arm, read_photo, detect_markers) -
     out = []
     for photo, stop in pairs:
         image = read_photo(photo)
-        found = [d for d in detect_markers(image, cell.markers.dictionary, search_ids=[marker_id])
-                 if d.id == marker_id]
+        found = [d for d in detect_markers(image, cell.markers.dictionary, search_ids=[marker_id],
+                                           tone_power=stored.tone_power) if d.id == marker_id]
         commanded = tuple(float(s.deg_from_pulse_us(p)) for s, p in zip(nominal_arm.servos, stop.pulses_us))
         uv = None if len(found) != 1 else tuple(marker_centre_px(found[0].corners_px, stored.mapping.lens))
         out.append(StopObservation(Path(photo).name, commanded, uv))

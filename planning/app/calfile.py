@@ -76,6 +76,7 @@ class _File(_Model):
     residual: dict[str, Finite]
     verdict: Annotated[Verdict, Field(strict=False)]
     notes: list[str] = []
+    tone_power: Annotated[float, Field(gt=0.2, lt=5.0, allow_inf_nan=False)] | None = None   # None: the sRGB curve
 
 
 class StoredCalibration:
@@ -90,6 +91,7 @@ class StoredCalibration:
         self.image_size = (data.photo.width_px, data.photo.height_px)
         self.marker_corners_px = {m.id: np.array(m.corners_px, float) for m in data.markers if m.used}
         self.verdict = data.verdict
+        self.tone_power = data.tone_power
         self.sha256: str | None = None           # SHA-256 of the file's bytes, set by read_calibration
 
 
@@ -134,6 +136,7 @@ def calibration_record(cal: Calibration, cell, photo_path) -> dict:
                      "markers_used": len(cal.used)},
         "verdict": cal.verdict.value,
         "notes": list(cal.notes),
+        **({"tone_power": cal.tone_power} if cal.tone_power is not None else {}),
     }
 
 

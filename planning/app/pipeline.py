@@ -38,17 +38,15 @@ def load_or_make_calibration(cell, calibration_path: Path | None, say=None):
     """Read the calibration; if there is none at the default place but ``calibration.jpg`` lies beside
     the cell file, calibrate from it first (the demo cell's first run) and tell ``say`` (a callable)."""
     from gripsight.app.calfile import default_calibration_path, read_calibration, write_calibration
-    from gripsight.vision.calibration import calibrate
-    from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
+    from gripsight.vision.tonecurve import calibrate_photo
 
     path = Path(calibration_path) if calibration_path else default_calibration_path(cell)
     if not path.exists() and calibration_path is None and cell.source_path:
         photo = Path(cell.source_path).parent / "calibration.jpg"
         if photo.is_file():
             image = read_photo(photo)
-            cal = calibrate(detect_markers(image, cell.markers.dictionary, search_ids=cell.markers.layout), cell, (image.shape[1], image.shape[0]),
-                            str(photo))
+            cal, _ = calibrate_photo(image, cell, str(photo))
             write_calibration(path, cal, cell, photo)
             if say is not None:
                 say(f"no calibration yet: calibrated from {photo} ({cal.verdict}, {cal.rms_mm:.3f} mm RMS over "
@@ -70,7 +68,8 @@ def analyse_photo(photo, cell, stored, image=None) -> PhotoAnalysis:
     check_photo_fits_calibration(photo, image, stored)
     check_calibration_fits_cell(stored, cell)
     expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
-    markers = detect_markers(image, cell.markers.dictionary, expected=expected, search_ids=cell.markers.layout)
+    markers = detect_markers(image, cell.markers.dictionary, expected=expected, search_ids=cell.markers.layout,
+                             tone_power=stored.tone_power)
     reg = register(stored, markers, cell, (image.shape[1], image.shape[0]), str(photo))
     detection = None
     if reg.action is not RegistrationAction.REFUSED:

@@ -25,9 +25,8 @@ from pathlib import Path
 from gripsight.app.calfile import read_calibration, write_calibration
 from gripsight.app.cellfile import load_cell
 from gripsight.app.pipeline import analyse_photo
-from gripsight.vision.calibration import calibrate
-from gripsight.vision.markers import detect_markers
 from gripsight.vision.photo import read_photo
+from gripsight.vision.tonecurve import calibrate_photo
 from tests.bench.devset_truth import Score, read_render_truth, read_scene_truth, score_photo
 from tests.conftest import ROOT, SAMPLE_CELL
 
@@ -45,9 +44,7 @@ class _Calibrations:
         photo = Path(photo).resolve()
         if photo not in self.cache:
             image = read_photo(photo)
-            cal = calibrate(detect_markers(image, self.cell.markers.dictionary, search_ids=self.cell.markers.layout),
-                            self.cell,
-                            (image.shape[1], image.shape[0]), str(photo))
+            cal, _ = calibrate_photo(image, self.cell, str(photo))      # as `gripsight calibrate` does
             path = self.folder / f"{photo.stem}.calibration.yaml"
             write_calibration(path, cal, self.cell, photo)
             self.cache[photo] = read_calibration(path)

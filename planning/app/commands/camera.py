@@ -138,10 +138,9 @@ def calibrate(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.fileio import strict_json, write_bytes_atomic
     from gripsight.app.calfile import calibration_record, default_calibration_path, write_calibration
-    from gripsight.vision.calibration import calibrate as fit
-    from gripsight.vision.markers import detect_markers
     from gripsight.vision.overlay import calibration_overlay
     from gripsight.vision.photo import read_photo
+    from gripsight.vision.tonecurve import calibrate_photo
 
     from gripsight.app.outpaths import check_output_paths
 
@@ -151,10 +150,8 @@ def calibrate(
     overlay = overlay or out.with_name(out.stem + "_overlay.png")
     check_output_paths(files={"--out": out, "--overlay": overlay}, inputs={"the photo": photo, "the cell file": cell_path})
     image = read_photo(photo)
-    detections = detect_markers(image, cfg.markers.dictionary, search_ids=cfg.markers.layout)
     try:
-        cal = fit(detections, cfg, (image.shape[1], image.shape[0]), str(photo),
-                  lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
+        cal, _ = calibrate_photo(image, cfg, str(photo), lens=_lens_for(cfg, (image.shape[1], image.shape[0])))
     except CalibrationError as exc:
         raise CalibrationError(f"{exc} (wrong cell file, or a photo of another cell?)") from None
     previous = _previous(out)
@@ -284,7 +281,8 @@ def check(
     image = read_photo(photo)
     check_photo_fits_calibration(photo, image, stored)
     expected = stored.marker_corners_px if tuple(image.shape[1::-1]) == tuple(stored.image_size) else None
-    detections = detect_markers(image, cfg.markers.dictionary, expected=expected, search_ids=cfg.markers.layout)
+    detections = detect_markers(image, cfg.markers.dictionary, expected=expected, search_ids=cfg.markers.layout,
+                                tone_power=stored.tone_power)
     if not detections:       # nothing to compare: not "moved", and not a photo to calibrate from
         raise CalibrationError(f"{photo}: no {cfg.markers.dictionary} markers seen, so the camera cannot be checked; "
                                "check the light and that the markers are in view")
