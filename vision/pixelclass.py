@@ -72,9 +72,9 @@ def class_distance(lab, ref_lab):
 
 
 def _table_masks(planes, background) -> tuple[np.ndarray, np.ndarray]:
-    """(foreground, unlike the table for an unknown colour): pixels farther from every colour of the
-    table (:class:`Bench`) than that colour's limit, max(12, 4 x its own spread), and farther than 25
-    from them all. ``background`` is a :class:`Bench` or None (everything counts)."""
+    """(foreground, unlike the table for an unknown colour): pixels beyond the table's limit from its
+    colours (:class:`Bench`), and farther than 25 from them. ``background`` is a :class:`Bench` or None
+    (everything counts)."""
     if background is None:
         every = np.ones(planes[0].shape, bool)
         return every, every
@@ -118,12 +118,17 @@ def label_dtype(n_classes: int):
 
 
 def _candidates(planes, classes: dict, background) -> np.ndarray:
-    """Pixels worth a full-resolution look."""
-    fg, unlike_table = _table_masks(planes, background)
-    near = _saturated(planes) & unlike_table
+    """Pixels worth a full-resolution look (the table test only where a class colour is near or the
+    colour is saturated: a few per cent of the pixels)."""
+    near_class = np.zeros(planes[0].shape, bool)
     for cls in classes.values():
-        near |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
-    return near & fg
+        near_class |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
+    saturated = _saturated(planes)
+    where = np.nonzero(near_class | saturated)
+    fg, unlike_table = _table_masks([p[where] for p in planes], background)
+    out = np.zeros(planes[0].shape, bool)
+    out[where] = fg & (near_class[where] | unlike_table)
+    return out
 
 
 @dataclass(frozen=True)
@@ -144,31 +149,44 @@ class Bench:
     limit: float               # CIE76
 
     @classmethod
-    def fit(cls, lab: np.ndarray, iterations: int = 8) -> "Bench":
+    def fit(cls, lab: np.ndarray, class_labs=None, iterations: int = 8) -> "Bench":
         """The table's colours from its samples (N, 3) (CIELAB). Three, else two colours by k-means
         (started at evenly spaced percentiles of lightness: deterministic); they are the table's when
         each holds at least 10 % of the samples (parts cover a few per cent of the work area) and every
-        two lie farther apart than their limit (distinct at that model's own resolution). Else one
-        colour: the median and spread of all samples, what a plain bench always had."""
+        two lie farther apart than their limit, from the spread of the samples about the mixes
+        (distinct at that model's own resolution). Else one colour: the median and spread of all
+        samples, what a plain bench always had (also when that limit is already the tightest, 12, or
+        when no colour of ``class_labs`` (K, 3) lies within it: then nothing is lost to it)."""
         lab = np.asarray(lab, np.float32)
         median = np.median(lab, axis=0).astype(np.float32)
         single = cls(median[None], _limit(np.sum((lab - median) ** 2, axis=1)))
-        planes = tuple(lab.T.copy())
+        if single.limit <= _FOREGROUND_MIN or len(lab) < 30:
+            return single                     # as tight as a table can be: nothing to gain
+        if class_labs is not None and len(class_labs):
+            inside, _ = single.excess2(tuple(np.asarray(class_labs, np.float32).T.copy()))
+            if (inside > 0).all():
+                return single                 # no class colour is lost to it: nothing to gain
+        lab = lab[:: max(1, len(lab) // 500)]   # k-means on about 500 of them (1 ms on all 2 000)
         order = np.argsort(lab[:, 0], kind="stable")
         for k in (3, 2):
-            if len(lab) < 10 * k:
-                continue
-            ends = lab[order[((2 * np.arange(k) + 1) * len(lab)) // (2 * k)]].copy()
-            for _ in range(iterations):
-                which = np.argmin(np.stack([_distance2(planes, e) for e in ends]), axis=0)
-                shares = np.bincount(which, minlength=k) / len(lab)
-                if shares.min() < 0.1:
+            ends, which = lab[order[((2 * np.arange(k) + 1) * len(lab)) // (2 * k)]], None
+            for _ in range(iterations):       # k-means (means: cheap), then each cluster's median
+                nearest = np.argmin(np.sum(ends * ends, axis=1) - 2 * lab @ ends.T, axis=1)
+                if which is not None and np.array_equal(nearest, which):
                     break
-                ends = np.stack([np.median(lab[which == j], axis=0) for j in range(k)]).astype(np.float32)
-            if shares.min() < 0.1:
-                continue
-            many = cls(ends, 0.0)
-            many = cls(ends, _limit(many.distance2(planes)))
+                which = nearest
+                member = np.eye(k, dtype=np.float32)[which]
+                counts = member.sum(axis=0)
+                if counts.min() < 0.1 * len(lab):
+                    break
+                ends = (member.T @ lab) / counts[:, None]
+            gaps = [float(np.sum((ends[i] - ends[j]) ** 2)) for i in range(k) for j in range(i)]
+            if counts.min() < 0.1 * len(lab) or min(gaps) <= _FOREGROUND_MIN ** 2:
+                continue                      # a colour of 10 %, and no two closer than any limit can be
+            ends = np.stack([np.median(lab[which == j], axis=0) for j in range(k)]).astype(np.float32)
+            planes = tuple(lab.T.copy())
+            d2 = np.min([_segment_distance2(planes, ends[j], ends[i]) for i in range(k) for j in range(i)], axis=0)
+            many = cls(ends, _limit(d2))
             gaps = [float(np.sum((ends[i] - ends[j]) ** 2)) for i in range(k) for j in range(i)]
             if min(gaps) > many.limit ** 2:
                 return many
@@ -282,7 +300,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     lab_small = balanced_lab(small, gain)
     planes = cv2.split(lab_small)
     table = [p[::4, ::4][valid_small[::4, ::4]] for p in planes]   # the table: parts cover a few % of it
-    background = Bench.fit(np.stack(table, axis=1)) if len(table[0]) else None
+    background = Bench.fit(np.stack(table, axis=1), [c.lab for c in classes.values()]) if len(table[0]) else None
     candidate = _candidates(planes, classes, background) & valid_small
     near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
     n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)

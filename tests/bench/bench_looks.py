@@ -209,7 +209,7 @@ def main(argv=None) -> None:
             print(_line(name, r) + f"  ({time.perf_counter() - t0:.0f} s)", flush=True)
             for msg in r.refusals[:6]:
                 print(f"    refusal: {msg}")
-            for msg, n in r.warnings.items():
+            for msg, n in sorted(r.warnings.items(), key=lambda kv: -kv[1])[:4]:
                 print(f"    warning ({n} photos): {msg}")
             if args.verbose:
                 print(f"    verdicts: {r.statuses}")
