@@ -77,6 +77,10 @@ CONDITIONS: dict[str, dict] = {
     "under 0.4x": {"lighting": {"brightness": 0.4}},
     "over 1.8x": {"lighting": {"brightness": 1.8}},
     "vignette 40%": {"lighting": {"vignette": 0.5}},
+    "hard shadows": {"lighting": {"light_elevation_deg": 25.0, "shadow": 0.8, "shadow_blur_mm": 0.3, "ambient": 0.15}},
+    "spot light": {"lighting": {"spot_radius_mm": 200.0, "spot_centre_mm": [150.0, 120.0], "spot_floor": 0.35}},
+    "hard shadows, orange": {"table_lab": (65.0, 35.0, 60.0),
+                             "lighting": {"light_elevation_deg": 25.0, "shadow": 0.8, "shadow_blur_mm": 0.3}},
     # lens and sensor
     "barrel k1 -0.3": {"camera": {"k1": -0.3, "k2": 0.0}},
     "pincushion k1 +0.2": {"camera": {"k1": 0.2, "k2": 0.0, "focal_scale": 0.85}},
@@ -84,6 +88,10 @@ CONDITIONS: dict[str, dict] = {
     "4000x3000": {"camera": {"width_px": 4000, "height_px": 3000}},
     "600x450": {"camera": {"width_px": 600, "height_px": 450}},
     "jpeg 40": {"sensor": {"jpeg_quality": 40}},
+    "noise 8, blur 1.2": {"sensor": {"noise": 8.0, "blur_px": 1.2}},
+    "tilt 6 deg": {"camera": {"tilt_deg": 6.0, "tilt_azimuth_deg": 200.0}},
+    "camera 620 mm": {"camera": {"centre_mm": [202.5, 0.0, 620.0]}},
+    "camera 950 mm": {"camera": {"centre_mm": [202.5, 0.0, 950.0]}},
     # markers
     "markers 25 mm": {"cell": _markers(size_mm=25)},
     "markers 60 mm": {"cell": _markers(size_mm=60)},
