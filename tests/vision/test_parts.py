@@ -500,3 +500,23 @@ def test_shadows_on_an_orange_cloth_are_not_red_parts():
         statuses |= {p.status for p in detection.parts}
     assert total.recall == 1.0 and total.false_parts == 0 and total.rms_mm <= 0.3
     assert statuses == {"ok"}
+
+
+def test_a_class_of_the_tables_colour_is_said():
+    """A yellow class paled to (78, 4, 22) on the plywood (74, 1.5, 9): CIE76 13.9 from the bench (hand
+    computed), within its 4-sigma limit (15-20 on these photos): its parts may be lost, and the photo's
+    notes say so; the other classes get no note and are all found."""
+    data = sample_cell_data()
+    data["parts"]["yellow"]["lab"] = [78.0, 4.0, 22.0]
+    cell = parse_cell(data)
+    rng = np.random.default_rng(7)
+    r = render_scene(cell, random_scene(cell, rng, (6, 8)))
+    detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+    [note] = detection.notes
+    assert note.startswith("parts.yellow: its colour is the table's here")
+    distance = float(note.split("CIE76 ")[1].split(" ")[0])
+    assert distance == pytest.approx(np.linalg.norm(np.subtract([78, 4, 22], [74, 1.5, 9])), abs=1.5)
+    others = [p for p in r.truth["parts"] if p["class"] != "yellow"]
+    assert len(others) >= 3
+    found = {p.class_name for p in detection.parts if p.status == "ok"}
+    assert {p["class"] for p in others} <= found
