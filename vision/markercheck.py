@@ -12,7 +12,10 @@ more than that, and each is read here on the linearised image through the refine
 2. **the border is ink**: every border cell below 0.5 (decided or not);
 3. **the quiet zone is paper**: a ring of samples half a cell outside the black square, one beside
    each border cell, reads at least :data:`RING_LEVEL` of the way from ink to white on nearly all of
-   them (a cutting-mat cell is ringed by a thin grid line and the next dark cell);
+   them (a cutting-mat cell is ringed by a thin grid line and the next dark cell), either in the whole
+   marker's levels or in the light of the border cell beside it (ink and white scaled by that cell's
+   ink over the median ink: a hard shadow across a marker darkens its paper and ink alike; the shadow
+   of a raised marker's box over half a marker left 0.75 of its ring as paper, and the marker was lost);
 4. **contrast**: white minus ink at least 8 % of white (a flat smudge decodes to nothing real).
 
 The cell file's layout, duplicate ids and the size a calibration predicts are checked by the caller.
@@ -71,6 +74,14 @@ def _grid(n: int):
     return np.concatenate([cells, ring]).astype(np.float32), border.ravel()
 
 
+@functools.lru_cache(maxsize=8)
+def _ring_neighbours(n: int) -> np.ndarray:
+    """For each ring sample of :func:`_grid` (top, bottom, left, right rows of n), the index of the
+    border cell beside it (cells row-major, n x n)."""
+    k = np.arange(n)
+    return np.concatenate([k, (n - 1) * n + k, k * n, k * n + n - 1])
+
+
 def _square_to_quads_xy(uv: np.ndarray, quads: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """:func:`_square_to_quads` as x and y (M, K) each, float32 (the map as a 3 x 3 matrix per quad,
     applied to all points with one matrix product)."""
@@ -121,7 +132,13 @@ def marker_evidence(lin: np.ndarray, corners_px: np.ndarray, ids, dictionary_nam
     undecided = (~decided).sum(axis=1)
     border_ink = ((level < 0.5) | ~border[None]).all(axis=1)
     ring_level = (ring - ink[:, None]) / span[:, None]
-    ring_fraction = (ring_level >= RING_LEVEL).mean(axis=1)
+    # the same in the light of the border cell next to each ring sample (its ink level there): a shadow
+    # across the marker darkens paper and ink alike (the photo is linear), so paper in the shadow
+    # reads as paper against the ink beside it, not against the lit white
+    beside = cells[:, _ring_neighbours(n)]                                        # (M, 4 (n - 2) + 4)
+    light = np.clip(beside / np.maximum(ink, 1e-6)[:, None], 0.0, 1.0)            # 1: as lit as the ink's median
+    local_level = (ring - beside) / np.maximum(light * span[:, None], 1e-6)
+    ring_fraction = ((ring_level >= RING_LEVEL) | (local_level >= RING_LEVEL)).mean(axis=1)
     contrast = (white - ink) / np.maximum(white, 1e-6)
     bits = (n - 2) ** 2
     allowed = MAX_UNDECIDED + max(0, bits - 16) // 16

@@ -29,7 +29,7 @@ from dataclasses import dataclass, replace
 import cv2
 import numpy as np
 
-from gripsight.vision.pixelclass import block_size_px, classify_region, coarse_mask
+from gripsight.vision.pixelclass import block_size_px, classes_like_the_bench, classify_region, coarse_mask
 from gripsight.vision.polygon import points_in_polygon
 from gripsight.vision.markergeom import marker_paper_corners_mm
 from gripsight.vision.blobclass import choose_classes, shape_words, split_by_shape
@@ -221,6 +221,10 @@ def detect_parts(image_bgr: np.ndarray, mapping, camera_centre_mm, cell, detecti
     groups = colour_groups(cell.parts)
     classified = classify_region(image_bgr, region.rect, region.valid, region.valid_small, illumination, groups,
                                  region.block_px)
+    for name, d in classes_like_the_bench(classified.bench, cell.parts):
+        notes.append(f"parts.{name}: its colour is the table's here, or the table's in a shadow (CIE76 {d:.0f} from "
+                     f"it, within the table's own {classified.bench.limit:.0f}): its parts cannot be told from the "
+                     "table and may be missed; put another colour under them or give the class another colour")
     search = BlobSearch(image_bgr, classified, region.edge_band, mapping, cell, groups, parallax, seen_as, camera_centre_mm)
     outlines = [o for group, window in enumerate(classified.windows, start=1)
                 for o in outlines_in_window(search, group, window)]

@@ -38,7 +38,7 @@ import numpy as np
 from gripsight.vision.colour import delta_e_2000
 from gripsight.vision.whitebalance import balanced_lab, white_gain
 
-__all__ = ["ClassifiedRegion", "block_size_px", "classify_region", "classify_pixels", "class_distance", "coarse_mask",
+__all__ = ["Bench", "ClassifiedRegion", "classes_like_the_bench", "block_size_px", "classify_region", "classify_pixels", "class_distance", "coarse_mask",
            "LIGHTNESS_WEIGHT_KL", "label_dtype"]
 
 _UNKNOWN_CHROMA = 30.0
@@ -47,6 +47,7 @@ _FOREGROUND_MIN = 12.0        # CIE76: a part pixel differs from the table at le
 _BLOCKS = (8, 4, 2)           # coarse block sizes (px) to choose from, largest first
 _NEAR = 2.5                   # CIE76 candidates: within this many times a class's tolerance
 LIGHTNESS_WEIGHT_KL = 2.0     # CIEDE2000's kL for class colours (see the module docstring)
+_SHADOW_LIGHT = 0.2           # the table in shadow down to this fraction of the light is the table
 
 
 def _planes(lab: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
@@ -71,15 +72,14 @@ def class_distance(lab, ref_lab):
 
 
 def _table_masks(planes, background) -> tuple[np.ndarray, np.ndarray]:
-    """(foreground, unlike the table for an unknown colour): pixels whose CIE76 from the table's median
-    colour is beyond max(12, 4 x the table's own spread), and beyond 25. ``background`` is (median Lab,
-    spread) or None (everything counts)."""
+    """(foreground, unlike the table for an unknown colour): pixels beyond the table's limit from its
+    colours (:class:`Bench`), and farther than 25 from them. ``background`` is a :class:`Bench` or None
+    (everything counts)."""
     if background is None:
         every = np.ones(planes[0].shape, bool)
         return every, every
-    median, spread = background
-    d2 = _distance2(planes, median)
-    return d2 > max(_FOREGROUND_MIN, 4.0 * spread) ** 2, d2 > _UNKNOWN_FROM_TABLE ** 2
+    near2, d2 = background.excess2(planes)
+    return near2 > 0, d2 > _UNKNOWN_FROM_TABLE ** 2
 
 
 def _saturated(planes) -> np.ndarray:
@@ -118,12 +118,144 @@ def label_dtype(n_classes: int):
 
 
 def _candidates(planes, classes: dict, background) -> np.ndarray:
-    """Pixels worth a full-resolution look."""
-    fg, unlike_table = _table_masks(planes, background)
-    near = _saturated(planes) & unlike_table
+    """Pixels worth a full-resolution look (the table test only where a class colour is near or the
+    colour is saturated: a few per cent of the pixels)."""
+    near_class = np.zeros(planes[0].shape, bool)
     for cls in classes.values():
-        near |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
-    return near & fg
+        near_class |= _distance2(planes, cls.lab) < (_NEAR * cls.tolerance) ** 2
+    saturated = _saturated(planes)
+    where = np.nonzero(near_class | saturated)
+    fg, unlike_table = _table_masks([p[where] for p in planes], background)
+    out = np.zeros(planes[0].shape, bool)
+    out[where] = fg & (near_class[where] | unlike_table)
+    return out
+
+
+@dataclass(frozen=True)
+class Bench:
+    """The table's colours: one, or two or three with the mixes between each two (a chequered cloth,
+    papers with black text on wood: a block across the edge of a square or a letter is a mix), and how
+    far a part's colour must be from them: max(12, 4 x the table's spread about them, the scaled median
+    distance of its samples).
+
+    Why several: measured about one median, the spread of a two-colour table is half the distance
+    between its colours, so 4 x that put every part inside "the table" (a black-and-white check cloth:
+    spread 39-44, limit 155-175, no part found in any photo; papers with black text on plywood: spread
+    20, every part of that photo lost; bench_looks). About the colours and their mixes, the same cloth's
+    spread is that of each colour.
+    """
+
+    ends: np.ndarray           # (K, 3) float32 CIELAB, K = 1, 2 or 3
+    limit: float               # CIE76
+
+    @classmethod
+    def fit(cls, lab: np.ndarray, class_labs=None, iterations: int = 8) -> "Bench":
+        """The table's colours from its samples (N, 3) (CIELAB). Three, else two colours by k-means
+        (started at evenly spaced percentiles of lightness: deterministic); they are the table's when
+        each holds at least 10 % of the samples (parts cover a few per cent of the work area) and every
+        two lie farther apart than their limit, from the spread of the samples about the mixes
+        (distinct at that model's own resolution). Else one colour: the median and spread of all
+        samples, what a plain bench always had (also when that limit is already the tightest, 12, or
+        when no colour of ``class_labs`` (K, 3) lies within it: then nothing is lost to it)."""
+        lab = np.asarray(lab, np.float32)
+        median = np.median(lab, axis=0).astype(np.float32)
+        single = cls(median[None], _limit(np.sum((lab - median) ** 2, axis=1)))
+        if single.limit <= _FOREGROUND_MIN or len(lab) < 30:
+            return single                     # as tight as a table can be: nothing to gain
+        if class_labs is not None and len(class_labs):
+            inside, _ = single.excess2(tuple(np.asarray(class_labs, np.float32).T.copy()))
+            if (inside > 0).all():
+                return single                 # no class colour is lost to it: nothing to gain
+        lab = lab[:: max(1, len(lab) // 500)]   # k-means on about 500 of them (1 ms on all 2 000)
+        order = np.argsort(lab[:, 0], kind="stable")
+        for k in (3, 2):
+            ends, which = lab[order[((2 * np.arange(k) + 1) * len(lab)) // (2 * k)]], None
+            for _ in range(iterations):       # k-means (means: cheap), then each cluster's median
+                nearest = np.argmin(np.sum(ends * ends, axis=1) - 2 * lab @ ends.T, axis=1)
+                if which is not None and np.array_equal(nearest, which):
+                    break
+                which = nearest
+                member = np.eye(k, dtype=np.float32)[which]
+                counts = member.sum(axis=0)
+                if counts.min() < 0.1 * len(lab):
+                    break
+                ends = (member.T @ lab) / counts[:, None]
+            gaps = [float(np.sum((ends[i] - ends[j]) ** 2)) for i in range(k) for j in range(i)]
+            if counts.min() < 0.1 * len(lab) or min(gaps) <= _FOREGROUND_MIN ** 2:
+                continue                      # a colour of 10 %, and no two closer than any limit can be
+            ends = np.stack([np.median(lab[which == j], axis=0) for j in range(k)]).astype(np.float32)
+            planes = tuple(lab.T.copy())
+            d2 = np.min([_segment_distance2(planes, ends[j], ends[i]) for i in range(k) for j in range(i)], axis=0)
+            many = cls(ends, _limit(d2))
+            gaps = [float(np.sum((ends[i] - ends[j]) ** 2)) for i in range(k) for j in range(i)]
+            if min(gaps) > many.limit ** 2:
+                return many
+        return single
+
+    def excess2(self, planes) -> tuple[np.ndarray, np.ndarray]:
+        """(squared distance to the table's colours minus the squared limit there: > 0 outside the
+        table; squared distance), per pixel of colours as L, a, b planes. The table's colours: each
+        colour, the mixes of each two (the limit), and each colour in a shadow down to a fifth of the
+        light (:func:`in_shadow`; there the table's colours and their spread shrink with the cube root
+        of the light, so the limit does: a cone)."""
+        limit2 = np.float32(self.limit * self.limit)
+        excess = d2 = None
+        for i, end in enumerate(self.ends):
+            e2, t = _segment_distance2(planes, end, in_shadow(end, _SHADOW_LIGHT), along=True)
+            scale = 1 - t * np.float32(1 - np.cbrt(_SHADOW_LIGHT))
+            x = e2 - limit2 * scale * scale
+            excess = x if excess is None else np.minimum(excess, x)
+            d2 = e2 if d2 is None else np.minimum(d2, e2)
+            for j in range(i):
+                e2 = _segment_distance2(planes, self.ends[j], end)
+                excess = np.minimum(excess, e2 - limit2)
+                d2 = np.minimum(d2, e2)
+        return excess, d2
+
+    def distance2(self, planes) -> np.ndarray:
+        """Squared CIE76 distance of colours (as L, a, b planes) to the table's colours (see excess2)."""
+        return self.excess2(planes)[1]
+
+
+def in_shadow(lab, light: float) -> np.ndarray:
+    """A colour (CIELAB, (..., 3)) under ``light`` times the light: linear RGB (so X, Y, Z) scale by it,
+    and CIELAB's cube root turns that into L* + 16, a*, b* scaling by its cube root (CIE 1976: L* =
+    116 f(Y) - 16, a* = 500 (f(X) - f(Y)), b* = 200 (f(Y) - f(Z)), f the cube root above Y = 0.0089;
+    from memory). Why the table needs it: a shadow on a coloured cloth is the cloth's colour in less
+    light, 15-25 darker in L*, beyond the table's limit; on an orange cloth it lay within a red class's
+    tolerance and was cut out as red parts (bench_looks: 4 false red parts in 8 photos)."""
+    lab = np.asarray(lab, np.float32)
+    k = np.float32(np.cbrt(light))
+    return np.concatenate([k * (lab[..., :1] + 16) - 16, k * lab[..., 1:]], axis=-1)
+
+
+def classes_like_the_bench(bench: Bench | None, classes: dict) -> list[tuple[str, float]]:
+    """(name, CIE76 distance) of the classes whose colour lies within the table's limit: no pixel of
+    their parts can be told from the table (a pale class on a pale bench, a class the colour of the
+    cloth); their parts are lost, and the photo must say so."""
+    if bench is None or not classes:
+        return []
+    labs = np.array([c.lab for c in classes.values()], np.float32)
+    excess, d2 = bench.excess2(tuple(labs.T.copy()))
+    return [(name, float(np.sqrt(d))) for name, e, d in zip(classes, excess, d2) if e <= 0]
+
+
+def _limit(d2: np.ndarray) -> float:
+    """max(12, 4 x the spread): the spread the scaled median of distances (squared, CIE76)."""
+    return max(_FOREGROUND_MIN, 4.0 * 1.4826 * float(np.sqrt(np.median(d2))))
+
+
+def _segment_distance2(planes, a, b, along: bool = False):
+    """Squared CIE76 distance of colours (as L, a, b planes) to the segment from colour a to colour b
+    (and, if ``along``, where on it the nearest point is, 0 at a to 1 at b)."""
+    ab = np.asarray(b, np.float32) - np.asarray(a, np.float32)
+    t = sum((p - np.float32(a_c)) * np.float32(ab_c) for p, a_c, ab_c in zip(planes, a, ab))
+    t = np.clip(t / np.float32(max(float(ab @ ab), 1e-6)), 0, 1)
+    d = None
+    for p, a_c, ab_c in zip(planes, a, ab):
+        e = p - (np.float32(a_c) + t * np.float32(ab_c))
+        d = e * e if d is None else d + e * e
+    return (d, t) if along else d
 
 
 @dataclass(frozen=True)
@@ -131,7 +263,8 @@ class ClassifiedRegion:
     """The classified pixels of a searched rectangle at ``origin`` (photo px): ``label`` (class index + 1,
     0 none, K + 1 unknown) and ``delta_e`` (CIEDE2000 to the class; meaningful where labelled). Every
     labelled pixel belongs to one connected group of candidate blocks (``groups``, coarse, 1-based);
-    ``windows[g - 1]`` is the rectangle (x, y, w, h; rectangle px) of group g."""
+    ``windows[g - 1]`` is the rectangle (x, y, w, h; rectangle px) of group g; ``bench`` the table's
+    colours measured there (None: no table in view)."""
 
     origin: tuple[int, int]
     label: np.ndarray
@@ -139,6 +272,7 @@ class ClassifiedRegion:
     groups: np.ndarray
     windows: list[tuple[int, int, int, int]]
     block_px: int
+    bench: Bench | None = None
 
     def group_at(self, x: int, y: int) -> int:
         """The group of the pixel at column x, row y of the rectangle."""
@@ -166,17 +300,14 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     lab_small = balanced_lab(small, gain)
     planes = cv2.split(lab_small)
     table = [p[::4, ::4][valid_small[::4, ::4]] for p in planes]   # the table: parts cover a few % of it
-    background = None
-    if len(table[0]):
-        median = np.median(np.stack(table), axis=1).astype(np.float32)
-        background = (median, 1.4826 * float(np.sqrt(np.median(_distance2(table, median)))))
+    background = Bench.fit(np.stack(table, axis=1), [c.lab for c in classes.values()]) if len(table[0]) else None
     candidate = _candidates(planes, classes, background) & valid_small
     near = cv2.dilate(candidate.astype(np.uint8), np.ones((3, 3), np.uint8))
     n, groups, stats, _ = cv2.connectedComponentsWithStats(near, connectivity=8)
     label = np.zeros((h, w), label_dtype(len(classes)))
     delta_e = np.zeros((h, w), np.float32)
     if n <= 1:
-        return ClassifiedRegion((u0, v0), label, delta_e, groups, [], f)
+        return ClassifiedRegion((u0, v0), label, delta_e, groups, [], f, background)
     # the candidates' classes at the coarse resolution; a block whose 4 neighbours all agree is inside
     # a part and keeps its class, the rest (the parts' edges) are classified pixel by pixel
     cy, cx = np.nonzero(candidate)
@@ -201,7 +332,7 @@ def classify_region(image_bgr: np.ndarray, rect, valid: np.ndarray, valid_small:
     label_blocks[by, bx] = classes_of.reshape(-1, f, f) * ok
     de_blocks[by, bx] = np.where(ok, distances.reshape(-1, f, f), np.float32(0))
     windows = [tuple(int(c) * f for c in stats[i, :4]) for i in range(1, n)]
-    return ClassifiedRegion((u0, v0), label, delta_e, groups, windows, f)
+    return ClassifiedRegion((u0, v0), label, delta_e, groups, windows, f, background)
 
 
 def _blocks(image: np.ndarray, f: int, rows: int, cols: int) -> np.ndarray:

@@ -435,3 +435,88 @@ def test_searched_region_is_the_whole_photo_computation():
                     assert np.array_equal(getattr(got, name), getattr(want, name)), name
                 cases += 1
     assert cases == 144 and len(_REGION_CACHE) <= 8
+
+
+@pytest.mark.parametrize("surface", ["checker_cloth", "printed_text"])
+def test_two_coloured_benches_are_two_colours(surface):
+    """A black-and-white check cloth or papers with black text on plywood: the bench is two colours and
+    the mixes between them, so its spread is each colour's, not half the distance between them (one
+    median put every part inside the bench's 155-175 CIE76: no part in any check-cloth photo)."""
+    cell = parse_cell(sample_cell_data())
+    rng = np.random.default_rng(7)
+    total = Score()
+    for _ in range(2):
+        r = render_scene(cell, random_scene(cell, rng, surface=surface))
+        detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+    assert total.recall == 1.0 and total.false_parts == 0 and total.rms_mm <= 0.3
+
+
+def test_bench_of_two_colours_and_of_one():
+    """The bench model against colours made up to be one or two: the ends at the two colours' medians,
+    the limit from the spread about the segment (a mix of the two lies on it: 50 % black and white in
+    linear light is L 76 in CIELAB (CIE 1976 L* of Y = 0.5: 116 x 0.5^(1/3) - 16 = 76.1, hand-computed))."""
+    from gripsight.vision.pixelclass import Bench
+
+    rng = np.random.default_rng(0)
+    black = rng.normal([18, 0, 0], 1.0, (600, 3))
+    white = rng.normal([90, 0, 2], 1.0, (600, 3))
+    mixes = np.column_stack([rng.uniform(18, 90, 200), np.zeros(200), np.linspace(0, 2, 200)])
+    two = Bench.fit(np.vstack([black, white, mixes]))
+    np.testing.assert_allclose(two.ends, [[18, 0, 0], [90, 0, 2]], atol=0.5)
+    assert two.limit == 12.0                               # spread ~1 about the segment: the floor
+    probes = np.array([[76.1, 0, 1], [36, 18, -55], [50, 0, 30]], np.float32)   # a 50 % mix, blue, 30 off
+    outside, _ = two.excess2(tuple(probes.T.copy()))
+    assert list(outside > 0) == [False, True, True]
+    plain = rng.normal([74, 1.5, 9], 2.0, (1000, 3))
+    one = Bench.fit(plain)                               # one colour: the median and spread as always
+    spread = 1.4826 * np.sqrt(np.median(np.sum((plain - np.median(plain, axis=0)) ** 2, axis=1)))
+    np.testing.assert_allclose(one.ends, [np.median(plain, axis=0)], atol=1e-4)
+    assert one.limit == pytest.approx(max(12.0, 4 * spread), rel=1e-5)
+
+
+def test_a_colour_in_shadow_is_its_cielab_scaled_as_colour_science_gives():
+    """``in_shadow``: XYZ times the light, through colour-science's XYZ -> CIELAB (the reference)."""
+    from gripsight.vision.pixelclass import in_shadow
+
+    rng = np.random.default_rng(0)
+    xyz = rng.uniform(0.05, 0.9, (200, 3))
+    for light in (0.2, 0.5, 0.9):
+        np.testing.assert_allclose(in_shadow(colour.XYZ_to_Lab(xyz), light), colour.XYZ_to_Lab(xyz * light),
+                                   atol=1e-3)
+
+
+def test_shadows_on_an_orange_cloth_are_not_red_parts():
+    """The cloth's colour in a part's shadow (0.55 of the light) is 15 darker in L* than the cloth and
+    lay within the red class's tolerance: it was cut out as red parts, 4 in 8 photos (bench_looks)."""
+    cell = parse_cell(sample_cell_data())
+    rng = np.random.default_rng(7)
+    total, statuses = Score(), set()
+    for _ in range(3):
+        scene = random_scene(cell, rng).model_copy(update={"table_lab": [65.0, 35.0, 60.0]})
+        r = render_scene(cell, scene)
+        detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+        total = total.add(score(detection.parts, r.truth, cell.work_area))
+        statuses |= {p.status for p in detection.parts}
+    assert total.recall == 1.0 and total.false_parts == 0 and total.rms_mm <= 0.3
+    assert statuses == {"ok"}
+
+
+def test_a_class_of_the_tables_colour_is_said():
+    """A yellow class paled to (78, 4, 22) on the plywood (74, 1.5, 9): CIE76 13.9 from the bench (hand
+    computed), within its 4-sigma limit (15-20 on these photos): its parts may be lost, and the photo's
+    notes say so; the other classes get no note and are all found."""
+    data = sample_cell_data()
+    data["parts"]["yellow"]["lab"] = [78.0, 4.0, 22.0]
+    cell = parse_cell(data)
+    rng = np.random.default_rng(7)
+    r = render_scene(cell, random_scene(cell, rng, (6, 8)))
+    detection, _ = detect_with_own_calibration(r.image_bgr, cell)
+    [note] = detection.notes
+    assert note.startswith("parts.yellow: its colour is the table's here")
+    distance = float(note.split("CIE76 ")[1].split(" ")[0])
+    assert distance == pytest.approx(np.linalg.norm(np.subtract([78, 4, 22], [74, 1.5, 9])), abs=1.5)
+    others = [p for p in r.truth["parts"] if p["class"] != "yellow"]
+    assert len(others) >= 3
+    found = {p.class_name for p in detection.parts if p.status == "ok"}
+    assert {p["class"] for p in others} <= found
