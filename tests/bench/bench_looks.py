@@ -28,9 +28,8 @@ from gripsight.app.cellfile import load_cell
 from gripsight.app.errors import GripsightError
 from gripsight.app.photoset import demo_camera_spec, write_photo
 from gripsight.app.pipeline import analyse_photo
-from gripsight.vision.calibration import calibrate
 from gripsight.vision.errors import VisionError
-from gripsight.vision.markers import detect_markers
+from gripsight.vision.tonecurve import calibrate_photo
 from gripsight.vision.photo import read_photo
 from gripsight.vision.synth.render import render_scene
 from gripsight.vision.synth.scene import LightingSpec, SensorSpec, make_camera, random_scene
@@ -153,10 +152,9 @@ def run_look(name: str, look: dict, n: int, seed: int, folder: Path) -> _Result:
     calib_photo = write_photo(folder / "calibration.jpg", render_scene(cell, calib_scene), quality)
     try:
         image = read_photo(calib_photo)
-        seen = detect_markers(image, cell.markers.dictionary, search_ids=cell.markers.layout)
-        res.calib_markers = f"{len(seen)}/{len(cell.markers.layout)}"
-        cal = calibrate(seen, cell,
-                        (image.shape[1], image.shape[0]), str(calib_photo))
+        cal, seen = calibrate_photo(image, cell, str(calib_photo))       # as `gripsight calibrate` does
+        res.calib_markers = f"{len(seen)}/{len(cell.markers.layout)}, " + (
+            "sRGB" if cal.tone_power is None else f"code^{cal.tone_power:g}")        # the grey-to-light curve found
         path = folder / "calibration.yaml"
         write_calibration(path, cal, cell, calib_photo)
         stored = read_calibration(path)
