@@ -59,8 +59,9 @@ class _Seen:
 class PhotoWatcher:
     """Photos of ``folder`` as they are completely written, each once, in name order (see the module).
 
-    Iterate over it; the iteration ends when ``stop`` (a threading.Event) is set or, with ``idle_stop_s``,
-    when no photo was handed over for that long and none is being written. Ctrl-C ends it as usual
+    Iterate over it; the iteration ends when ``stop`` (a threading.Event) is set, when the folder itself is
+    gone (``gone`` is then True) or, with ``idle_stop_s``, when no photo was handed over for that long and
+    none is being written. Ctrl-C ends it as usual
     (KeyboardInterrupt in the iterating thread).
 
     Parameters
@@ -97,6 +98,7 @@ class PhotoWatcher:
         self._lock = threading.Lock()
         self._wake = threading.Event()
         self._observer = None
+        self.gone = False                           # the folder was removed (or replaced) while watched
 
     # ---------------------------------------------------------------- watchdog events (another thread)
     def _is_photo(self, path: str) -> bool:
@@ -149,6 +151,9 @@ class PhotoWatcher:
         names = set()
         try:
             entries = list(os.scandir(self.folder))
+        except (FileNotFoundError, NotADirectoryError):
+            self.gone = True                         # the folder itself: nothing more can come
+            return
         except OSError:
             entries = []
         with self._lock:
@@ -205,6 +210,8 @@ class PhotoWatcher:
             while not self.stop.is_set():
                 now_s = time.monotonic()
                 self._scan(now_s)
+                if self.gone:
+                    return
                 for name in self._ready(now_s):
                     if self.stop.is_set():
                         return

@@ -125,13 +125,13 @@ def markers(
 ):
     """Write a printable sheet of the layout's markers at true size, with a 100 mm scale bar."""
     from gripsight.app.cellfile import load_cell
-    from gripsight.app.errors import GripsightError
+    from gripsight.app.errors import UsageError
     from gripsight.app.sheet import PAPER_MM, write_marker_sheet
 
     if paper not in PAPER_MM:
-        raise GripsightError(f"--paper: expected a4 or letter, got '{paper}'")
+        raise UsageError(f"--paper: expected a4 or letter, got '{paper}'")
     if out.suffix.lower() not in (".pdf", ".png"):
-        raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
+        raise UsageError(f"--out: give a .pdf or .png file name, got '{out}'")
     cfg = load_cell(cell)
     paths = write_marker_sheet(cfg, out, paper, dpi)
     grip = cfg.markers.on_gripper
