@@ -298,15 +298,15 @@ def run(
         again = " --watch" if watch else ""
         console.print(f"interrupted after {len(result.photos)}{of} photos; every finished photo's outputs "
                       f"are complete; resume with: gripsight run {folder} --out {out} --resume{again}")
-    if source is not None and source.gone:
-        raise InputError(f"{folder}: the watched folder is gone (removed, renamed or replaced) after "
-                         f"{len(result.photos)} photos; the arm went home and run.csv is written; when the "
-                         f"folder is back, go on with: gripsight run {folder} --out {out} --resume --watch")
         raise typer.Exit(130)
     if result.stopped:
         console.print(f"stopped: {result.stopped}")
         raise typer.Exit(4)
     console.print(f"wrote {out / 'run.csv'} and one folder per photo under {out}")
+    if source is not None and source.gone:
+        raise InputError(f"{folder}: the watched folder is gone (removed, renamed or replaced) after "
+                         f"{len(result.photos)} photos; the arm went home and run.csv is written; when the "
+                         f"folder is back, go on with: gripsight run {folder} --out {out} --resume --watch")
 
 
 @command()
