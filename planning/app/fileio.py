@@ -105,6 +105,16 @@ def cannot_write(path, exc: OSError):
     return GripsightError(f"{path}: cannot write ({what}){'; ' + hint.split('; ')[-1] if hint else ''}")
 
 
+def _refuse_special(target: Path) -> None:
+    """A device, FIFO or socket where a file is to be written is refused: the rename would replace the
+    node itself (as root, ``--overlay /dev/full`` replaced the device with a PNG)."""
+    if (target.exists() or target.is_symlink()) and not target.is_file():
+        from gripsight.app.errors import GripsightError
+
+        raise GripsightError(f"{target}: cannot write (not a regular file: a device, pipe or socket stands "
+                             "there); give another name")
+
+
 @contextlib.contextmanager
 def atomic_output(path: str | os.PathLike):
     """Yield a temporary path beside ``path``; on success it replaces ``path``, on error it is removed.
@@ -117,6 +127,7 @@ def atomic_output(path: str | os.PathLike):
     target = Path(path)
     if target.is_dir():
         raise cannot_write(target, IsADirectoryError(errno.EISDIR, os.strerror(errno.EISDIR)))
+    _refuse_special(target)
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
@@ -182,6 +193,7 @@ def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
     try:
         for path, data in items:
             target = Path(path)
+            _refuse_special(target)
             fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
             temps.append((tmp, target))
             with os.fdopen(fd, "wb") as fh:

@@ -11,7 +11,19 @@ from pathlib import Path
 
 from gripsight.app.errors import GripsightError
 
-__all__ = ["check_output_paths"]
+__all__ = ["check_output_paths", "check_picture_name"]
+
+#: the picture formats the matplotlib drawings are written in (chosen by the file name's suffix)
+PICTURE_SUFFIXES = (".png", ".jpg", ".jpeg", ".pdf", ".svg", ".tif", ".tiff", ".webp")
+
+
+def check_picture_name(option: str, path) -> None:
+    """A drawing's file name must say its format (matplotlib picks it from the suffix; without one it
+    read the temporary file's ``.tmp`` and failed)."""
+    from gripsight.app.errors import UsageError
+
+    if path is not None and Path(path).suffix.lower() not in PICTURE_SUFFIXES:
+        raise UsageError(f"{option}: give a picture file name ending in {', '.join(PICTURE_SUFFIXES)}, got '{path}'")
 
 
 def _same(a: Path, b: Path) -> bool:

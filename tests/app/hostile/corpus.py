@@ -353,6 +353,7 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
     lens_cell2 = copy.deepcopy(cell_data)
     lens_cell2["camera"].update(lens="file", lens_file=str(cdir / "no-lens.yaml"))
     cell_case("lens-file-missing", lens_cell2, fragment="no-lens.yaml", cmd="calibrate")
+    cell_case("lens-file-missing-validate", lens_cell2, fragment="no-lens.yaml")
     lens_yaml = cdir / "lens-4032.yaml"
     lens_yaml.write_text("image_width: 4032\nimage_height: 3024\ncamera_matrix: [[3000, 0, 2016], [0, 3000, 1512], [0, 0, 1]]\n"
                          "distortion_coefficients: [0, 0, 0, 0, 0]\n")
@@ -708,6 +709,16 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         "no-such-folder")
     add("run/watch-missing-folder", ["run", ndir / "no-such-folder", *CELL, *CAL, "--out", ndir / "o-missing-w", "--watch"],
         "error", BAD_INPUT, "no-such-folder", time_limit_s=20)
+    # ------------------------------------------------------------ outputs where a FIFO stands, pictures without a format
+    # (never a real device here: the suite may run as root, for whom the rename replaced /dev/full itself)
+    out_fifo = ndir / "fifo-out.png"
+    os.mkfifo(out_fifo)
+    for name, argv in {"detect-overlay": ["detect", photo, *CELL, *CAL, "--overlay", out_fifo],
+                       "reach-out": ["reach", cell_path, "--out", out_fifo],
+                       "init": ["init", out_fifo, "--force"]}.items():
+        add(f"out/fifo/{name}", argv, "error", FAILED, "not a regular file", time_limit_s=20,
+            check=lambda o, p=out_fifo: None if p.is_fifo() else f"{p} was replaced")
+    add("out/reach-no-suffix", ["reach", cell_path, "--out", ndir / "reach-picture"], "error", 2, "--out")
     # ------------------------------------------------------------ arm-fit's stops file
     grip_cell = _dump(ndir / "cell-with-gripper-marker.yaml", with_grip)
     header = "stop,start_s,end_s,base_deg,shoulder_deg,elbow_deg,base_us,shoulder_us,elbow_us,x_mm,y_mm,z_mm\n"
