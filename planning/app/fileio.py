@@ -17,7 +17,7 @@ import re
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "cannot_write", "strict_json", "write_text_atomic", "write_bytes_atomic", "output_dir",
+__all__ = ["atomic_output", "cannot_write", "strict_json", "utf8", "write_text_atomic", "write_bytes_atomic", "output_dir",
            "child_folder", "remove_leftover_temps", "write_files_atomic", "without_fsync"]
 
 # the temporary names of atomic_output: ".<stem>.<8 random chars from mkstemp>.tmp<suffix>"
@@ -157,9 +157,16 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
         Path(tmp).write_bytes(data)
 
 
+def utf8(text: str) -> bytes:
+    """The bytes of every text file written. A file name that is not UTF-8 (Python keeps its bytes as lone
+    surrogates, U+DC80-U+DCFF) is written as an escape (``\\udcff``): the file stays UTF-8 and the name
+    recognisable (a photo named with a Latin-1 byte was an internal error in batch.csv and joints.csv)."""
+    return text.encode("utf-8", "backslashreplace")
+
+
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
-    """Write UTF-8 text to ``path`` atomically."""
-    write_bytes_atomic(path, text.encode("utf-8"))
+    """Write UTF-8 text to ``path`` atomically (see :func:`utf8`)."""
+    write_bytes_atomic(path, utf8(text))
 
 
 def strict_json(data, indent: int | None = 2) -> str:

@@ -689,10 +689,11 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
                                  ("shift-1e300", ["--camera-shift-mm", "1e300"], "--camera-shift-mm"),
                                  ("distortion-1e300", ["--distortion", "1e300"], "--distortion"),
                                  ("white-balance-negative", ["--white-balance", "-1,1,1"], "--white-balance"),
-                                 ("seed-negative", ["--seed", "-1"], "--seed"),
                                  ("format-gif", ["--format", "gif"], "--format")]:
         add(f"render/{name}", ["render", cell_path, "--scenes", "1", *opts, "--out", ndir / f"o-render-{name}"], "error", 2,
             fragment)
+    add("misc/render-seed-negative", ["render", cell_path, "--scenes", "1", "--seed", "-1", "--out", ndir / "o-seed"],
+        "error", 2, "--seed")       # typer's own usage error (its "Error:" block, not our one line)
     scene = ndir / "scene-far.yaml"
     scene.write_text("parts: [{class: red, x_mm: 1.0e+308, y_mm: 0}]\n")
     add("render/scene-1e308", ["render", cell_path, "--scene", scene, "--out", ndir / "o-scene"], "error", BAD_INPUT, "x_mm")
@@ -719,6 +720,14 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         add(f"out/fifo/{name}", argv, "error", FAILED, "not a regular file", time_limit_s=20,
             check=lambda o, p=out_fifo: None if p.is_fifo() else f"{p} was replaced")
     add("out/reach-no-suffix", ["reach", cell_path, "--out", ndir / "reach-picture"], "error", 2, "--out")
+    # ------------------------------------------------------------ a photo whose file name is not UTF-8
+    odd = ndir / "odd-names"
+    odd.mkdir()
+    shutil.copy(photo, odd / os.fsdecode(b"bad\xffname.jpg"))
+    add("photo/name-not-utf8-batch", ["batch", odd, "-w", "1", *CELL, *CAL, "--out", ndir / "o-odd-batch"], "result", 0,
+        "batch.csv", check=_exists(ndir / "o-odd-batch" / "batch.csv"))
+    add("photo/name-not-utf8-run", ["run", odd, *CELL, *CAL, "--out", ndir / "o-odd-run"], "result", 0, "run.csv",
+        check=_exists(ndir / "o-odd-run" / "run.csv"))
     # ------------------------------------------------------------ arm-fit's stops file
     grip_cell = _dump(ndir / "cell-with-gripper-marker.yaml", with_grip)
     header = "stop,start_s,end_s,base_deg,shoulder_deg,elbow_deg,base_us,shoulder_us,elbow_us,x_mm,y_mm,z_mm\n"
