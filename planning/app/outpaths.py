@@ -56,6 +56,8 @@ def check_output_paths(files: dict | None = None, folders: dict | None = None, i
     for option, path in files.items():
         if path.is_dir():
             raise GripsightError(f"{path}: is a folder; {option} needs a file name inside or beside it")
+        if (path.exists() or path.is_symlink()) and not path.is_file():       # before the work, not after it
+            raise GripsightError(f"{path}: not a regular file (a device, pipe or socket); {option} needs a file name")
     for option, path in folders.items():
         if path.exists() and not path.is_dir():
             raise GripsightError(f"{path}: is a file, not a folder; give {option} a folder")

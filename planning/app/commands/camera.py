@@ -186,9 +186,10 @@ def calibrate(
     previous = _previous(out)
     _keep_previous_centre(cal, previous, (image.shape[1], image.shape[0]))
     _refuse_poor(cal, out, previous, force, photo, cell_path)
-    moved = write_calibration(out, cal, cfg, photo)
+    # the picture first: an overlay that cannot be written then leaves the previous calibration as it was
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
     write_bytes_atomic(overlay, buf.tobytes())
+    moved = write_calibration(out, cal, cfg, photo)
     if as_json:
         typer.echo(strict_json(calibration_record(cal, cfg, photo)))
         return

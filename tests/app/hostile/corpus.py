@@ -719,6 +719,18 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
                        "init": ["init", out_fifo, "--force"]}.items():
         add(f"out/fifo/{name}", argv, "error", FAILED, "not a regular file", time_limit_s=20,
             check=lambda o, p=out_fifo: None if p.is_fifo() else f"{p} was replaced")
+    kept = ndir / "kept-calibration.yaml"
+    kept.write_bytes(Path(CAL[1]).read_bytes())
+    add("out/fifo/calibrate-overlay-keeps-calibration", ["calibrate", calib_photo, *CELL, "--out", kept, "--overlay", out_fifo,
+                                                         "--force"], "error", FAILED, "not a regular file", time_limit_s=20,
+        check=lambda o, k=kept, b=kept.read_bytes(): None if k.read_bytes() == b else f"{k} was replaced by a failed command")
+    kept2 = ndir / "kept-calibration-2.yaml"
+    kept2.write_bytes(Path(CAL[1]).read_bytes())
+    add("out/calibrate-overlay-unwritable-keeps-calibration",
+        ["calibrate", calib_photo, *CELL, "--out", kept2, "--overlay", ndir / "a-file-not-a-folder.png" / "o.png", "--force"],
+        "error", FAILED, "a-file-not-a-folder.png",
+        check=lambda o, k=kept2, b=kept2.read_bytes(): None if k.read_bytes() == b else f"{k} was replaced by a failed command")
+    (ndir / "a-file-not-a-folder.png").write_text("x")
     add("out/reach-no-suffix", ["reach", cell_path, "--out", ndir / "reach-picture"], "error", 2, "--out")
     # ------------------------------------------------------------ a photo whose file name is not UTF-8
     odd = ndir / "odd-names"
