@@ -114,6 +114,10 @@ def lens_from_dict(d: dict | None):
     raise ValueError(f"lens.model: expected none, division or opencv, got {d['model']!r}")
 
 
+_FOCAL_PX = (1.0, 1.0e6)          # the focal lengths a lens file may give (px)
+_MAX_COEFFICIENT = 1.0e4          # the largest distortion coefficient a lens file may give
+
+
 def load_opencv_lens(path, image_size: tuple[int, int] | None = None) -> OpenCVLens:
     """Read OpenCV intrinsics from YAML: ``camera_matrix`` (3x3 list or OpenCV's {rows, cols, data})
     and ``distortion_coefficients`` (list or {data}); also accepts ``K`` and ``dist``.
@@ -161,12 +165,23 @@ def load_opencv_lens(path, image_size: tuple[int, int] | None = None) -> OpenCVL
         dist = matrix(data.get("distortion_coefficients", data.get("dist")), None)
     except (TypeError, ValueError):
         raise LensFileError(f"{path}: needs camera_matrix (3x3) and distortion_coefficients") from None
+    # what OpenCV's calibrateCamera writes: [[fx, s, cx], [0, fy, cy], [0, 0, 1]]; a focal length beyond
+    # 1-1e6 px or a coefficient beyond 1e4 is a typo (1e-300 or 1e308 would end in a failed SVD or a
+    # calibration of nonsense)
     if (dist.size not in (4, 5, 8, 12, 14) or not np.isfinite(K).all() or not np.isfinite(dist).all()
-            or K[0, 0] <= 0 or K[1, 1] <= 0):
+            or not (_FOCAL_PX[0] <= K[0, 0] <= _FOCAL_PX[1] and _FOCAL_PX[0] <= K[1, 1] <= _FOCAL_PX[1])
+            or np.abs(K[:2, 2]).max() > _FOCAL_PX[1] or np.any(K[2] != (0.0, 0.0, 1.0)) or K[1, 0] != 0
+            or np.abs(dist).max() > _MAX_COEFFICIENT):
         raise LensFileError(f"{path}: camera_matrix must be 3x3 with positive focal lengths and "
-                             f"distortion_coefficients 4, 5, 8, 12 or 14 numbers")
+                             f"distortion_coefficients 4, 5, 8, 12 or 14 numbers: [[fx, 0, cx], [0, fy, cy], "
+                             f"[0, 0, 1]], fx and fy 1-1e6 px, each coefficient within 1e4")
     made = (data.get("image_width"), data.get("image_height"))
-    if image_size is not None and all(isinstance(v, (int, float)) and v > 0 for v in made):
+    if any(v is not None for v in made) and not all(
+            isinstance(v, (int, float)) and not isinstance(v, bool) and 1 <= v <= 1e5 and float(v).is_integer()
+            for v in made):
+        raise LensFileError(f"{path}: image_width and image_height must both be whole pixel counts (1-100000), "
+                            f"got {made[0]!r} and {made[1]!r}")
+    if image_size is not None and all(v is not None for v in made):
         sx, sy = image_size[0] / made[0], image_size[1] / made[1]
         if abs(sx / sy - 1) > 0.01:
             raise LensFileError(f"{path}: made for {made[0]:g}x{made[1]:g} px photos, but the photo is "

@@ -151,6 +151,32 @@ def _whole_jpeg(p: Path, data: bytes) -> bytes:
     raise PhotoError(f"{p}: the JPEG is truncated (its data ends early); copy or take the photo again")
 
 
+def _whole_png(p: Path, data: bytes) -> bytes:
+    """The PNG up to its IEND chunk (bytes after it are dropped, as for a JPEG).
+
+    A PNG cut short or damaged is refused here, before decoding: libpng would print its own "PNG input
+    buffer is incomplete" or "IDAT: CRC error" on the terminal, a second line beside gripsight's (PNG,
+    ISO/IEC 15948 section 5.3: each chunk is a 4-byte length, a 4-byte type, the data and a CRC-32 of type
+    and data; IEND is the last).
+    """
+    import zlib
+
+    view = memoryview(data)
+    i = 8
+    while i + 12 <= len(data):
+        length = int.from_bytes(data[i:i + 4], "big")
+        end = i + 12 + length
+        if end > len(data):
+            break
+        if zlib.crc32(view[i + 4:end - 4]) != int.from_bytes(data[end - 4:end], "big"):
+            raise PhotoError(f"{p}: the PNG is damaged (its {data[i + 4:i + 8].decode('latin-1')} chunk fails its checksum); "
+                             "copy or take the photo again")
+        if data[i + 4:i + 8] == b"IEND":
+            return data[:end]
+        i = end
+    raise PhotoError(f"{p}: the PNG is truncated (its data ends early); copy or take the photo again")
+
+
 def _grey_filled_tail(image: np.ndarray) -> bool:
     """True when the bottom-right 16 x 16 block is exactly mid-grey: what libjpeg decodes for blocks
     missing from a JPEG cut short (zero coefficients), which no camera's noisy pixels give."""
@@ -198,6 +224,8 @@ def read_photo(path, max_pixels: int | None = None) -> np.ndarray:
                          "resize the photo or raise the limit")
     if data[:2] == b"\xff\xd8":
         data = _whole_jpeg(p, data)
+    elif data[:8] == b"\x89PNG\r\n\x1a\n":
+        data = _whole_png(p, data)
     image = cv2.imdecode(np.frombuffer(data, np.uint8), cv2.IMREAD_UNCHANGED)
     if image is None:
         raise PhotoError(f"{p}: not a readable image (truncated, or not a photo at all)")

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from gripsight.app.errors import GripsightError
+from gripsight.app.errors import GripsightError, InputError
 from gripsight.planning.armfit import ArmFit, MarkerMount, PixelModel, StopObservation
 
 __all__ = ["STOP_COLUMNS", "mount_of", "pixel_model", "marker_centre_px", "stops_csv_text", "read_stops",
@@ -72,25 +72,46 @@ class FoundStop:
     pulses_us: np.ndarray      # (3,)
 
 
+_MAX_STOPS_BYTES = 1024 * 1024      # arm-poses writes at most 60 stops: a few kB
+
+
 def read_stops(path) -> list[FoundStop]:
-    """Read a stops file written by ``arm-poses`` (the pulses are what the servos were sent)."""
+    """Read a stops file written by ``arm-poses`` (the pulses are what the servos were sent).
+
+    Raises
+    ------
+    InputError
+        Missing, not a regular file, not UTF-8, without the columns, or a row whose stop is not a whole
+        number >= 1 (or repeats one) or whose pulses are not finite and within 1-100,000 us (exit 2).
+    """
     path = Path(path)
+    if not path.exists():
+        raise InputError(f"{path}: no such stops file; write one with: gripsight arm-poses CELL --out DIR")
     if not path.is_file():
-        raise GripsightError(f"{path}: no such stops file; write one with: gripsight arm-poses CELL --out DIR")
+        raise InputError(f"{path}: not a regular file (a folder, pipe or device); give the stops.csv of arm-poses")
     try:
+        if path.stat().st_size > _MAX_STOPS_BYTES:
+            raise InputError(f"{path}: too large for a stops file (arm-poses writes a few kB)")
         lines = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln and not ln.startswith("#")]
     except (OSError, UnicodeDecodeError) as exc:
-        raise GripsightError(f"{path}: cannot be read as a stops file ({exc})") from None
+        raise InputError(f"{path}: cannot be read as a stops file ({exc})") from None
     rows = list(csv.DictReader(lines))
     need = {"stop", "base_us", "shoulder_us", "elbow_us"}
     if not rows or not need <= set(rows[0]):
-        raise GripsightError(f"{path}: not a stops file (needs columns {', '.join(sorted(need))})")
-    out = []
+        raise InputError(f"{path}: not a stops file (needs columns {', '.join(sorted(need))})")
+    out, seen = [], set()
     for n, row in enumerate(rows, 2):
         try:
-            out.append(FoundStop(int(row["stop"]), np.array([float(row[k]) for k in ("base_us", "shoulder_us", "elbow_us")])))
+            stop = int(row["stop"])
+            pulses_us = np.array([float(row[k]) for k in ("base_us", "shoulder_us", "elbow_us")])
         except (TypeError, ValueError):
-            raise GripsightError(f"{path}: line {n}: stop and pulses must be numbers") from None
+            raise InputError(f"{path}: line {n}: stop and pulses must be numbers") from None
+        if stop < 1 or stop in seen or not (np.isfinite(pulses_us).all() and (pulses_us >= 1).all()
+                                             and (pulses_us <= 1e5).all()):
+            raise InputError(f"{path}: line {n}: a stop number >= 1 seen once, and pulses of 1-100000 us, "
+                             f"expected; got stop {row['stop']!r}, pulses {', '.join(row[k] for k in ('base_us', 'shoulder_us', 'elbow_us'))}")
+        seen.add(stop)
+        out.append(FoundStop(stop, pulses_us))
     return out
 
 

@@ -431,6 +431,10 @@ def _run_dask(jobs, scheduler: str, progress) -> dict:
         client = Client(scheduler, timeout=20)
     except (OSError, TimeoutError) as exc:
         raise GripsightError(f"--scheduler {scheduler}: cannot reach the Dask scheduler ({exc})") from None
+    except (ValueError, TypeError) as exc:        # not an address at all (Dask's own parser says why)
+        from gripsight.app.errors import UsageError
+
+        raise UsageError(f"--scheduler: expected an address such as tcp://host:8786, got '{scheduler}' ({exc})") from None
     rows = {}
     try:
         futures = client.map(process_photo, jobs, pure=False)

@@ -19,7 +19,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError
 
 from gripsight.app.errors import CellFileError, Problem
-from gripsight.app.fileio import atomic_output, utc_now
+from gripsight.app.fileio import atomic_output, utc_now, utf8
 from gripsight.vision.calibration import Calibration, CentreSource, MarkerFit, Verdict
 from gripsight.vision.homography import TableMapping
 from gripsight.vision.lens import lens_from_dict
@@ -157,7 +157,7 @@ def write_calibration(path, cal: Calibration, cell, photo_path) -> Path | None:
         yaml.safe_dump(record, sort_keys=False, default_flow_style=None, width=140)
     moved = None
     with atomic_output(path) as tmp:
-        Path(tmp).write_bytes(text.encode("utf-8"))
+        Path(tmp).write_bytes(utf8(text))
         if path.is_file():
             moved = history_path(path, datetime.now(timezone.utc))
             moved.parent.mkdir(parents=True, exist_ok=True)

@@ -17,7 +17,8 @@ import math
 import os
 from typing import Annotated, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, PrivateAttr, ValidationError
+from pydantic_core import PydanticCustomError
 
 from gripsight.app.errors import CellFileError, Problem
 from gripsight.app.yamlfile import read_yaml
@@ -43,8 +44,19 @@ MAX_MARKERS = 1000
 #: a plan would need gigabytes: the cell is refused by validate rather than by the planner
 MAX_SAMPLES_PER_MOVE = 200_000
 
+#: the smallest size a cell can mean (1 um): 1e-300 is a typo too, and its square (an area) underflows to 0
+MIN_SIZE_MM = 1.0e-3
+
+
+def _not_vanishing(value: float) -> float:
+    if value < MIN_SIZE_MM:
+        raise PydanticCustomError("too_small_size", "must be at least {least} (1 um): a smaller size is a typo",
+                                  {"least": f"{MIN_SIZE_MM:g}"})
+    return value
+
+
 Number = Annotated[float, Field(allow_inf_nan=False, ge=-LIMIT_MM, le=LIMIT_MM)]
-PositiveMm = Annotated[float, Field(gt=0, allow_inf_nan=False, le=LIMIT_MM)]
+PositiveMm = Annotated[float, Field(gt=0, allow_inf_nan=False, le=LIMIT_MM), AfterValidator(_not_vanishing)]
 NonNegativeMm = Annotated[float, Field(ge=0, allow_inf_nan=False, le=LIMIT_MM)]
 # speeds: at least 1 mm/s or 1 deg/s (slower would take hours per move and millions of samples)
 SpeedMmS = Annotated[float, Field(ge=1, le=1.0e4, allow_inf_nan=False)]

@@ -20,6 +20,7 @@ __all__ = ["app", "main", "entry"]
 # ------------------------------------------------------------------ entry point
 def main(argv: Optional[list[str]] = None) -> int:
     """Run the command line with ``argv`` (default: sys.argv) and return the exit code."""
+    _escape_undecodable_names()
     try:
         result = app(args=argv, prog_name="gripsight", standalone_mode=False)
     except typer.Exit as exc:
@@ -32,6 +33,17 @@ def main(argv: Optional[list[str]] = None) -> int:
         _echo_err(f"error: {exc}") if show is None else show()
         return int(getattr(exc, "exit_code", 2))
     return result if isinstance(result, int) else 0
+
+
+def _escape_undecodable_names() -> None:
+    """A file name that is not UTF-8 reaches the terminal as lone surrogates, which a UTF-8 stdout refuses
+    (strict, outside the C locale): printed as an escape (``\\udcff``), as the files write it
+    (:func:`gripsight.app.fileio.utf8`), instead of an internal error after the work was done."""
+    for stream in (sys.stdout, sys.stderr):
+        try:
+            stream.reconfigure(errors="backslashreplace")
+        except (AttributeError, ValueError, OSError):      # not a text stream we may reconfigure: leave it
+            pass
 
 
 def entry() -> None:

@@ -14,7 +14,7 @@ import io
 
 import numpy as np
 
-from gripsight.app.fileio import output_dir, strict_json, utc_now, write_files_atomic
+from gripsight.app.fileio import output_dir, strict_json, utc_now, utf8, write_files_atomic
 from gripsight.app.textsafe import one_line
 from gripsight.planning.planresult import Plan
 from gripsight.planning.safety import SAFETY_LINES
@@ -162,8 +162,7 @@ def write_plan_outputs(out_dir, plan: Plan, cell, arm, photo: dict | None = None
     check_joint_file_text(text, cell, str(out / "joints.csv"))       # the whole file, before it is written
     # both new files written and flushed before either takes its name: a failure (a full disk) leaves
     # the old pair, never a new joints.csv beside an old plan.json
-    write_files_atomic([(out / "joints.csv", text.encode("utf-8")),
-                        (out / "plan.json", (strict_json(data) + "\n").encode("utf-8"))])
+    write_files_atomic([(out / "joints.csv", utf8(text)), (out / "plan.json", utf8(strict_json(data) + "\n"))])
     if plots:
         from gripsight.app.plan_plot import draw_joint_plot, draw_path_plot
 

@@ -17,7 +17,7 @@ import re
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_output", "cannot_write", "strict_json", "write_text_atomic", "write_bytes_atomic", "output_dir",
+__all__ = ["atomic_output", "cannot_write", "strict_json", "utf8", "write_text_atomic", "write_bytes_atomic", "output_dir",
            "child_folder", "remove_leftover_temps", "write_files_atomic", "without_fsync"]
 
 # the temporary names of atomic_output: ".<stem>.<8 random chars from mkstemp>.tmp<suffix>"
@@ -105,6 +105,16 @@ def cannot_write(path, exc: OSError):
     return GripsightError(f"{path}: cannot write ({what}){'; ' + hint.split('; ')[-1] if hint else ''}")
 
 
+def _refuse_special(target: Path) -> None:
+    """A device, FIFO or socket where a file is to be written is refused: the rename would replace the
+    node itself (as root, ``--overlay /dev/full`` replaced the device with a PNG)."""
+    if (target.exists() or target.is_symlink()) and not target.is_file():
+        from gripsight.app.errors import GripsightError
+
+        raise GripsightError(f"{target}: cannot write (not a regular file: a device, pipe or socket stands "
+                             "there); give another name")
+
+
 @contextlib.contextmanager
 def atomic_output(path: str | os.PathLike):
     """Yield a temporary path beside ``path``; on success it replaces ``path``, on error it is removed.
@@ -117,6 +127,7 @@ def atomic_output(path: str | os.PathLike):
     target = Path(path)
     if target.is_dir():
         raise cannot_write(target, IsADirectoryError(errno.EISDIR, os.strerror(errno.EISDIR)))
+    _refuse_special(target)
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
@@ -146,9 +157,16 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
         Path(tmp).write_bytes(data)
 
 
+def utf8(text: str) -> bytes:
+    """The bytes of every text file written. A file name that is not UTF-8 (Python keeps its bytes as lone
+    surrogates, U+DC80-U+DCFF) is written as an escape (``\\udcff``): the file stays UTF-8 and the name
+    recognisable (a photo named with a Latin-1 byte was an internal error in batch.csv and joints.csv)."""
+    return text.encode("utf-8", "backslashreplace")
+
+
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
-    """Write UTF-8 text to ``path`` atomically."""
-    write_bytes_atomic(path, text.encode("utf-8"))
+    """Write UTF-8 text to ``path`` atomically (see :func:`utf8`)."""
+    write_bytes_atomic(path, utf8(text))
 
 
 def strict_json(data, indent: int | None = 2) -> str:
@@ -182,6 +200,7 @@ def write_files_atomic(items: list[tuple[os.PathLike, bytes]]) -> None:
     try:
         for path, data in items:
             target = Path(path)
+            _refuse_special(target)
             fd, tmp = tempfile.mkstemp(prefix=f".{target.stem}.", suffix=f".tmp{target.suffix}", dir=target.parent)
             temps.append((tmp, target))
             with os.fdopen(fd, "wb") as fh:

@@ -2,7 +2,8 @@
 
 A camera (or a copy) writing a photo is not done until it closes the file. With ``watchdog`` (inotify on
 Linux) a photo is complete when the writer closes it (``IN_CLOSE_WRITE``) or when it is renamed into the
-folder (the usual write-then-rename); elsewhere, and for the photos already in the folder when the
+folder (the usual write-then-rename; from a folder not watched it comes as a creation never followed by a
+write, and counts as written once unchanged for ``settle_s``, not ``stall_s``); elsewhere, and for the photos already in the folder when the
 watch starts, a photo is complete when its size and modification time have not changed over
 ``settle_s`` (polling every ``poll_s``). Complete photos are handed over in name order; a complete
 photo waits while a photo with an earlier name is still being written (up to ``stall_s`` without a
@@ -59,8 +60,9 @@ class _Seen:
 class PhotoWatcher:
     """Photos of ``folder`` as they are completely written, each once, in name order (see the module).
 
-    Iterate over it; the iteration ends when ``stop`` (a threading.Event) is set or, with ``idle_stop_s``,
-    when no photo was handed over for that long and none is being written. Ctrl-C ends it as usual
+    Iterate over it; the iteration ends when ``stop`` (a threading.Event) is set, when the folder itself is
+    gone (``gone`` is then True) or, with ``idle_stop_s``, when no photo was handed over for that long and
+    none is being written. Ctrl-C ends it as usual
     (KeyboardInterrupt in the iterating thread).
 
     Parameters
@@ -94,9 +96,12 @@ class PhotoWatcher:
         self._seen: dict[str, _Seen] = {}
         self._before: set[str] = set()              # names in the folder before the file events started
         self._closed: set[str] = set()              # names closed/renamed in, from the event thread
+        self._created: set[str] = set()             # names created, from the event thread ...
+        self._written: set[str] = set()             # ... and written after (a file moved in is never written)
         self._lock = threading.Lock()
         self._wake = threading.Event()
         self._observer = None
+        self.gone = False                           # the folder was removed (or replaced) while watched
 
     # ---------------------------------------------------------------- watchdog events (another thread)
     def _is_photo(self, path: str) -> bool:
@@ -104,14 +109,19 @@ class PhotoWatcher:
         return p.parent == self.folder and not p.name.startswith(".") and p.suffix.lower() in self.suffixes
 
     def _event(self, event) -> None:
-        from watchdog.events import FileClosedEvent, FileMovedEvent
+        from watchdog.events import FileClosedEvent, FileCreatedEvent, FileModifiedEvent, FileMovedEvent
 
         if isinstance(event, FileClosedEvent) and self._is_photo(event.src_path):
             name = Path(event.src_path).name
         elif isinstance(event, FileMovedEvent) and self._is_photo(event.dest_path):
             name = Path(event.dest_path).name
         else:
-            self._wake.set()                         # created / modified: look again soon
+            # a file moved in from a folder not watched comes as "created" alone (inotify's unpaired
+            # IN_MOVED_TO): whole, with no write and no close to follow; a file created here is written
+            if isinstance(event, (FileCreatedEvent, FileModifiedEvent)) and self._is_photo(event.src_path):
+                with self._lock:
+                    (self._created if isinstance(event, FileCreatedEvent) else self._written).add(Path(event.src_path).name)
+            self._wake.set()                         # look again soon
             return
         with self._lock:
             self._closed.add(name)
@@ -149,6 +159,9 @@ class PhotoWatcher:
         names = set()
         try:
             entries = list(os.scandir(self.folder))
+        except (FileNotFoundError, NotADirectoryError):
+            self.gone = True                         # the folder itself: nothing more can come
+            return
         except OSError:
             entries = []
         with self._lock:
@@ -181,7 +194,9 @@ class PhotoWatcher:
             return False
         if s.closed:
             return True
-        settle_s = self.settle_s if not self.use_watchdog or name in self._before else self.stall_s
+        with self._lock:
+            moved_in = name in self._created and name not in self._written
+        settle_s = self.settle_s if not self.use_watchdog or name in self._before or moved_in else self.stall_s
         return now_s - s.since_s >= settle_s
 
     def _ready(self, now_s: float) -> list[str]:
@@ -205,6 +220,8 @@ class PhotoWatcher:
             while not self.stop.is_set():
                 now_s = time.monotonic()
                 self._scan(now_s)
+                if self.gone:
+                    return
                 for name in self._ready(now_s):
                     if self.stop.is_set():
                         return
@@ -212,6 +229,9 @@ class PhotoWatcher:
                         self.out_of_order.append(name)
                     self.handed.add(name)
                     del self._seen[name]
+                    with self._lock:
+                        self._created.discard(name)
+                        self._written.discard(name)
                     yield self.folder / name
                     last_s = time.monotonic()
                 if self.idle_stop_s is not None and not self._seen and time.monotonic() - last_s >= self.idle_stop_s:

@@ -11,7 +11,19 @@ from pathlib import Path
 
 from gripsight.app.errors import GripsightError
 
-__all__ = ["check_output_paths"]
+__all__ = ["check_output_paths", "check_picture_name"]
+
+#: the picture formats the matplotlib drawings are written in (chosen by the file name's suffix)
+PICTURE_SUFFIXES = (".png", ".jpg", ".jpeg", ".pdf", ".svg", ".tif", ".tiff", ".webp")
+
+
+def check_picture_name(option: str, path) -> None:
+    """A drawing's file name must say its format (matplotlib picks it from the suffix; without one it
+    read the temporary file's ``.tmp`` and failed)."""
+    from gripsight.app.errors import UsageError
+
+    if path is not None and Path(path).suffix.lower() not in PICTURE_SUFFIXES:
+        raise UsageError(f"{option}: give a picture file name ending in {', '.join(PICTURE_SUFFIXES)}, got '{path}'")
 
 
 def _same(a: Path, b: Path) -> bool:
@@ -44,6 +56,8 @@ def check_output_paths(files: dict | None = None, folders: dict | None = None, i
     for option, path in files.items():
         if path.is_dir():
             raise GripsightError(f"{path}: is a folder; {option} needs a file name inside or beside it")
+        if (path.exists() or path.is_symlink()) and not path.is_file():       # before the work, not after it
+            raise GripsightError(f"{path}: not a regular file (a device, pipe or socket); {option} needs a file name")
     for option, path in folders.items():
         if path.exists() and not path.is_dir():
             raise GripsightError(f"{path}: is a file, not a folder; give {option} a folder")

@@ -79,7 +79,7 @@ def write_report(path, rows: list[dict], totals: dict, cell) -> None:
                                                "cycle s", "warnings"] + (["recall", "pick error mm"] if truth else []))
     body = []
     for r in rows:
-        link = f"{quote(r['photo'])}/overlay.png"
+        link = f"{quote(r['photo'], errors='surrogateescape')}/overlay.png"      # a name's own bytes, as on disk
         img = (f'<img class="thumb" alt="overlay of {e(r["photo"])}" src="data:image/jpeg;base64,{r["thumbnail"]}">'
                if r.get("thumbnail") else "")
         if img and r.get("overlay", True):

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from gripsight.app.errors import EXPECTED_ERRORS, GripsightError, InputError
+from gripsight.app.errors import EXPECTED_ERRORS, GripsightError, InputError, UsageError
 from gripsight.app.export import CSV_COLUMNS, joints_csv_text
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, utc_now, write_text_atomic
 from gripsight.planning.checks import Check
@@ -34,7 +34,7 @@ def photos_in(folder) -> list[Path]:
     """Photo files of a folder in name order (case-insensitive suffixes); .truth.yaml etc. ignored."""
     folder = Path(folder)
     if not folder.is_dir():
-        raise GripsightError(f"{folder}: not a folder of photos")
+        raise InputError(f"{folder}: not a folder of photos")
     return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in PHOTO_SUFFIXES)
 
 
@@ -200,7 +200,7 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                                  f"resume with --speed-scale {recorded:g}")
         for name in emptied:
             if name not in cell.bins:
-                raise GripsightError(f"--emptied: no bin '{name}' in the cell")
+                raise UsageError(f"--emptied: no bin '{name}' in the cell")
             state["bins"][name] = 0
     else:
         state = {"folder": str(folder.resolve()), "cell_sha256": cell.sha256, "done": [], "summaries": [],

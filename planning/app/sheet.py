@@ -28,7 +28,9 @@ def page_layout(cell, paper: str) -> list[list[tuple[int, float, float]]]:
     if cell_mm > width - 2 * _PAGE_MARGIN_MM or cell_mm + _LABEL_MM > height - 2 * _PAGE_MARGIN_MM - _FOOTER_MM:
         from gripsight.app.errors import GripsightError
 
-        raise GripsightError(f"markers.size_mm: a {cell_mm:g} mm marker with its margin does not fit on {paper} paper")
+        table_mm = _marker_paper_mm(cell, None)
+        key = "markers.size_mm" if table_mm >= cell_mm else "markers.on_gripper.size_mm"
+        raise GripsightError(f"{key}: a {cell_mm:g} mm marker with its margin does not fit on {paper} paper")
     ids = sorted(cell.markers.layout) + ([cell.markers.on_gripper.id] if cell.markers.on_gripper else [])
     per_page = cols * rows
     pages = []

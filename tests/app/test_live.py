@@ -91,6 +91,46 @@ def test_a_photo_renamed_into_the_folder_is_taken_at_once(tmp_path):
         thread.join(timeout=5)
 
 
+def test_a_photo_moved_in_from_another_folder_is_taken_once_settled_not_stalled(tmp_path):
+    # inotify reports a move from a folder not watched as a creation alone (no close follows): it waited
+    # stall_s (10 s) as if its writer had paused; now settle_s, as a photo already there
+    if not watchdog_available():
+        pytest.skip("watchdog is not installed")
+    watched, elsewhere = tmp_path / "watched", tmp_path / "elsewhere"
+    watched.mkdir()
+    elsewhere.mkdir()
+    stop = threading.Event()
+    watcher = PhotoWatcher(watched, PHOTO_SUFFIXES, settle_s=0.3, stall_s=30.0, poll_s=0.02, stop=stop)
+    got, thread = _collect(watcher)
+    try:
+        time.sleep(0.3)
+        raw = (SAMPLES / "demo" / "demo_02.jpg").read_bytes()
+        (elsewhere / "demo_02.jpg").write_bytes(raw)
+        t_moved = time.monotonic()
+        (elsewhere / "demo_02.jpg").rename(watched / "demo_02.jpg")
+        name, size, t_taken = got.get(timeout=10)
+        assert (name, size) == ("demo_02.jpg", len(raw))
+        assert t_taken - t_moved < 10.0                   # well before stall_s (30 s)
+    finally:
+        stop.set()
+        thread.join(timeout=5)
+
+
+@pytest.mark.parametrize("events", MODES)
+def test_a_watched_folder_that_goes_away_ends_the_watch_and_says_so(tmp_path, events):
+    if events and not watchdog_available():
+        pytest.skip("watchdog is not installed")
+    watched = tmp_path / "watched"
+    watched.mkdir()
+    shutil.copy(SAMPLES / "demo" / "demo_01.jpg", watched / "demo_01.jpg")
+    watcher = PhotoWatcher(watched, PHOTO_SUFFIXES, settle_s=0.2, poll_s=0.02, use_watchdog=events)
+    got, thread = _collect(watcher)
+    assert got.get(timeout=10)[0] == "demo_01.jpg"
+    shutil.rmtree(watched)                                # no idle stop: it watched nothing, for ever
+    thread.join(timeout=10)
+    assert not thread.is_alive() and watcher.gone
+
+
 def _live_cell(tmp_path) -> tuple:
     (tmp_path / "cell.yaml").write_text(yaml.safe_dump(sample_cell_data(), sort_keys=False))
     shutil.copy(SAMPLES / "calibration.jpg", tmp_path / "calibration.jpg")
@@ -199,3 +239,29 @@ def test_ctrl_c_in_a_live_run_leaves_a_state_resume_continues(tmp_path):
                        photos=PhotoWatcher(cam, PHOTO_SUFFIXES, poll_s=0.02, settle_s=0.2, idle_stop_s=1.0))
     assert not again.interrupted and [s["photo"] for s in again.photos] == [p.name for p in photos]
     assert _body(tmp_path / "live" / "run.csv") == _body(tmp_path / "ref" / "run.csv")
+
+
+def test_run_watch_on_a_folder_that_goes_away_ends_with_the_arm_home_and_one_line(tmp_path):
+    import subprocess
+    import sys
+
+    _live_cell(tmp_path)                               # cell.yaml and calibration.yaml in tmp_path
+    cam = tmp_path / "cam"
+    cam.mkdir()
+    shutil.copy(SAMPLES / "demo" / "demo_01.jpg", cam / "demo_01.jpg")
+    proc = subprocess.Popen([sys.executable, "-c", "from gripsight.app.cli import entry; entry()", "run", str(cam),
+                             "--cell", str(tmp_path / "cell.yaml"), "--out", str(tmp_path / "live"), "--watch",
+                             "--no-pictures"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        end = time.monotonic() + 60
+        while not (tmp_path / "live" / "demo_01.jpg" / "joints.csv").is_file() and time.monotonic() < end:
+            time.sleep(0.1)
+        shutil.rmtree(cam)
+        out, err = proc.communicate(timeout=30)
+    finally:
+        proc.kill()
+    assert proc.returncode == 2                        # an input gone (DEVELOPERS.md, exit codes)
+    errors = [line for line in err.splitlines() if line.startswith("error: ")]
+    assert len(errors) == 1 and "the watched folder is gone" in errors[0] and "--resume --watch" in errors[0]
+    run_csv = (tmp_path / "live" / "run.csv").read_text()
+    assert "demo_01.jpg" in run_csv and "Traceback" not in err

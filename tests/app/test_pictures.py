@@ -146,7 +146,7 @@ def test_batch_draws_pictures_where_they_are_worth_it_and_keeps_every_thumbnail(
     assert main(["batch", str(folder), "--workers", "1", "--out", str(out), "--pictures", "all"]) == 0
     capsys.readouterr()
     assert (out / "batch_02.jpg" / "overlay.png").is_file()
-    assert main(["batch", str(folder), "--out", str(out), "--pictures", "many"]) == 1
+    assert main(["batch", str(folder), "--out", str(out), "--pictures", "many"]) == 2      # a usage error (DEVELOPERS.md, exit codes)
     assert "--pictures: expected some, all or none, got 'many'" in capsys.readouterr().err
 
 

@@ -84,7 +84,7 @@ def test_render_hard_from_the_command_line_is_reproducible(tmp_path):
 def test_unknown_surface_is_a_one_line_error(tmp_path, capsys):
     from tests.conftest import SAMPLE_CELL
 
-    assert main(["render", str(SAMPLE_CELL), "--surface", "felt", "-o", str(tmp_path)]) == 1
+    assert main(["render", str(SAMPLE_CELL), "--surface", "felt", "-o", str(tmp_path)]) == 2     # a usage error
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "--surface" in err[0] and "cutting_mat" in err[0]
 

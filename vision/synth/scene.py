@@ -30,7 +30,10 @@ from gripsight.vision.synth.surfaces import Surface
 __all__ = ["Scene", "ScenePart", "ResolvedPart", "resolve_parts", "make_camera", "random_scene",
            "marker_paper_corners_mm"]
 
-Number = Annotated[float, Field(allow_inf_nan=False)]
+#: the farthest coordinate a scene may give (100 m, as the cell file): 1e308 is a typo, and would overflow
+#: the renderer's fixed-point pixels
+LIMIT_MM = 1.0e5
+Number = Annotated[float, Field(allow_inf_nan=False, ge=-LIMIT_MM, le=LIMIT_MM)]
 Positive = Annotated[float, Field(gt=0, allow_inf_nan=False)]
 
 

@@ -87,6 +87,9 @@ def arm_fit(
     from gripsight.vision.markers import detect_markers
     from gripsight.vision.photo import read_photo
 
+    from gripsight.app.outpaths import check_picture_name
+
+    check_picture_name("--picture", picture)
     cfg = load_cell(cell)
     mount = armcal.mount_of(cfg)
     if mount is None:

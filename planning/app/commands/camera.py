@@ -18,7 +18,7 @@ def render(
     out: Path = typer.Option(Path("renders"), "--out", "-o", help="Folder for the photos and their .truth.yaml files."),
     scene: Optional[Path] = typer.Option(None, "--scene", help="Render one given scene (YAML), or again from a .truth.yaml."),
     scenes: int = typer.Option(1, "--scenes", min=1, max=10000, help="How many random scenes."),
-    seed: int = typer.Option(0, "--seed", help="Seed: the same seed gives the same photos."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seed: the same seed gives the same photos."),
     sample_set: bool = typer.Option(False, "--sample-set", help="Render the whole demo set (calibration, bumped, demo, batch)."),
     camera_shift_mm: float = typer.Option(0.0, "--camera-shift-mm", help="Move the camera sideways by this much (random direction)."),
     camera_tilt_deg: float = typer.Option(0.0, "--camera-tilt-deg", min=0, max=30, help="Tilt the camera (random direction)."),
@@ -35,21 +35,19 @@ def render(
     fmt: str = typer.Option("jpg", "--format", help="jpg or png."),
 ):
     """Render synthetic overhead photos of a cell, each with a .truth.yaml of where everything is."""
-    import numpy as np
+    from pydantic import ValidationError
 
     from gripsight.app.cellfile import load_cell, read_yaml
-    from gripsight.app.errors import GripsightError
-    from gripsight.app.photoset import UNKNOWN_LAB, _varied_conditions, write_photo, write_sample_set
+    from gripsight.app.errors import GripsightError, UsageError
+    from gripsight.app.photoset import write_photo, write_sample_set
     from gripsight.vision.synth.render import render_scene
-    from gripsight.vision.synth.scene import CameraSpec, LightingSpec, Scene, SensorSpec, make_camera, random_scene
-
-    from gripsight.vision.synth.hard import add_hard_parts, hard_conditions
+    from gripsight.vision.synth.scene import Scene
     from gripsight.vision.synth.surfaces import Surface
 
     if fmt not in ("jpg", "png"):
-        raise GripsightError(f"--format: expected jpg or png, got '{fmt}'")
+        raise UsageError(f"--format: expected jpg or png, got '{fmt}'")
     if surface is not None and surface not in {s.value for s in Surface}:
-        raise GripsightError(f"--surface: expected one of {', '.join(s.value for s in Surface)}, got '{surface}'")
+        raise UsageError(f"--surface: expected one of {', '.join(s.value for s in Surface)}, got '{surface}'")
     cfg = load_cell(cell)
     if sample_set:
         total = 53
@@ -59,8 +57,6 @@ def render(
         typer.echo(f"wrote {len(paths)} photos with truth files under {out}")
         return
     if scene is not None:
-        from pydantic import ValidationError
-
         from gripsight.app.cellfile import _pydantic_problems
         from gripsight.app.errors import CellFileError
 
@@ -78,6 +74,37 @@ def render(
         path = write_photo(out / f"{scene.stem}.{fmt}", rendered, sc.sensor.jpeg_quality)
         typer.echo(f"wrote {path} and {path.stem}.truth.yaml")
         return
+    try:
+        _render_random(cfg, out, scenes, seed, camera_shift_mm, camera_tilt_deg, distortion, noise, brightness,
+                       white_balance, jpeg_quality, vary, touching, unknown, hard, surface, fmt)
+    except ValidationError as exc:      # an option the scene refuses: named, as typer names its own
+        raise UsageError(_option_problem(exc)) from None
+    typer.echo(f"wrote {scenes} photos with truth files under {out}")
+
+
+#: the render option behind each field of a scene's camera and lighting
+_RENDER_OPTIONS = {"centre_mm": "--camera-shift-mm", "k1": "--distortion", "k2": "--distortion",
+                   "white_balance": "--white-balance", "brightness": "--brightness", "noise": "--noise",
+                   "tilt_deg": "--camera-tilt-deg"}
+
+
+def _option_problem(exc) -> str:
+    item = exc.errors(include_url=False)[0]
+    field = next((str(k) for k in item["loc"] if str(k) in _RENDER_OPTIONS), None)
+    option = _RENDER_OPTIONS.get(field, "render options")
+    return f"{option}: out of range ({item['msg'][0].lower()}{item['msg'][1:]})"
+
+
+def _render_random(cfg, out, scenes, seed, camera_shift_mm, camera_tilt_deg, distortion, noise, brightness,
+                   white_balance, jpeg_quality, vary, touching, unknown, hard, surface, fmt) -> None:
+    import numpy as np
+
+    from gripsight.app.photoset import UNKNOWN_LAB, _varied_conditions, write_photo
+    from gripsight.vision.synth.hard import add_hard_parts, hard_conditions
+    from gripsight.vision.synth.render import render_scene
+    from gripsight.vision.synth.scene import CameraSpec, LightingSpec, SensorSpec, make_camera, random_scene
+    from gripsight.vision.synth.surfaces import Surface
+
     k = _floats(distortion, "--distortion", (1, 2)) or [0.0]
     wb = _floats(white_balance, "--white-balance", (3, 3)) or [1.0, 1.0, 1.0]
     rng = np.random.default_rng(seed)
@@ -107,7 +134,6 @@ def render(
                 sc = add_hard_parts(sc, cfg, rng)
             write_photo(out / f"render_{seed}_{i:03d}.{fmt}", render_scene(cfg, sc), sc.sensor.jpeg_quality)
             bar.advance(task)
-    typer.echo(f"wrote {scenes} photos with truth files under {out}")
 
 
 def _lens_for(cfg, image_size=None):
@@ -157,9 +183,10 @@ def calibrate(
     previous = _previous(out)
     _keep_previous_centre(cal, previous, (image.shape[1], image.shape[0]))
     _refuse_poor(cal, out, previous, force, photo, cell_path)
-    moved = write_calibration(out, cal, cfg, photo)
+    # the picture first: an overlay that cannot be written then leaves the previous calibration as it was
     ok, buf = cv2.imencode(".png", calibration_overlay(image, cal, cfg))
     write_bytes_atomic(overlay, buf.tobytes())
+    moved = write_calibration(out, cal, cfg, photo)
     if as_json:
         typer.echo(strict_json(calibration_record(cal, cfg, photo)))
         return

@@ -41,11 +41,14 @@ def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
     from gripsight.planning.cellcheck import cell_problems
     from gripsight.planning.reach import lowest_grip_z_mm, radial_reach
 
+    from gripsight.app.commands.camera import _lens_for
+
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
     problems = cell_problems(cfg, arm)
     if problems:
         raise CellFileError(str(cell), problems)
+    _lens_for(cfg)          # camera.lens_file read as calibrate reads it: a missing or bad lens file is said here
     raised = sum(1 for m in cfg.markers.layout.values() if m.z > 0)
     grip = radial_reach(arm, lowest_grip_z_mm(cfg))
     link = cfg.arm.linkage.type + (f" ({arm.grashof()})" if cfg.arm.linkage.type == "four_bar" else "")
@@ -99,8 +102,9 @@ def reach(
     from gripsight.planning.reach import lowest_grip_z_mm, radial_reach, unreachable_places
     from gripsight.app.reach_plot import draw_reach
 
-    from gripsight.app.outpaths import check_output_paths
+    from gripsight.app.outpaths import check_output_paths, check_picture_name
 
+    check_picture_name("--out", out)
     check_output_paths(files={"--out": out}, inputs={"the cell file": cell})
     cfg = load_cell(cell)
     arm = Arm.from_config(cfg.arm)
@@ -125,13 +129,13 @@ def markers(
 ):
     """Write a printable sheet of the layout's markers at true size, with a 100 mm scale bar."""
     from gripsight.app.cellfile import load_cell
-    from gripsight.app.errors import GripsightError
+    from gripsight.app.errors import UsageError
     from gripsight.app.sheet import PAPER_MM, write_marker_sheet
 
     if paper not in PAPER_MM:
-        raise GripsightError(f"--paper: expected a4 or letter, got '{paper}'")
+        raise UsageError(f"--paper: expected a4 or letter, got '{paper}'")
     if out.suffix.lower() not in (".pdf", ".png"):
-        raise GripsightError(f"--out: give a .pdf or .png file name, got '{out}'")
+        raise UsageError(f"--out: give a .pdf or .png file name, got '{out}'")
     cfg = load_cell(cell)
     paths = write_marker_sheet(cfg, out, paper, dpi)
     grip = cfg.markers.on_gripper

@@ -135,7 +135,7 @@ def _find_cell(cell: Optional[Path], near: Path) -> Path:
 
 
 def _floats(text: Optional[str], name: str, count: tuple[int, int]) -> Optional[list[float]]:
-    from gripsight.app.errors import GripsightError
+    from gripsight.app.errors import UsageError
 
     if text is None:
         return None
@@ -144,11 +144,11 @@ def _floats(text: Optional[str], name: str, count: tuple[int, int]) -> Optional[
     try:
         values = [float(v) for v in text.split(",") if v.strip()]
     except ValueError:
-        raise GripsightError(f"{name}: expected numbers separated by commas, got '{text}'") from None
+        raise UsageError(f"{name}: expected numbers separated by commas, got '{text}'") from None
     if not all(math.isfinite(v) for v in values):
-        raise GripsightError(f"{name}: expected finite numbers, got '{text}'")
+        raise UsageError(f"{name}: expected finite numbers, got '{text}'")
     if not count[0] <= len(values) <= count[1]:
-        raise GripsightError(f"{name}: expected {count[0]}-{count[1]} numbers, got {len(values)}")
+        raise UsageError(f"{name}: expected {count[0]}-{count[1]} numbers, got {len(values)}")
     return values
 
 

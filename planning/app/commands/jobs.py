@@ -99,9 +99,9 @@ def _sample_colour(photo: Path, cfg, text: str) -> None:
     u, v = int(round(uv[0])), int(round(uv[1]))
     h, w = image.shape[:2]
     if not (3 <= u < w - 3 and 3 <= v < h - 3):
-        from gripsight.app.errors import GripsightError
+        from gripsight.app.errors import UsageError
 
-        raise GripsightError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
+        raise UsageError(f"--sample: pixel ({u}, {v}) is outside the {w}x{h} photo (or too near its edge)")
     ill = fit_illumination(image, detect_markers(image, cfg.markers.dictionary, search_ids=cfg.markers.layout), cfg)
     patch = lab_image(image[v - 3:v + 4, u - 3:u + 4], ill, (u - 3, v - 3)).reshape(-1, 3)
     lab = np.median(patch, axis=0)
@@ -233,13 +233,13 @@ def run(
     from gripsight.app.cellfile import load_cell
     from gripsight.app.run import photos_in, run_folder
 
-    from gripsight.app.errors import GripsightError
+    from gripsight.app.errors import InputError, UsageError
     from gripsight.app.live import PhotoWatcher, PictureWriter
     from gripsight.app.outpaths import check_output_paths
     from gripsight.app.run import PHOTO_SUFFIXES
 
     if idle_stop is not None and not watch:
-        raise GripsightError("--idle-stop: only with --watch")
+        raise UsageError("--idle-stop: only with --watch")
     cell_path = _find_cell(cell, folder)
     cfg = load_cell(cell_path)
     check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
@@ -303,6 +303,10 @@ def run(
         console.print(f"stopped: {result.stopped}")
         raise typer.Exit(4)
     console.print(f"wrote {out / 'run.csv'} and one folder per photo under {out}")
+    if source is not None and source.gone:
+        raise InputError(f"{folder}: the watched folder is gone (removed, renamed or replaced) after "
+                         f"{len(result.photos)} photos; the arm went home and run.csv is written; when the "
+                         f"folder is back, go on with: gripsight run {folder} --out {out} --resume --watch")
 
 
 @command()
@@ -320,12 +324,12 @@ def batch(
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
     from gripsight.app.batch import Pictures, start_workers, stop_workers
-    from gripsight.app.errors import GripsightError
+    from gripsight.app.errors import UsageError
 
     try:
         chosen = Pictures(pictures)
     except ValueError:
-        raise GripsightError(f"--pictures: expected some, all or none, got '{pictures}'") from None
+        raise UsageError(f"--pictures: expected some, all or none, got '{pictures}'") from None
     cell_path = _find_cell(cell, folder)
     start_workers(workers, scheduler)       # their start-up overlaps reading the cell and the photo folder
     try:

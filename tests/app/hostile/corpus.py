@@ -353,6 +353,7 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
     lens_cell2 = copy.deepcopy(cell_data)
     lens_cell2["camera"].update(lens="file", lens_file=str(cdir / "no-lens.yaml"))
     cell_case("lens-file-missing", lens_cell2, fragment="no-lens.yaml", cmd="calibrate")
+    cell_case("lens-file-missing-validate", lens_cell2, fragment="no-lens.yaml")
     lens_yaml = cdir / "lens-4032.yaml"
     lens_yaml.write_text("image_width: 4032\nimage_height: 3024\ncamera_matrix: [[3000, 0, 2016], [0, 3000, 1512], [0, 0, 1]]\n"
                          "distortion_coefficients: [0, 0, 0, 0, 0]\n")
@@ -599,5 +600,166 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
         "speed")
     add("misc/run-empty-folder", ["run", pdir / "folder.jpg", *CELL, *CAL, "--out", root / "o-empty-run"], "error", None,
         "no photos")
+    _newer_features(root, add, cell_data, photo, calib_photo, image, CELL, CAL)
     assert len({c.name for c in cases}) == len(cases), "case names must be unique"
     return cases
+
+
+def _no_library_noise(outcome) -> Optional[str]:
+    """Only gripsight's own lines: a decoder's message (libpng's "PNG input buffer is incomplete")
+    beside the one-line error is a second answer."""
+    return "a library printed its own message" if "libpng" in outcome.output.lower() else None
+
+
+def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: Path, image, CELL, CAL) -> None:
+    """The second pass (after run --watch, arm-fit, markers.on_gripper, arm.base_xy_mm, camera.height_mm,
+    camera.lens_file, shapes and footprints, batch --pictures/--scheduler, check, render --hard)."""
+    from PIL import Image
+
+    ndir = root / "newer"
+    ndir.mkdir()
+    # ------------------------------------------------------------ photos
+    encoded = cv2.imencode(".png", image)[1].tobytes()
+    damaged = bytearray(encoded)
+    damaged[len(damaged) // 2:len(damaged) // 2 + 50] = b"\x00" * 50
+    for name, content in {"png-cut.png": encoded[:-100], "png-crc.png": bytes(damaged)}.items():
+        (ndir / name).write_bytes(content)
+        add(f"photo/quiet/{name}", ["detect", ndir / name, *CELL, *CAL], "error", BAD_INPUT, name, check=_no_library_noise)
+    (ndir / "png-trailer.png").write_bytes(encoded + b"appended by a tool" * 10)
+    add("photo/ok/png-trailer.png", ["detect", ndir / "png-trailer.png", *CELL, *CAL], "result", 0, "p4")
+    cv2.imwrite(str(ndir / "w60000x10.png"), np.zeros((10, 60000, 3), np.uint8))
+    add("photo/60000x10", ["detect", ndir / "w60000x10.png", *CELL, *CAL], "error", BAD_INPUT, "too small")
+    cv2.imwrite(str(ndir / "w40x6000.png"), np.full((6000, 40, 3), 200, np.uint8))
+    add("photo/40x6000", ["detect", ndir / "w40x6000.png", *CELL, *CAL], "error", BAD_INPUT, "40x6000")
+    pil = Image.fromarray(cv2.cvtColor(image, cv2.COLOR_BGR2RGB))
+    pil.convert("CMYK").save(ndir / "cmyk.jpg", "JPEG", quality=92)
+    add("photo/ok/cmyk.jpg", ["detect", ndir / "cmyk.jpg", *CELL, *CAL], "result", 0, "p4")
+    exif = Image.Exif()
+    exif[0x0112] = 6                # "rotate 90 to view": the stored pixels are what the camera (and calibration) saw
+    pil.save(ndir / "exif-rotated.jpg", "JPEG", quality=92, exif=exif)
+    add("photo/ok/exif-rotated.jpg", ["detect", ndir / "exif-rotated.jpg", *CELL, *CAL], "result", 0, "p4")
+    pil.save(ndir / "animated.gif", "GIF", save_all=True, append_images=[pil.rotate(5)])
+    add("photo/animated.gif", ["detect", ndir / "animated.gif", *CELL, *CAL], "error", BAD_INPUT, "animated.gif")
+    # ------------------------------------------------------------ newer cell keys
+    grip = {"id": 11, "size_mm": 30, "margin_mm": 5, "offset_mm": [0, 0, 10]}
+    with_grip = _set(cell_data, "markers.on_gripper", grip)
+    for key, value, cmd in [("parts.green.footprint_mm.0", 1e-300, "detect"), ("parts.red.footprint_mm", [0.0], "validate"),
+                            ("parts.red.footprint_mm", [20, 20, 20], "validate"), ("parts.red.shape", "sphere", "validate"),
+                            ("camera.height_mm", 1e-300, "calibrate"), ("camera.height_mm", float("nan"), "validate"),
+                            ("camera.height_mm", -700, "validate"), ("arm.base_xy_mm", [float("inf"), 0], "validate"),
+                            ("arm.base_xy_mm", [1e308, 0], "validate"), ("arm.base_xy_mm", "origin", "validate"),
+                            ("markers.on_gripper.size_mm", 1e-300, "markers"), ("markers.on_gripper.size_mm", -30, "validate"),
+                            ("markers.on_gripper.offset_mm", [0, 0], "validate"), ("markers.on_gripper.id", 3, "validate"),
+                            ("markers.on_gripper.id", 999, "validate"), ("markers.on_gripper.margin_mm", float("nan"), "validate")]:
+        data = _set(with_grip if key.startswith("markers.on_gripper") else cell_data, key, value)
+        path = ndir / f"cell-{key}={value}.yaml"
+        _dump(path, data)
+        argv = {"validate": ["validate", path], "detect": ["detect", photo, "--cell", path, *CAL],
+                "calibrate": ["calibrate", calib_photo, "--cell", path, "--out", ndir / f"o-{key}.yaml"],
+                "markers": ["markers", path, "--out", ndir / f"o-{key}.pdf"]}[cmd]
+        add(f"cell/newer/{key}={value}/{cmd}", argv, "error", BAD_INPUT, key)
+    big_grip = ndir / "cell-gripper-marker-900.yaml"
+    _dump(big_grip, _set(with_grip, "markers.on_gripper.size_mm", 900))
+    add("cell/newer/gripper-marker-too-big-for-paper", ["markers", big_grip, "--out", ndir / "o-big.pdf"], "error", FAILED,
+        "markers.on_gripper.size_mm")
+    # ------------------------------------------------------------ lens files (camera.lens_file)
+    k_ok = "camera_matrix: [[900, 0, 640], [0, 900, 480], [0, 0, 1]]\n"
+    zeros = "distortion_coefficients: [0, 0, 0, 0, 0]\n"
+    lenses = {
+        "bottom-row-zero": "camera_matrix: [[900, 0, 640], [0, 900, 480], [0, 0, 0]]\n" + zeros,
+        "focal-1e-300": "camera_matrix: [[1.0e-300, 0, 640], [0, 1.0e-300, 480], [0, 0, 1]]\n" + zeros,
+        "focal-1e308": "camera_matrix: [[1.0e+308, 0, 640], [0, 1.0e+308, 480], [0, 0, 1]]\n" + zeros,
+        "coefficient-1e300": k_ok + "distortion_coefficients: [1.0e+300, 0, 0, 0, 0]\n",
+        "size-inf": k_ok + zeros + "image_width: .inf\nimage_height: .inf\n",
+        "size-tiny": k_ok + zeros + "image_width: 1.0e-300\nimage_height: 1.0e-300\n",
+        "size-text": k_ok + zeros + "image_width: wide\nimage_height: 960\n",
+        "size-one-of-two": k_ok + zeros + "image_width: 1280\n",
+    }
+    for name, text in lenses.items():
+        lens = ndir / f"lens-{name}.yaml"
+        lens.write_text(text)
+        data = copy.deepcopy(cell_data)
+        data["camera"].update(lens="file", lens_file=str(lens))
+        path = _dump(ndir / f"cell-lens-{name}.yaml", data)
+        add(f"lens/{name}", ["calibrate", calib_photo, "--cell", path, "--out", ndir / f"o-lens-{name}.yaml"], "error",
+            BAD_INPUT, f"lens-{name}.yaml")
+    # ------------------------------------------------------------ render options and scenes
+    cell_path = CELL[1]
+    for name, opts, fragment in [("shift-nan", ["--camera-shift-mm", "nan"], "--camera-shift-mm"),
+                                 ("shift-1e300", ["--camera-shift-mm", "1e300"], "--camera-shift-mm"),
+                                 ("distortion-1e300", ["--distortion", "1e300"], "--distortion"),
+                                 ("white-balance-negative", ["--white-balance", "-1,1,1"], "--white-balance"),
+                                 ("format-gif", ["--format", "gif"], "--format")]:
+        add(f"render/{name}", ["render", cell_path, "--scenes", "1", *opts, "--out", ndir / f"o-render-{name}"], "error", 2,
+            fragment)
+    add("misc/render-seed-negative", ["render", cell_path, "--scenes", "1", "--seed", "-1", "--out", ndir / "o-seed"],
+        "error", 2, "--seed")       # typer's own usage error (its "Error:" block, not our one line)
+    scene = ndir / "scene-far.yaml"
+    scene.write_text("parts: [{class: red, x_mm: 1.0e+308, y_mm: 0}]\n")
+    add("render/scene-1e308", ["render", cell_path, "--scene", scene, "--out", ndir / "o-scene"], "error", BAD_INPUT, "x_mm")
+    # ------------------------------------------------------------ batch and run options
+    folder = photo.parent / "photos"
+    for name, opts, fragment in [("scheduler-no-port", ["--scheduler", "nonsense"], "--scheduler"),
+                                 ("scheduler-scheme", ["--scheduler", "http://[::1"], "--scheduler"),
+                                 ("pictures-many", ["--pictures", "many"], "--pictures")]:
+        add(f"batch/{name}", ["batch", folder, "-w", "1", *CELL, *CAL, "--out", ndir / f"o-batch-{name}", *opts], "error", 2,
+            fragment)
+    add("run/idle-stop-without-watch", ["run", folder, *CELL, *CAL, "--out", ndir / "o-idle", "--idle-stop", "5"], "error", 2,
+        "--idle-stop")
+    add("run/missing-folder", ["run", ndir / "no-such-folder", *CELL, *CAL, "--out", ndir / "o-missing"], "error", BAD_INPUT,
+        "no-such-folder")
+    add("run/watch-missing-folder", ["run", ndir / "no-such-folder", *CELL, *CAL, "--out", ndir / "o-missing-w", "--watch"],
+        "error", BAD_INPUT, "no-such-folder", time_limit_s=20)
+    # ------------------------------------------------------------ outputs where a FIFO stands, pictures without a format
+    # (never a real device here: the suite may run as root, for whom the rename replaced /dev/full itself)
+    out_fifo = ndir / "fifo-out.png"
+    os.mkfifo(out_fifo)
+    for name, argv in {"detect-overlay": ["detect", photo, *CELL, *CAL, "--overlay", out_fifo],
+                       "reach-out": ["reach", cell_path, "--out", out_fifo],
+                       "init": ["init", out_fifo, "--force"]}.items():
+        add(f"out/fifo/{name}", argv, "error", FAILED, "not a regular file", time_limit_s=20,
+            check=lambda o, p=out_fifo: None if p.is_fifo() else f"{p} was replaced")
+    kept = ndir / "kept-calibration.yaml"
+    kept.write_bytes(Path(CAL[1]).read_bytes())
+    add("out/fifo/calibrate-overlay-keeps-calibration", ["calibrate", calib_photo, *CELL, "--out", kept, "--overlay", out_fifo,
+                                                         "--force"], "error", FAILED, "not a regular file", time_limit_s=20,
+        check=lambda o, k=kept, b=kept.read_bytes(): None if k.read_bytes() == b else f"{k} was replaced by a failed command")
+    kept2 = ndir / "kept-calibration-2.yaml"
+    kept2.write_bytes(Path(CAL[1]).read_bytes())
+    add("out/calibrate-overlay-unwritable-keeps-calibration",
+        ["calibrate", calib_photo, *CELL, "--out", kept2, "--overlay", ndir / "a-file-not-a-folder.png" / "o.png", "--force"],
+        "error", FAILED, "a-file-not-a-folder.png",
+        check=lambda o, k=kept2, b=kept2.read_bytes(): None if k.read_bytes() == b else f"{k} was replaced by a failed command")
+    (ndir / "a-file-not-a-folder.png").write_text("x")
+    add("out/reach-no-suffix", ["reach", cell_path, "--out", ndir / "reach-picture"], "error", 2, "--out")
+    # ------------------------------------------------------------ a photo whose file name is not UTF-8
+    odd = ndir / "odd-names"
+    odd.mkdir()
+    shutil.copy(photo, odd / os.fsdecode(b"bad\xffname.jpg"))
+    add("photo/name-not-utf8-batch", ["batch", odd, "-w", "1", *CELL, *CAL, "--out", ndir / "o-odd-batch"], "result", 0,
+        "batch.csv", check=_exists(ndir / "o-odd-batch" / "batch.csv"))
+    add("photo/name-not-utf8-run", ["run", odd, *CELL, *CAL, "--out", ndir / "o-odd-run"], "result", 0, "run.csv",
+        check=_exists(ndir / "o-odd-run" / "run.csv"))
+    # ------------------------------------------------------------ arm-fit's stops file
+    grip_cell = _dump(ndir / "cell-with-gripper-marker.yaml", with_grip)
+    header = "stop,start_s,end_s,base_deg,shoulder_deg,elbow_deg,base_us,shoulder_us,elbow_us,x_mm,y_mm,z_mm\n"
+    rows = [f"{k},{k * 4}.0,{k * 4 + 2}.0,0,90,0,1500.0,1666.7,1722.2,205.0,0.0,185.0\n" for k in range(1, 9)]
+    stops_files = {"nan-pulse": header + rows[0].replace("1500.0", "nan") + "".join(rows[1:]),
+                   "pulse-1e308": header + rows[0].replace("1500.0", "1e308") + "".join(rows[1:]),
+                   "repeated-stop": header + "".join(rows) + rows[0],
+                   "stop-zero": header + "0" + rows[0][1:] + "".join(rows[1:]),
+                   "text": "these are not stops\n"}
+    photos8 = [photo] * 8
+    for name, text in stops_files.items():
+        stops = ndir / f"stops-{name}.csv"
+        stops.write_text(text)
+        add(f"arm-fit/stops-{name}", ["arm-fit", *photos8, "--cell", grip_cell, *CAL, "--stops", stops, "--out",
+                                      ndir / f"o-fit-{name}.yaml"], "error", BAD_INPUT, f"stops-{name}.csv")
+    stops_dir = ndir / "stops-folder.csv"
+    stops_dir.mkdir()
+    add("arm-fit/stops-folder", ["arm-fit", *photos8, "--cell", grip_cell, *CAL, "--stops", stops_dir, "--out",
+                                 ndir / "o-fit-folder.yaml"], "error", BAD_INPUT, "not a regular file")
+    stops_fifo = ndir / "stops-fifo.csv"
+    os.mkfifo(stops_fifo)
+    add("arm-fit/stops-fifo", ["arm-fit", *photos8, "--cell", grip_cell, *CAL, "--stops", stops_fifo, "--out",
+                               ndir / "o-fit-fifo.yaml"], "error", BAD_INPUT, "not a regular file", time_limit_s=20)
