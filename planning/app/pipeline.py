@@ -173,7 +173,7 @@ def plan_photo(photo, cell, stored, planner, start_joints_rad=None, t0_s: float 
     analysis = analyse_photo(photo, cell, stored, image=image)
     if analysis.refused:
         return PhotoPlan(analysis, None, analysis.registration.message)
-    from gripsight.app.cellfile import check_plan_size
+    from gripsight.app.cellchecks import check_plan_size
 
     targets = targets_from_detection(analysis.detection, cell)
     check_plan_size(len(targets), cell, str(photo))

@@ -154,7 +154,7 @@ def plan(
         from gripsight.app.export import write_plan_outputs
         from gripsight.app.partsfile import load_parts_file
 
-        from gripsight.app.cellfile import check_plan_size
+        from gripsight.app.cellchecks import check_plan_size
 
         targets = load_parts_file(parts, cfg)
         check_plan_size(len(targets), cfg, str(parts))
