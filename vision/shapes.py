@@ -19,6 +19,7 @@ then takes the class whose shape and size fit its outline:
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 
 import numpy as np
@@ -26,6 +27,12 @@ import numpy as np
 from gripsight.vision.colour import delta_e_2000
 
 __all__ = ["ColourGroup", "colour_groups", "shape_clashes", "SHAPE_TOO_CLOSE"]
+
+
+@dataclass(frozen=True)
+class _Colour:
+    lab: tuple[float, float, float]
+    tolerance: float
 
 
 @dataclass(frozen=True)
@@ -42,6 +49,14 @@ class ColourGroup:
 def colour_groups(classes: dict) -> dict[str, ColourGroup]:
     """Group the classes (name -> class with ``lab`` and ``tolerance``) by colour (see the module
     docstring). A group of one class is named after it; a group of several after its members."""
+    key = tuple((name, tuple(float(v) for v in c.lab), float(c.tolerance)) for name, c in classes.items())
+    return dict(_colour_groups(key))        # the same cell's classes on every photo: grouped once
+
+
+@functools.lru_cache(maxsize=16)
+def _colour_groups(key: tuple) -> dict[str, ColourGroup]:
+    """:func:`colour_groups` of classes given as (name, lab, tolerance) tuples."""
+    classes = {name: _Colour(lab, tolerance) for name, lab, tolerance in key}
     names = list(classes)
     parent = list(range(len(names)))
 
