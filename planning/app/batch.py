@@ -16,17 +16,14 @@ import contextlib
 import json
 import os
 import signal
-import sys
-import threading
-import time
 from dataclasses import dataclass
 from enum import Enum
 from pathlib import Path
 
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, write_text_atomic
+from gripsight.app.workers import start_workers, stop_workers, worker_start
 
-__all__ = ["BatchJob", "BatchInterrupted", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch",
-           "start_workers", "stop_workers", "write_batch_tables"]
+__all__ = ["BatchJob", "BatchInterrupted", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch"]
 
 _CACHE: dict = {}
 SAMPLE_EVERY = 10           # with Pictures.SOME, photos 1, 11, 21, ... (name order) get pictures too
@@ -270,7 +267,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             if progress:
                 progress(row)
     else:
-        pool = pool_context.Pool(workers, initializer=_worker_start, initargs=(os.getpid(),))
+        pool = pool_context.Pool(workers, initializer=worker_start, initargs=(os.getpid(),))
         try:
             results = pool.imap_unordered(process_photo, jobs)
             for _ in range(len(jobs)):
@@ -318,108 +315,6 @@ class BatchInterrupted(KeyboardInterrupt):
         self.done, self.total = done, total
 
 
-def stop_workers() -> None:
-    """End the fork server of :func:`start_workers`, if one runs, now rather than when it notices the batch
-    is gone (it would first unload the workers' modules, a second or more); a later batch in this process
-    starts a new one."""
-    from multiprocessing import forkserver, util
-
-    server = getattr(forkserver, "_forkserver", None)
-    pid = getattr(server, "_forkserver_pid", None)
-    if not pid:
-        return
-    with contextlib.suppress(OSError):
-        os.kill(pid, signal.SIGKILL)
-        os.waitpid(pid, 0)
-    with contextlib.suppress(OSError, TypeError):
-        os.close(server._forkserver_alive_fd)
-    address = server._forkserver_address
-    if address and not util.is_abstract_socket_namespace(address):
-        with contextlib.suppress(OSError):
-            os.unlink(address)
-    server._forkserver_pid = server._forkserver_alive_fd = server._forkserver_address = None
-
-
-def _worker_start(parent_pid: int) -> None:
-    """In each worker: Ctrl-C is the parent's to handle (it stops the pool), and the worker ends when
-    the batch process ends, however it ends (kill -9 included): on Linux the kernel kills it when its
-    parent goes (prctl PR_SET_PDEATHSIG), and everywhere a watchdog thread ends it when the batch
-    process is gone."""
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
-    signal.signal(signal.SIGTERM, _exit_on_term)      # the pool's stop: unwind, so a write in progress is removed
-    if sys.platform.startswith("linux"):
-        with contextlib.suppress(OSError, AttributeError):
-            import ctypes
-
-            ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGKILL)     # 1 = PR_SET_PDEATHSIG
-    ppid = os.getppid()
-
-    def watch() -> None:
-        while True:
-            time.sleep(0.2)
-            if os.getppid() != ppid or not _alive(parent_pid):
-                os._exit(1)
-
-    threading.Thread(target=watch, name="gripsight-parent-watch", daemon=True).start()
-
-
-def _exit_on_term(signum, frame) -> None:
-    raise SystemExit(1)
-
-
-def _alive(pid: int) -> bool:
-    """True while ``pid`` runs (a zombie, killed but not yet reaped, counts as gone on Linux)."""
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    try:
-        with open(f"/proc/{pid}/stat", "rb") as fh:
-            return fh.read().rsplit(b")", 1)[1].split()[0] != b"Z"
-    except (OSError, IndexError):
-        return True
-
-
-# what every worker imports: the fork server imports them once, while the main process reads the cell
-# (scipy.optimize: the refit's least squares, imported on a worker's first photo, a quarter of a second;
-# the cell file's pydantic models, 50 ms; a module that cannot be imported is skipped by the fork server)
-_WORKER_MODULES = ["gripsight.app.pipeline", "gripsight.app.photo_outputs", "gripsight.app.plan_plot",
-                   "gripsight.app.cellfile", "gripsight.app.calfile", "gripsight.app.fixedtext",
-                   "gripsight.vision.parts", "gripsight.vision.markers", "gripsight.vision.drift",
-                   "gripsight.vision.overlay", "gripsight.app.truthcheck", "gripsight.app.jointcheck", "yaml",
-                   "scipy.optimize", "isal.isal_zlib"]
-
-
-def start_workers(workers: int, scheduler: str | None = None):
-    """The worker processes' start method for a local batch of ``workers`` (> 1) processes, or None (one
-    worker works in this process; a scheduler has its own). On POSIX a fork server, started at the first
-    call with the workers' modules imported in it, so that its start-up (a third of a second) overlaps
-    what the command does before its first photo; call it as early as the worker count is known (a
-    second call returns the same server)."""
-    import multiprocessing
-
-    if workers <= 1 or scheduler:
-        return None
-    for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ.setdefault(name, "1")        # numpy's BLAS threads would spin beside the other workers
-    if os.name != "posix":
-        return multiprocessing.get_context("spawn")
-    ctx = multiprocessing.get_context("forkserver")
-    ctx.set_forkserver_preload(_WORKER_MODULES)
-    from multiprocessing import forkserver
-
-    # the server (a new interpreter, in the terminal's process group) ignores Ctrl-C from its first
-    # instruction: an ignored signal stays ignored across exec, and the batch stops the server itself
-    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
-    try:
-        forkserver.ensure_running()
-    finally:
-        signal.signal(signal.SIGINT, previous)
-    return ctx
-
-
 def _run_dask(jobs, scheduler: str, progress) -> dict:
     from gripsight.app.errors import GripsightError
 
@@ -446,64 +341,3 @@ def _run_dask(jobs, scheduler: str, progress) -> dict:
     finally:
         client.close()
     return rows
-
-
-def write_batch_tables(out, rows: list[dict], cell) -> dict:
-    """batch.csv (one row per photo), batch.json (rows and totals) and report.html; returns the totals."""
-    import csv
-    import io
-
-    from gripsight.app.report import write_report
-    from gripsight.app.textsafe import one_line
-
-    classes = list(cell.parts) + ["unknown"]
-    reasons = sorted({r for row in rows for r in row["rejected"]})
-    header = (["photo", "status", "error", "registration", "drift", "parts"] + [f"found_{c}" for c in classes]
-              + ["planned", "rejected"] + [f"rejected_{r}" for r in reasons]
-              + ["cycle_s", "truth_recall", "truth_precision", "pick_error_rms_mm", "pick_error_max_mm", "warnings"])
-    buf = io.StringIO()
-    w = csv.writer(buf, lineterminator="\n")
-    w.writerow(header)
-    for row in rows:
-        t = row["truth"] or {}
-        w.writerow([one_line(row["photo"]), row["status"], one_line(row["error"]), row["registration"], row["drift"], row["parts"]]
-                   + [row["found"].get(c, 0) for c in classes]
-                   + [row["planned"], sum(row["rejected"].values())] + [row["rejected"].get(r, 0) for r in reasons]
-                   + [row["cycle_s"], t.get("recall", ""), t.get("precision", ""), t.get("pick_error_rms_mm", ""),
-                      t.get("pick_error_max_mm", ""), "; ".join(row.get("warnings", []))])
-    totals = _totals(rows)
-    write_text_atomic(Path(out) / "batch.csv", buf.getvalue())
-    clean = [{k: v for k, v in r.items() if k not in ("thumbnail", "photo_sha256", "cell_sha256", "calibration_sha256")}
-             for r in rows]
-    write_text_atomic(Path(out) / "batch.json", strict_json({"cell": cell.cell, "totals": totals, "photos": clean},
-                                                           indent=1) + "\n")
-    write_report(Path(out) / "report.html", rows, totals, cell)
-    return totals
-
-
-def _totals(rows: list[dict]) -> dict:
-    totals = {"photos": len(rows), "ok": sum(r["status"] == "ok" for r in rows),
-              "refused": sum(r["status"] == "refused" for r in rows), "errors": sum(r["status"] == "error" for r in rows),
-              "parts": sum(r["parts"] for r in rows), "planned": sum(r["planned"] for r in rows),
-              "rejected": {}, "found": {}, "cycle_s": round(sum(r["cycle_s"] for r in rows), 3),
-              "warned": sum(bool(r.get("warnings")) for r in rows),
-              "camera_moved": sum(r["registration"] == "refit" for r in rows),
-              "markers_unseen": sum(any(w.startswith("markers not seen") for w in r.get("warnings", [])) for r in rows),
-              "poor_calibration": sum(any("is poor" in w for w in r.get("warnings", [])) for r in rows)}
-    for r in rows:
-        for k, v in r["rejected"].items():
-            totals["rejected"][k] = totals["rejected"].get(k, 0) + v
-        for k, v in r["found"].items():
-            totals["found"][k] = totals["found"].get(k, 0) + v
-    truths = [r["truth"] for r in rows if r["truth"]]
-    if truths:
-        expected = sum(t["expected"] for t in truths)
-        found = sum(t["found"] for t in truths)
-        reported = sum(t["reported_ok"] for t in truths)
-        sq = sum(t["pick_error_rms_mm"] ** 2 * t["found"] for t in truths)
-        totals["truth"] = {"photos": len(truths), "expected": expected, "found": found,
-                           "recall": round(found / expected, 4) if expected else 1.0,
-                           "precision": round(found / reported, 4) if reported else 1.0,
-                           "pick_error_rms_mm": round((sq / found) ** 0.5, 3) if found else 0.0,
-                           "pick_error_max_mm": max(t["pick_error_max_mm"] for t in truths)}
-    return totals

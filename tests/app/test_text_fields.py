@@ -8,7 +8,7 @@ import io
 
 import pytest
 
-from gripsight.app.batch import write_batch_tables
+from gripsight.app.batchtables import write_batch_tables
 from gripsight.app.cellfile import load_cell, parse_cell
 from gripsight.app.errors import CellFileError
 from gripsight.app.export import CSV_COLUMNS, joints_csv_text

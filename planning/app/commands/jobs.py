@@ -323,8 +323,9 @@ def batch(
                                       "refusals and every 10th photo), all, or none."),
 ):
     """Test a folder of photos: which parts would be picked, which rejected and why; report.html."""
-    from gripsight.app.batch import Pictures, start_workers, stop_workers
+    from gripsight.app.batch import Pictures
     from gripsight.app.errors import UsageError
+    from gripsight.app.workers import start_workers, stop_workers
 
     try:
         chosen = Pictures(pictures)
@@ -342,7 +343,8 @@ def _batch(folder, cell_path, calibration, out, workers, scheduler, resume, chos
     import signal
     import threading
 
-    from gripsight.app.batch import BatchInterrupted, run_batch, write_batch_tables
+    from gripsight.app.batch import BatchInterrupted, run_batch
+    from gripsight.app.batchtables import write_batch_tables
     from gripsight.app.cellfile import load_cell
     from gripsight.app.fileio import output_dir
     from gripsight.app.lock import output_lock
