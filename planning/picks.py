@@ -22,7 +22,7 @@ from gripsight.planning.cellcheck import cell_problems
 from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
                                        grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
-from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights,
+from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights, touching_parts,
                                      static_obstacles)
 from gripsight.planning.heldcheck import HeldSpec, ObstacleSet, held_part_failure
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
@@ -185,9 +185,11 @@ class Planner:
             if mask is None:
                 mask = present.copy()
                 mask[index[part.id]] = False
+            # the rise off its place (straight up) cannot hit the parts it stands against (held.touching_parts)
+            seg_mask = mask & ~self._touching[part.id] if floor is None else mask
             base = float(np.arctan2(part.xy_mm[1], part.xy_mm[0]))
             specs.append(HeldSpec(part, part.height_mm - m.grip_depth_mm, m.grip_depth_mm, base, floor,
-                                  self._outlines[part.id], obstacles, mask))
+                                  self._outlines[part.id], obstacles, seg_mask))
             prev = seg
         return specs
 
@@ -202,6 +204,11 @@ class Planner:
         n_static = len(self._obstacles)
         self._obstacle_set = ObstacleSet.of(self._obstacles + [part_obstacle(p, clearance) for p in self._table.values()])
         self._obstacle_index = {pid: n_static + j for j, pid in enumerate(self._table)}
+        touching = touching_parts(list(self._table.values()))
+        self._touching = {}
+        for j, pid in enumerate(self._table):
+            self._touching[pid] = np.zeros(len(self._obstacle_set), bool)
+            self._touching[pid][n_static:] = touching[j]
 
     def _above_bin(self, bin_name: str) -> np.ndarray:
         """Above a bin at safe height: where every pick into it leaves the tool."""

@@ -10,7 +10,7 @@ import pytest
 from gripsight.app.cellfile import parse_cell
 from gripsight.planning.arm import Arm
 from gripsight.planning.cellcheck import cell_problems
-from gripsight.planning.held import _separated_xy, footprint_outline_mm
+from gripsight.planning.held import _separated_xy, footprint_outline_mm, touching_parts
 from gripsight.planning.picks import Planner
 from gripsight.planning.targets import PartTarget
 from tests.conftest import sample_cell_data
@@ -115,3 +115,25 @@ def test_separating_axis_test_on_hand_made_squares():
     turned = footprint_outline_mm(20, 20, 45.0, False)
     assert not _separated_xy(held + [21.0, 0], turned)[0]
     assert _separated_xy(held + [24.2, 0], turned)[0]
+
+
+def test_parts_standing_against_each_other_are_lifted_but_one_part_on_another_is_not():
+    # two 22 mm cubes face to face: centres 22 mm apart in truth, seen 21.99 mm apart (a photo's error),
+    # a 0.01 mm overlap of their footprints. Solids cannot overlap, so they touch: the straight rise off
+    # the table slides along the neighbour's face (plane geometry) and both are planned. Seen 19 mm apart
+    # (a 3 mm overlap, deeper than held.TOUCH_DEPTH_MM) they are no such pair: the rise would go through
+    # the other part, which stays an obstacle (its top 22 + 2 mm clearance).
+    cell = _cell(22.0)
+    for gap_mm, planned in ((21.99, ["planned", "planned"]), (19.0, ["rejected", "rejected"])):
+        a = PartTarget("a", "red", (180.0, 0.0), 22.0, length_mm=22, width_mm=22)
+        b = PartTarget("b", "blue", (180.0 + gap_mm, 0.0), 22.0, length_mm=22, width_mm=22)
+        plan = Planner(cell).plan([a, b], order="detected")
+        assert [o.status for o in plan.parts] == planned, gap_mm
+        if gap_mm < 20:
+            assert [(o.rejection.check.value, o.rejection.segment, o.rejection.limit) for o in plan.parts] == [
+                ("held_part", "rise", 24.0)] * 2
+            assert "part a (bottom at z=0.0 mm) would hit part b (top z=22 mm + 2 mm)" in plan.parts[0].rejection.detail
+    assert touching_parts([PartTarget("a", "red", (0.0, 0.0), 22.0, length_mm=22, width_mm=22),
+                           PartTarget("b", "red", (21.5, 0.0), 22.0, length_mm=22, width_mm=22),
+                           PartTarget("c", "red", (44.0, 0.0), 22.0, length_mm=22, width_mm=22)]).tolist() == [
+        [False, True, False], [True, False, False], [False, False, False]]   # b-c: 0.5 mm apart, not overlapping
