@@ -19,6 +19,7 @@ from gripsight.vision.topface import (
     beyond_silhouette_mm,
     expected_area_mm2,
     min_rect,
+    place_top_faces,
     score_top_faces,
     top_face_guess,
     top_faces_overlap,
@@ -172,13 +173,18 @@ def _piece_fits(search: BlobSearch, outline_mm, normals, k_blob, pieces, members
     # a piece whose own stretch has no outer half (a corner piece of an L whose outside faces the nadir: its
     # far side is the cut) is fitted to all of its stretch (a problem centred on its nadir keeps every point)
     again = [i for i, sc in enumerate(scores) if sc.scale_ratio != sc.scale_ratio]
-    for i, sc in zip(again, score_top_faces([replace(problems[i], nadir=problems[i].centre) for i in again])):
+    for i in again:
+        problems[i] = replace(problems[i], nadir=problems[i].centre)
+    for i, sc in zip(again, score_top_faces([problems[i] for i in again])):
         scores[i] = sc
     best: dict[int, tuple] = {}
-    for (j, name, k), score in zip(owners, scores):
+    for i, ((j, name, k), score) in enumerate(zip(owners, scores)):
         if score.fit is not None and (j not in best or score.median_mm < best[j][3]):
-            best[j] = (name, search.cell.parts[name], k, score.median_mm, score.fit)
-    fits = [(best[j][0], best[j][1], best[j][2], best[j][4]) if j in best else None for j in range(len(pieces))]
+            best[j] = (name, search.cell.parts[name], k, score.median_mm, i)
+    chosen = sorted(best)
+    placed = dict(zip(chosen, place_top_faces([problems[best[j][4]] for j in chosen],
+                                              [scores[best[j][4]].fit for j in chosen])))
+    fits = [(best[j][0], best[j][1], best[j][2], placed[j]) if j in best else None for j in range(len(pieces))]
     if any(f is None for f in fits):
         return fits, False
     beyond = np.min([beyond_silhouette_mm(outline_mm, fit, search.nadir, k, cls) for _, cls, k, fit in fits], axis=0)

@@ -12,6 +12,14 @@ along the line joining the two colours (so a red part against wood and against i
 same test), and the edge is where the profile's area on the near side equals that on the far side:
 for a step blurred by any symmetric spread that is the step itself (the area, or partial-area, idea of
 sub-pixel edge location; e.g. Trujillo-Pino et al., Image and Vision Computing 31(1), 2013, from memory).
+That holds when the profile is centred on the edge, or long enough for both ends to lie beyond the
+blur; from a mask outline a pixel or two inside a soft edge the far end lies in the blur and the edge
+comes out inward. So the profile is read again centred on the edge found, until the edge stays (moves
+less than 0.05 px; at most 6 more times): centred, both ends lie in the blur alike and the area finds
+the step. Measured on the outside set's cubes (outer top-face edges against the truth's projected top
+faces): hard photos (blurred, JPEG 70) -0.91 / -0.70 px (shadow / lit side) after one reading, -0.09 /
+-0.14 px read until it stays; nominal photos -0.17 / -0.11 -> +0.03 / -0.01 px. A reading that would move
+an edge a pixel or more has found another edge (a neighbour, a shadow's far side) and is not taken.
 
 The samples are the photo's own 8-bit codes, not linear light. Optics blur linear light, but at the
 scale of a pixel what mixes neighbours in a delivered photo is mostly its processing (demosaicing,
@@ -46,6 +54,9 @@ _MIN_CONTRAST = 0.15     # the step, relative to the brighter side's level
 _SAME_CHROMA = 0.25       # a shading step keeps the colour: chromaticity within a quarter of its colourfulness
 _DARKER = 0.8             # ... and loses at least a fifth of its light
 _PIXEL_EDGE_PX = 0.5     # a pixel-centre outline lies half a pixel inside its region's boundary
+_MORE_PASSES = 6         # profiles centred again on the edge found, at most this many times ...
+_SETTLED_PX = 0.05       # ... while the edge still moves more than this
+_MAX_MOVE_PX = 1.0       # a pass that moves an edge further found another edge: the previous place stays
 
 
 def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tuple[list[np.ndarray], list[np.ndarray]]:
@@ -54,10 +65,32 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
     point lies on a shading step, not an edge (beyond it: the same colour, only darker)."""
     if not outlines_px:
         return [], []
-    h, w = image_bgr.shape[:2]
     lengths = np.cumsum([len(o) for o in outlines_px])[:-1]
     pts = np.concatenate(outlines_px).astype(float)
     normals = np.concatenate(outlines_geometry([np.asarray(o, float) for o in outlines_px])[2])
+    e, clear, near, far = _edge_offsets(image_bgr, pts, normals)
+    # then again with each profile centred on the edge just found, until it stays: from a mask outline a
+    # pixel or more inside the edge the far plateau lies in the blur, which pulls the area's edge inward;
+    # centred on the edge, the two plateaus lie in the blur alike and the area finds the step itself
+    moving = np.flatnonzero(clear)
+    for _ in range(_MORE_PASSES):
+        if not len(moving):
+            break
+        step, clear_again, _, _ = _edge_offsets(image_bgr, pts[moving] + e[moving, None] * normals[moving], normals[moving])
+        ok = clear_again & (np.abs(step) < _MAX_MOVE_PX)
+        e[moving[ok]] += step[ok]
+        moving = moving[ok & (np.abs(step) > _SETTLED_PX)]
+    offset = np.where(clear, e, _PIXEL_EDGE_PX)
+    shaded = np.zeros(len(pts), bool)
+    darker = np.flatnonzero(clear & (far.sum(axis=1) < near.sum(axis=1)))
+    shaded[darker] = _shading_step(near[darker], far[darker])
+    return np.split(pts + offset[:, None] * normals, lengths), np.split(shaded, lengths)
+
+
+def _edge_offsets(image_bgr: np.ndarray, pts: np.ndarray, normals: np.ndarray):
+    """Per point (N, 2 px) and unit normal: the edge's offset along the normal (px), whether the profile
+    shows a clear step, and the two sides' levels (N, 3 codes each)."""
+    h, w = image_bgr.shape[:2]
     s = np.arange(-_REACH_PX, _REACH_PX + 1e-9, _STEP_PX).astype(np.float32)
     map_u = (pts[:, 0, None] + s * normals[:, 0, None]).astype(np.float32)        # (N, S)
     map_v = (pts[:, 1, None] + s * normals[:, 1, None]).astype(np.float32)
@@ -76,11 +109,7 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
     e = _STEP_PX * (inner.sum(axis=1) - 0.5 * (inner[:, 0] + inner[:, -1])) - _REACH_PX
     brighter = np.maximum(near.max(axis=1), far.max(axis=1))
     clear = inside_photo & (size2 >= (_MIN_CONTRAST * brighter) ** 2) & (np.abs(e) < _REACH_PX - 1.0)
-    offset = np.where(clear, e, _PIXEL_EDGE_PX)
-    shaded = np.zeros(len(pts), bool)
-    darker = np.flatnonzero(clear & (far.sum(axis=1) < near.sum(axis=1)))
-    shaded[darker] = _shading_step(near[darker], far[darker])
-    return np.split(pts + offset[:, None] * normals, lengths), np.split(shaded, lengths)
+    return e, clear, near, far
 
 
 def _shading_step(near: np.ndarray, far: np.ndarray) -> np.ndarray:

@@ -412,10 +412,9 @@ def _parts_of_blob(b: _Blob, top_fit, nadir, parallax: bool) -> list[DetectedPar
                                           b.delta_e, piece_px))
                 continue
         if top is not None:
+            # the top face placed at its known size; the area's estimate is not averaged in (it was, when
+            # the face's size was free: own renders' pick points 0.158 mm RMS averaged, 0.121 mm alone)
             centre, used = nadir + (top - nadir) / b.k, "top_outline"
-            by_area, model = footprint_centre(piece_m, piece_area * b.k * b.k, nadir, b.k, expected, "auto")
-            if model == "silhouette":       # the whole visible part is in the blob: two estimates
-                centre, used = 0.5 * (centre + by_area), "top_outline+silhouette"
         else:
             centre, used = (piece_m, "none") if not parallax else footprint_centre(
                 piece_m, piece_area * b.k * b.k, nadir, b.k, expected, b.mode)

@@ -9,6 +9,7 @@ import cv2
 import numpy as np
 import pytest
 
+from gripsight.vision import outlineedge
 from gripsight.vision.outlineedge import edge_outlines_px
 
 _SS = 16
@@ -96,3 +97,25 @@ def test_a_shadow_across_the_top_face_is_not_taken_for_its_edge():
     assert not shaded[at_wood].any()
     # the wood edge lands on x = 9.5 (the boundary between pixel columns 9 and 10)
     np.testing.assert_allclose(refined[0][at_wood, 0], 9.5, atol=0.15)
+
+
+def test_a_soft_edge_is_found_from_a_mask_outline_two_pixels_inside(monkeypatch):
+    """A circle blurred with a Gaussian of 1.6 px (a soft lens, a small photo), its mask outline taken 2 px
+    inside the edge: one reading of the 7-sample profile leaves its far end in the blur and comes out
+    inside; read again centred on the edge until it stays, the symmetric blur puts the edge on the circle
+    (the area method is exact for a symmetric spread centred on the step: Trujillo-Pino et al. 2013, from
+    memory)."""
+    centre, r = (60.4, 59.7), 30.0
+    coverage = _coverage((120, 120), centre, r)
+    img = coverage[..., None] * np.array((40.0, 170.0, 70.0)) + (1 - coverage[..., None]) * np.array((20.0, 25.0, 30.0))
+    img = np.clip(cv2.GaussianBlur(img, (0, 0), 1.6) + 0.5, 0, 255).astype(np.uint8)
+    t = np.linspace(0, 2 * np.pi, 180, endpoint=False)
+    inside = np.column_stack([centre[0] + (r - 2.0) * np.cos(t), centre[1] + (r - 2.0) * np.sin(t)])
+    refined = edge_outlines_px(img, [inside])[0][0]
+    d = np.hypot(*(refined - centre).T) - r
+    # a blurred circle's edge lies about sigma^2 / 2r = 0.04 px inside it (curvature), and the reading stops
+    # once the edge moves less than 0.05 px
+    assert abs(d.mean()) <= 0.1 and np.sqrt((d ** 2).mean()) <= 0.12
+    monkeypatch.setattr(outlineedge, "_MORE_PASSES", 0)
+    once = np.hypot(*(edge_outlines_px(img, [inside])[0][0] - centre).T) - r
+    assert once.mean() < -0.25                 # one reading: inside, by more than a quarter of a pixel

@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 
 from gripsight.vision.robust import masked_median
-from gripsight.vision.topface import TopFaceProblem, fit_top_faces, outward_normals
+from gripsight.vision.topface import TopFaceProblem, fit_top_faces, outward_normals, score_top_faces
 
 
 def _circle(centre, radius, n=240):
@@ -77,3 +77,25 @@ def test_masked_median_matches_numpy():
     mask[3] = False
     expected = [np.median(v[m]) if m.any() else np.nan for v, m in zip(values, mask)]
     np.testing.assert_allclose(masked_median(values, mask), expected)
+
+
+def test_a_face_placed_at_its_known_size_is_not_moved_by_noise_on_its_outer_half():
+    """25 mm square top faces (k 1.035, nadir at the origin, 150 mm out along +x) turned 30 and 45 degrees,
+    so the outer half the fit sees is two edges meeting at a corner, with 0.15 mm of noise on every outline
+    point. With its size free the fit can shrink the face toward that corner or grow it away, and its
+    centre follows; at its known size (25 k) the face can only move. Plane geometry: the true centre is
+    known."""
+    rng = np.random.default_rng(1)
+    k, centre = 1.035, np.array([150.0, 0.0])
+    free_err, placed_err = [], []
+    for yaw in (30.0, 45.0, 30.0, 45.0):
+        outline = _rectangle(centre, k * 25.0, k * 25.0, np.radians(yaw), per_side=120)
+        outline += rng.normal(0.0, 0.15, outline.shape)
+        problem = _problem(outline, centre + (0.8, -0.5), k, False, (12.5, 12.5), yaw + 3.0)
+        free = score_top_faces([problem])[0].fit
+        placed = fit_top_faces([problem])[0]
+        assert placed[2] == free[2]            # the measured size stays the free fit's
+        free_err.append(np.hypot(*(free[0] - centre)))
+        placed_err.append(np.hypot(*(placed[0] - centre)))
+    assert max(placed_err) < 0.1
+    assert np.sqrt(np.mean(np.square(free_err))) > 3 * np.sqrt(np.mean(np.square(placed_err)))
