@@ -674,6 +674,8 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         "size-tiny": k_ok + zeros + "image_width: 1.0e-300\nimage_height: 1.0e-300\n",
         "size-text": k_ok + zeros + "image_width: wide\nimage_height: 960\n",
         "size-one-of-two": k_ok + zeros + "image_width: 1280\n",
+        # third pass: read with the cell file's YAML rules (PyYAML's safe_load kept the last of two keys)
+        "duplicate-key": k_ok + zeros + "camera_matrix: [[800, 0, 640], [0, 800, 480], [0, 0, 1]]\n",
     }
     for name, text in lenses.items():
         lens = ndir / f"lens-{name}.yaml"
@@ -683,6 +685,8 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         path = _dump(ndir / f"cell-lens-{name}.yaml", data)
         add(f"lens/{name}", ["calibrate", calib_photo, "--cell", path, "--out", ndir / f"o-lens-{name}.yaml"], "error",
             BAD_INPUT, f"lens-{name}.yaml")
+    add("lens/duplicate-key/validate", ["validate", ndir / "cell-lens-duplicate-key.yaml"], "error", BAD_INPUT,
+        "lens-duplicate-key.yaml: line 3, column 1: YAML error: duplicate key 'camera_matrix'")
     # ------------------------------------------------------------ render options and scenes
     cell_path = CELL[1]
     for name, opts, fragment in [("shift-nan", ["--camera-shift-mm", "nan"], "--camera-shift-mm"),
