@@ -265,7 +265,8 @@ def run(
     def report(photo, summary):
         picked = sum(summary["picked"].values())
         rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
-        line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}: "
+        again = " (again: written since it was refused)" if summary.get("again") else ""
+        line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}{again}: "
         line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
                  else f"{summary['status']}: {summary['message']}")
         result_rows.append(summary)
