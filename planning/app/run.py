@@ -28,7 +28,7 @@ from gripsight.app.export import CSV_COLUMNS, joints_csv_text
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, utc_now, write_text_atomic
 from gripsight.planning.checks import Check
 
-__all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
+__all__ = ["RunResult", "run_folder", "photos_in", "not_photo_files", "PHOTO_SUFFIXES"]
 
 PHOTO_SUFFIXES = (".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp")
 _STATE = "run_state.json"
@@ -36,10 +36,31 @@ _STATE = "run_state.json"
 
 def photos_in(folder) -> list[Path]:
     """Photo files of a folder in name order (case-insensitive suffixes); .truth.yaml etc. ignored."""
+    return sorted(p for p in _named_like_photos(folder) if p.is_file())
+
+
+def not_photo_files(folder) -> list[str]:
+    """Entries of a folder named like photos that are no photo file (a folder, a link to nothing or to
+    itself, a pipe): left out of a run or batch, and said (``name (what it is)``)."""
+    out = []
+    for p in _named_like_photos(folder):
+        if p.is_file():
+            continue
+        what = ("a folder" if p.is_dir() else "a link that leads nowhere or to itself" if p.is_symlink()
+                else "not a regular file")
+        out.append(f"{p.name} ({what})")
+    return sorted(out)
+
+
+def _named_like_photos(folder) -> list[Path]:
     folder = Path(folder)
     if not folder.is_dir():
         raise InputError(f"{folder}: not a folder of photos")
-    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in PHOTO_SUFFIXES)
+    try:
+        entries = list(folder.iterdir())
+    except OSError as exc:
+        raise InputError(f"{folder}: the photo folder cannot be listed ({exc.strerror}); check its permissions") from None
+    return [p for p in entries if p.suffix.lower() in PHOTO_SUFFIXES]
 
 
 @dataclass

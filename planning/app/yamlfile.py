@@ -28,7 +28,8 @@ def read_yaml(path: str | os.PathLike, what: str = "file", max_bytes: int = MAX_
     path = Path(path)
     name = str(path)
     if not path.exists():
-        raise CellFileError(name, [Problem("", f"no such {what}")])
+        missing = f"a link that leads nowhere or to itself, not a {what}" if path.is_symlink() else f"no such {what}"
+        raise CellFileError(name, [Problem("", missing)])
     if path.is_dir():
         raise CellFileError(name, [Problem("", f"is a directory, not a {what}")])
     if not path.is_file():

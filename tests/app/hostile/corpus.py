@@ -22,6 +22,8 @@ import cv2
 import numpy as np
 import yaml
 
+from tests.app.hostile.third import third_pass
+
 __all__ = ["Case", "build_corpus"]
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -601,6 +603,7 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
     add("misc/run-empty-folder", ["run", pdir / "folder.jpg", *CELL, *CAL, "--out", root / "o-empty-run"], "error", None,
         "no photos")
     _newer_features(root, add, cell_data, photo, calib_photo, image, CELL, CAL)
+    third_pass(root, add, cell_data, cal_data, photo, calib_photo, CELL, CAL)
     assert len({c.name for c in cases}) == len(cases), "case names must be unique"
     return cases
 
