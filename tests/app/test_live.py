@@ -170,6 +170,17 @@ def _saved_demo_photos(tmp_path, n: int):
     return photos, saved
 
 
+def _reference_run_and_camera_folder(tmp_path, n: int):
+    """The live cell, the first n demo photos run from a saved folder into ``tmp_path/ref``, and an empty
+    folder ``tmp_path/cam`` for a camera to write into."""
+    cell, stored = _live_cell(tmp_path)
+    photos, saved = _saved_demo_photos(tmp_path, n)
+    run_folder(saved, cell, stored, tmp_path / "ref")
+    cam = tmp_path / "cam"
+    cam.mkdir()
+    return cell, stored, photos, cam
+
+
 @pytest.mark.slow
 def test_a_live_run_writes_the_sequence_a_run_over_saved_photos_writes(tmp_path, monkeypatch):
     cell, stored = _live_cell(tmp_path)
@@ -219,11 +230,7 @@ class _InterruptAfter:
 
 @pytest.mark.slow
 def test_ctrl_c_in_a_live_run_leaves_a_state_resume_continues(tmp_path):
-    cell, stored = _live_cell(tmp_path)
-    photos, saved = _saved_demo_photos(tmp_path, 4)
-    run_folder(saved, cell, stored, tmp_path / "ref")
-    cam = tmp_path / "cam"
-    cam.mkdir()
+    cell, stored, photos, cam = _reference_run_and_camera_folder(tmp_path, 4)
     camera = _Camera(photos[:3], cam)
     camera.start()
     first = run_folder(cam, cell, stored, tmp_path / "live", pictures=PictureWriter(),
@@ -308,11 +315,7 @@ def test_a_refused_photo_is_taken_again_once_written_again_and_a_good_one_only_o
 
 @pytest.mark.slow
 def test_a_live_run_retakes_a_photo_refused_as_cut_short_in_place_of_its_refusal(tmp_path):
-    cell, stored = _live_cell(tmp_path)
-    photos, saved = _saved_demo_photos(tmp_path, 2)
-    run_folder(saved, cell, stored, tmp_path / "ref")
-    cam = tmp_path / "cam"
-    cam.mkdir()
+    cell, stored, photos, cam = _reference_run_and_camera_folder(tmp_path, 2)
     state_path = tmp_path / "live" / "run_state.json"
 
     def summaries():
