@@ -166,6 +166,12 @@ class PhotoWatcher:
         if name in self._taken:
             self._refused[name] = self._taken[name]
 
+    @property
+    def awaiting_rewrite(self) -> set[str]:
+        """Names refused by the reader and not written since (each is handed over again once it is); safe to
+        read from another thread (dict.copy is one step under the GIL)."""
+        return set(self._refused.copy())
+
     # ---------------------------------------------------------------- the folder, listed
     def _scan(self, now_s: float) -> None:
         names = set()

@@ -369,3 +369,25 @@ def test_resume_retakes_a_refused_photo_whose_file_changed_and_keeps_it_once(tmp
     assert set(names) == {photos[1].name, photos[0].name, ""}      # "" : the move home
     unchanged = run_folder(saved, cell, stored, tmp_path / "run", resume=True, pictures=False)
     assert [s["photo"] for s in unchanged.photos] == [photos[1].name, photos[0].name]       # nothing taken twice
+
+
+def test_a_resumed_watch_keeps_waiting_for_a_refused_photo_and_takes_it_once_written(tmp_path):
+    cell, stored = _live_cell(tmp_path)
+    photos, cam = _saved_demo_photos(tmp_path, 2)
+    raw = photos[0].read_bytes()
+    (cam / photos[0].name).write_bytes(raw[:20000])                # cut short when the run saw it
+    run_folder(cam, cell, stored, tmp_path / "run", pictures=False)
+    watcher = PhotoWatcher(cam, PHOTO_SUFFIXES, settle_s=0.2, stall_s=0.3, poll_s=0.02, idle_stop_s=2.0)
+
+    def camera():                                      # the same bytes were skipped and are watched: written whole
+        while photos[0].name not in watcher.awaiting_rewrite:
+            time.sleep(0.02)
+        (cam / photos[0].name).write_bytes(raw)
+
+    writer = threading.Thread(target=camera, daemon=True)
+    writer.start()
+    again = run_folder(cam, cell, stored, tmp_path / "run", resume=True, photos=watcher, pictures=False)
+    writer.join(timeout=30)
+    assert [(s["photo"], s["status"], s.get("again", False)) for s in again.photos] == [
+        (photos[1].name, "planned", False), (photos[0].name, "planned", True)]
+    assert watcher.again == [photos[0].name]
