@@ -126,9 +126,8 @@ def load_opencv_lens(path, image_size: tuple[int, int] | None = None) -> OpenCVL
     ``image_size`` (width, height px) differs: the same aspect ratio scales the camera matrix (a photo
     resized by the camera; the distortion coefficients are in normalised coordinates and stay), another
     aspect ratio (a crop) is refused."""
-    import yaml
-
     from gripsight.vision.errors import LensFileError
+    from gripsight.vision.yamltext import YamlTextError, load_yaml_text
 
     from pathlib import Path
 
@@ -143,13 +142,13 @@ def load_opencv_lens(path, image_size: tuple[int, int] | None = None) -> OpenCVL
         raise LensFileError(f"{path}: cannot read the lens file ({exc.strerror}); check camera.lens_file") from None
     except UnicodeDecodeError:
         raise LensFileError(f"{path}: not a YAML lens file (not UTF-8 text)") from None
-    if text.startswith("%YAML"):
-        text = "\n".join(line for line in text.splitlines() if not line.startswith("%YAML"))
+    if text.startswith("%YAML"):       # OpenCV's "%YAML:1.0" (not YAML's directive): blanked, so lines keep their numbers
+        text = "\n".join("" if line.startswith("%YAML") else line for line in text.split("\n"))
         text = text.replace("!!opencv-matrix", "")
     try:
-        data = yaml.safe_load(text) or {}
-    except (yaml.YAMLError, RecursionError) as exc:
-        raise LensFileError(f"{path}: not a YAML lens file ({str(exc).splitlines()[0] if str(exc) else 'too deep'})") from None
+        data = load_yaml_text(text) or {}
+    except YamlTextError as exc:        # the app's YAML rules: a duplicated key is refused with its line, as in a cell file
+        raise LensFileError(f"{path}: {exc}") from None
     if not isinstance(data, dict):
         raise LensFileError(f"{path}: not a lens file: needs camera_matrix (3x3) and distortion_coefficients "
                             "(OpenCV's intrinsics YAML)")

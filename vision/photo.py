@@ -195,7 +195,7 @@ def read_photo(path, max_pixels: int | None = None) -> np.ndarray:
     max_pixels = max_pixels or _max_pixels_default()
     p = Path(path)
     if not p.exists():
-        raise PhotoError(f"{p}: no such photo")
+        raise PhotoError(f"{p}: a link that leads nowhere or to itself, not a photo" if p.is_symlink() else f"{p}: no such photo")
     if p.is_dir():
         raise PhotoError(f"{p}: is a folder, not a photo")
     if not p.is_file():

@@ -27,6 +27,8 @@ from gripsight.vision.lens import lens_from_dict
 __all__ = ["write_calibration", "read_calibration", "StoredCalibration", "history_path", "file_sha256"]
 
 Finite = Annotated[float, Field(allow_inf_nan=False)]
+#: a tone curve's power (light = code ** p) beyond these is no camera's: a typo or a damaged file
+_TONE_POWER = (0.2, 5.0)
 
 
 def file_sha256(path) -> str:
@@ -38,7 +40,8 @@ def file_sha256(path) -> str:
 
 
 class _Model(BaseModel):
-    model_config = ConfigDict(extra="ignore", allow_inf_nan=False)
+    # strict, as the cell file: a quoted "2.2" or a `yes` is not a number (lax mode read `yes` as 1.0)
+    model_config = ConfigDict(extra="ignore", strict=True, allow_inf_nan=False)
 
 
 class _Marker(_Model):
@@ -76,7 +79,7 @@ class _File(_Model):
     residual: dict[str, Finite]
     verdict: Annotated[Verdict, Field(strict=False)]
     notes: list[str] = []
-    tone_power: Annotated[float, Field(gt=0.2, lt=5.0, allow_inf_nan=False)] | None = None   # None: the sRGB curve
+    tone_power: Finite | None = None        # None: the sRGB curve; the range is checked in _content_problems
 
 
 class StoredCalibration:
@@ -217,6 +220,10 @@ def _content_problems(parsed: _File) -> list[Problem]:
             lens_from_dict(lens)
     except (KeyError, TypeError, ValueError) as exc:
         out.append(Problem("lens", f"invalid ({exc})"))
+    p = parsed.tone_power
+    if p is not None and not _TONE_POWER[0] < p < _TONE_POWER[1]:
+        out.append(Problem("tone_power", f"must be between {_TONE_POWER[0]:g} and {_TONE_POWER[1]:g} (the power of the "
+                                         f"photo's tone curve; leave it out for the sRGB curve), got {p:g}"))
     z = parsed.camera_centre_mm[2]
     if not z > 0:
         out.append(Problem("camera_centre_mm", f"the camera must be above the table (z > 0 mm), got z = {z:g} mm"))

@@ -9,7 +9,9 @@ watch starts, a photo is complete when its size and modification time have not c
 photo waits while a photo with an earlier name is still being written (up to ``stall_s`` without a
 change, after which the stalled one is taken as it is: reading it then says what is wrong with it).
 A photo that completes after later names were handed over is handed over as it comes. Each name is
-handed over once.
+handed over once, unless its reader said it could not use it (:meth:`PhotoWatcher.refused`: unreadable,
+cut short by a writer that paused past ``stall_s``): such a photo is handed over again once its file has
+changed (size or modification time other than when it was handed over) and is complete again.
 
 :class:`PictureWriter` draws a photo's pictures in a background thread, so the run goes on to the next
 photo as soon as its joint sequence is written.
@@ -93,6 +95,9 @@ class PhotoWatcher:
         self.use_watchdog = use_watchdog and watchdog_available()
         self.handed: set[str] = set()
         self.out_of_order: list[str] = []           # names handed over after a later name
+        self.again: list[str] = []                  # names handed over again (refused, then written again)
+        self._taken: dict[str, tuple[int, int]] = {}    # name -> (size, mtime_ns) when handed over
+        self._refused: dict[str, tuple[int, int]] = {}  # handed names the reader refused: taken again once changed
         self._seen: dict[str, _Seen] = {}
         self._before: set[str] = set()              # names in the folder before the file events started
         self._closed: set[str] = set()              # names closed/renamed in, from the event thread
@@ -154,6 +159,19 @@ class PhotoWatcher:
             self._observer.join(timeout=5)
             self._observer = None
 
+    def refused(self, photo) -> None:
+        """The reader could not use ``photo`` (unreadable, cut short, ...): hand it over again once its file
+        differs (size or modification time) from when it was handed over and is complete again."""
+        name = Path(photo).name
+        if name in self._taken:
+            self._refused[name] = self._taken[name]
+
+    @property
+    def awaiting_rewrite(self) -> set[str]:
+        """Names refused by the reader and not written since (each is handed over again once it is); safe to
+        read from another thread (dict.copy is one step under the GIL)."""
+        return set(self._refused.copy())
+
     # ---------------------------------------------------------------- the folder, listed
     def _scan(self, now_s: float) -> None:
         names = set()
@@ -168,7 +186,9 @@ class PhotoWatcher:
             closed, self._closed = self._closed, set()
         for entry in entries:
             name = entry.name
-            if name in self.handed or name.startswith(".") or Path(name).suffix.lower() not in self.suffixes:
+            if name.startswith(".") or Path(name).suffix.lower() not in self.suffixes:
+                continue
+            if name in self.handed and name not in self._refused:
                 continue
             try:
                 st = entry.stat()
@@ -176,6 +196,12 @@ class PhotoWatcher:
                 continue
             if not entry.is_file():
                 continue
+            if name in self._refused:
+                if (st.st_size, st.st_mtime_ns) == self._refused[name]:
+                    continue                         # refused, and not written since: wait
+                del self._refused[name]              # written again since it was refused: a new photo
+                self.handed.discard(name)
+                self.again.append(name)
             names.add(name)
             seen = self._seen.get(name)
             if seen is None or (seen.size, seen.mtime_ns) != (st.st_size, st.st_mtime_ns):
@@ -225,9 +251,10 @@ class PhotoWatcher:
                 for name in self._ready(now_s):
                     if self.stop.is_set():
                         return
-                    if self.handed and name < max(self.handed):
+                    if self.handed and name < max(self.handed) and name not in self.again:
                         self.out_of_order.append(name)
                     self.handed.add(name)
+                    self._taken[name] = (self._seen[name].size, self._seen[name].mtime_ns)
                     del self._seen[name]
                     with self._lock:
                         self._created.discard(name)

@@ -7,6 +7,7 @@ its outputs (the same file reached by two names counts: paths are compared resol
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 from gripsight.app.errors import GripsightError
@@ -32,7 +33,8 @@ def _same(a: Path, b: Path) -> bool:
             return a.samefile(b)
     except OSError:
         pass
-    return a.resolve() == b.resolve()
+    # os.path.realpath, not Path.resolve: a link loop (a -> a) is a path like any other, not a RuntimeError
+    return os.path.realpath(a) == os.path.realpath(b)
 
 
 def check_output_paths(files: dict | None = None, folders: dict | None = None, inputs: dict | None = None) -> None:
@@ -57,7 +59,8 @@ def check_output_paths(files: dict | None = None, folders: dict | None = None, i
         if path.is_dir():
             raise GripsightError(f"{path}: is a folder; {option} needs a file name inside or beside it")
         if (path.exists() or path.is_symlink()) and not path.is_file():       # before the work, not after it
-            raise GripsightError(f"{path}: not a regular file (a device, pipe or socket); {option} needs a file name")
+            raise GripsightError(f"{path}: not a regular file (a device, pipe, socket or a link to nowhere); "
+                                 f"{option} needs a file name")
     for option, path in folders.items():
         if path.exists() and not path.is_dir():
             raise GripsightError(f"{path}: is a file, not a folder; give {option} a folder")

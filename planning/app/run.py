@@ -6,6 +6,10 @@ atomically in ``OUT/run_state.json``, so an interrupted run resumes where it sto
 ``OUT/run.csv`` is the whole run's joint sequence on one clock, ending with the move home; it is
 rebuilt whenever the run stops from the joints.csv files this run wrote (known by their hashes in the
 run state), never from older files in the folder, and checked as a whole before it is written.
+
+A photo the run refused (unreadable, cut short, not registrable) moved nothing; if its file changes
+afterwards (another SHA-256 than when it was refused) it is taken again, at the end of the run so far: its
+refused entry in the run state is replaced, never doubled (see :func:`_take_again`).
 """
 
 from __future__ import annotations
@@ -24,7 +28,7 @@ from gripsight.app.export import CSV_COLUMNS, joints_csv_text
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, utc_now, write_text_atomic
 from gripsight.planning.checks import Check
 
-__all__ = ["RunResult", "run_folder", "photos_in", "PHOTO_SUFFIXES"]
+__all__ = ["RunResult", "run_folder", "photos_in", "not_photo_files", "PHOTO_SUFFIXES"]
 
 PHOTO_SUFFIXES = (".jpg", ".jpeg", ".png", ".bmp", ".tif", ".tiff", ".webp")
 _STATE = "run_state.json"
@@ -32,10 +36,31 @@ _STATE = "run_state.json"
 
 def photos_in(folder) -> list[Path]:
     """Photo files of a folder in name order (case-insensitive suffixes); .truth.yaml etc. ignored."""
+    return sorted(p for p in _named_like_photos(folder) if p.is_file())
+
+
+def not_photo_files(folder) -> list[str]:
+    """Entries of a folder named like photos that are no photo file (a folder, a link to nothing or to
+    itself, a pipe): left out of a run or batch, and said (``name (what it is)``)."""
+    out = []
+    for p in _named_like_photos(folder):
+        if p.is_file():
+            continue
+        what = ("a folder" if p.is_dir() else "a link that leads nowhere or to itself" if p.is_symlink()
+                else "not a regular file")
+        out.append(f"{p.name} ({what})")
+    return sorted(out)
+
+
+def _named_like_photos(folder) -> list[Path]:
     folder = Path(folder)
     if not folder.is_dir():
         raise InputError(f"{folder}: not a folder of photos")
-    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in PHOTO_SUFFIXES)
+    try:
+        entries = list(folder.iterdir())
+    except OSError as exc:
+        raise InputError(f"{folder}: the photo folder cannot be listed ({exc.strerror}); check its permissions") from None
+    return [p for p in entries if p.suffix.lower() in PHOTO_SUFFIXES]
 
 
 @dataclass
@@ -65,7 +90,9 @@ def _load_state(out: Path, folder: Path, cell, stored=None) -> dict:
     if stored is not None and state.get("calibration_sha256") != getattr(stored, "sha256", None):
         raise GripsightError(f"{path}: that run was made with another calibration file; run without --resume")
     photo_hashes = state.get("photo_sha256", {})
-    for name in state.get("done", []):
+    for name, summary in zip(state.get("done", []), state.get("summaries", [])):
+        if summary.get("status") == "error":
+            continue                                # moved nothing; changed since, it is taken again
         if photo_hashes.get(name) != _file_sha256(folder / name):
             raise GripsightError(f"{path}: photo {name} changed since that run planned it; run without --resume")
     return state
@@ -113,6 +140,18 @@ def _read_state(path: Path) -> dict:
     if len(state["summaries"]) != len(state["done"]):
         raise damaged("'summaries' and 'done' differ in length")
     return state
+
+
+def _take_again(state: dict, photo: Path) -> bool:
+    """Whether a photo already in the run state is to be taken again: it was refused and its file has changed
+    since. If so its refused entry is dropped from the state (it goes again at the end, on the run's clock)."""
+    i = state["done"].index(photo.name)
+    if state["summaries"][i].get("status") != "error":
+        return False
+    if state.get("photo_sha256", {}).get(photo.name) == _file_sha256(photo):
+        return False
+    del state["done"][i], state["summaries"][i]
+    return True
 
 
 def _file_sha256(path: Path) -> str | None:
@@ -212,8 +251,12 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
     remove_leftover_temps(out)
     result = RunResult()
     try:
+        refused = getattr(photos, "refused", None)      # a PhotoWatcher hands a refused photo again once it changes
         for photo in photos:
-            if photo.name in state["done"]:
+            again = photo.name in state["done"]
+            if again and not _take_again(state, photo):
+                if refused is not None and state["summaries"][state["done"].index(photo.name)].get("status") == "error":
+                    refused(photo)                  # the same bytes as refused (a resumed watch): wait for a change
                 continue
             state.setdefault("photo_sha256", {})[photo.name] = _file_sha256(photo)
             room = {name: b.capacity - state["bins"].get(name, 0) for name, b in cell.bins.items() if b.capacity}
@@ -222,16 +265,20 @@ def run_folder(folder, cell, stored, out, resume: bool = False, emptied: tuple =
                                 t0_s=state["t_s"], end_at_home=False, order=order, bin_room=room if room else None)
             except EXPECTED_ERRORS as exc:      # an unusable photo: said, skipped, the run goes on
                 summary = {"photo": photo.name, "status": "error", "registration": "", "message": str(exc),
-                           "picked": {}, "rejected": {}, "cycle_s": 0.0}
+                           "picked": {}, "rejected": {}, "cycle_s": 0.0, **({"again": True} if again else {})}
                 state["done"].append(photo.name)
                 state["summaries"].append(summary)
                 write_text_atomic(_state_path(out), strict_json(state, indent=1))
+                if refused is not None:
+                    refused(photo)
                 if progress is not None:
                     progress(photo, summary)
                 continue
             data, _ = write_photo_outputs(child_folder(out, photo.name), pp, cell, arm, stored,
                                           pictures=pictures is None)     # else in the background, or none
             summary = _summary(photo.name, pp, data)
+            if again:
+                summary["again"] = True
             joints = child_folder(out, photo.name) / "joints.csv"
             if pp.plan is not None and joints.is_file():       # written (and checked) just now by this run
                 state.setdefault("joints_sha256", {})[photo.name] = _sha256(joints.read_bytes())

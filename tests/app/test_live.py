@@ -170,6 +170,17 @@ def _saved_demo_photos(tmp_path, n: int):
     return photos, saved
 
 
+def _reference_run_and_camera_folder(tmp_path, n: int):
+    """The live cell, the first n demo photos run from a saved folder into ``tmp_path/ref``, and an empty
+    folder ``tmp_path/cam`` for a camera to write into."""
+    cell, stored = _live_cell(tmp_path)
+    photos, saved = _saved_demo_photos(tmp_path, n)
+    run_folder(saved, cell, stored, tmp_path / "ref")
+    cam = tmp_path / "cam"
+    cam.mkdir()
+    return cell, stored, photos, cam
+
+
 @pytest.mark.slow
 def test_a_live_run_writes_the_sequence_a_run_over_saved_photos_writes(tmp_path, monkeypatch):
     cell, stored = _live_cell(tmp_path)
@@ -219,11 +230,7 @@ class _InterruptAfter:
 
 @pytest.mark.slow
 def test_ctrl_c_in_a_live_run_leaves_a_state_resume_continues(tmp_path):
-    cell, stored = _live_cell(tmp_path)
-    photos, saved = _saved_demo_photos(tmp_path, 4)
-    run_folder(saved, cell, stored, tmp_path / "ref")
-    cam = tmp_path / "cam"
-    cam.mkdir()
+    cell, stored, photos, cam = _reference_run_and_camera_folder(tmp_path, 4)
     camera = _Camera(photos[:3], cam)
     camera.start()
     first = run_folder(cam, cell, stored, tmp_path / "live", pictures=PictureWriter(),
@@ -265,3 +272,122 @@ def test_run_watch_on_a_folder_that_goes_away_ends_with_the_arm_home_and_one_lin
     assert len(errors) == 1 and "the watched folder is gone" in errors[0] and "--resume --watch" in errors[0]
     run_csv = (tmp_path / "live" / "run.csv").read_text()
     assert "demo_01.jpg" in run_csv and "Traceback" not in err
+
+
+# ------------------------------------------------------------------ a writer that pauses past stall_s
+@pytest.mark.parametrize("events", MODES)
+def test_a_refused_photo_is_taken_again_once_written_again_and_a_good_one_only_once(tmp_path, events):
+    if events and not watchdog_available():
+        pytest.skip("watchdog is not installed")
+    raw = (SAMPLES / "demo" / "demo_01.jpg").read_bytes()
+    stop = threading.Event()
+    watcher = PhotoWatcher(tmp_path, PHOTO_SUFFIXES, settle_s=0.2, stall_s=0.3, poll_s=0.02, stop=stop,
+                           use_watchdog=events)
+    got: queue.Queue = queue.Queue()
+
+    def reader():                                      # the run: a photo shorter than its camera's refused
+        for path in watcher:
+            size = path.stat().st_size
+            if size < len(raw):
+                watcher.refused(path)
+            got.put((path.name, size))
+
+    thread = threading.Thread(target=reader, daemon=True)
+    thread.start()
+    try:
+        with open(tmp_path / "a.jpg", "wb") as a_file:
+            a_file.write(raw[:1000])
+            a_file.flush()
+            assert got.get(timeout=10) == ("a.jpg", 1000)    # stalled past stall_s: taken as it is, refused
+            a_file.write(raw[1000:])                           # the writer goes on and closes it
+        assert got.get(timeout=10) == ("a.jpg", len(raw))     # written since it was refused: taken again
+        (tmp_path / "b.jpg").write_bytes(raw)
+        assert got.get(timeout=10) == ("b.jpg", len(raw))     # read fine
+        (tmp_path / "b.jpg").write_bytes(raw[:500] + raw)      # written again, another size: still not taken
+        (tmp_path / "a.jpg").write_bytes(raw + b"\0")           # a's second take read fine: not taken again
+        (tmp_path / "c.jpg").write_bytes(raw)                   # the last name: whatever would come comes first
+        assert got.get(timeout=10) == ("c.jpg", len(raw))
+        assert got.empty() and watcher.again == ["a.jpg"] and watcher.out_of_order == []
+    finally:
+        stop.set()
+        thread.join(timeout=5)
+
+
+@pytest.mark.slow
+def test_a_live_run_retakes_a_photo_refused_as_cut_short_in_place_of_its_refusal(tmp_path):
+    cell, stored, photos, cam = _reference_run_and_camera_folder(tmp_path, 2)
+    state_path = tmp_path / "live" / "run_state.json"
+
+    def summaries():
+        try:
+            return json.loads(state_path.read_text())["summaries"]
+        except (OSError, ValueError):
+            return []
+
+    def camera():                                      # pauses mid-file past stall_s, goes on once refused
+        raw = photos[0].read_bytes()
+        with open(cam / photos[0].name, "wb") as fh:
+            fh.write(raw[:20000])
+            fh.flush()
+            while not any(s["status"] == "error" for s in summaries()):
+                time.sleep(0.05)
+            fh.write(raw[20000:])
+        while not (tmp_path / "live" / photos[0].name / "joints.csv").is_file():
+            time.sleep(0.05)
+        shutil.copy(photos[1], cam / photos[1].name)
+
+    writer = threading.Thread(target=camera, daemon=True)
+    writer.start()
+    watcher = PhotoWatcher(cam, PHOTO_SUFFIXES, settle_s=0.3, stall_s=0.3, poll_s=0.02, idle_stop_s=3.0)
+    live = run_folder(cam, cell, stored, tmp_path / "live", photos=watcher, pictures=False)
+    writer.join(timeout=30)
+    assert [(s["photo"], s["status"], s.get("again", False)) for s in live.photos] == [
+        (photos[0].name, "planned", True), (photos[1].name, "planned", False)]       # the refusal replaced
+    state = json.loads(state_path.read_text())
+    assert state["done"] == [p.name for p in photos] and len(state["summaries"]) == 2
+    assert _body(tmp_path / "live" / "run.csv") == _body(tmp_path / "ref" / "run.csv")
+    assert watcher.again == [photos[0].name]
+
+
+def test_resume_retakes_a_refused_photo_whose_file_changed_and_keeps_it_once(tmp_path):
+    cell, stored = _live_cell(tmp_path)
+    photos, saved = _saved_demo_photos(tmp_path, 2)
+    raw = photos[0].read_bytes()
+    (saved / photos[0].name).write_bytes(raw[:20000])              # cut short when the run saw it
+    first = run_folder(saved, cell, stored, tmp_path / "run", pictures=False)
+    assert [s["status"] for s in first.photos] == ["error", "planned"]
+    assert not (tmp_path / "run" / photos[0].name).exists()
+    (saved / photos[0].name).write_bytes(raw)                      # written whole afterwards
+    again = run_folder(saved, cell, stored, tmp_path / "run", resume=True, pictures=False)
+    assert [(s["photo"], s["status"], s.get("again", False)) for s in again.photos] == [
+        (photos[1].name, "planned", False), (photos[0].name, "planned", True)]     # on the run's clock, once
+    state = json.loads((tmp_path / "run" / "run_state.json").read_text())
+    assert state["done"] == [photos[1].name, photos[0].name]
+    assert (tmp_path / "run" / photos[0].name / "joints.csv").is_file()
+    names = [row.split(",")[0] for row in _body(tmp_path / "run" / "run.csv")[1:]]
+    assert names[:names.index(photos[0].name)] == [photos[1].name] * names.index(photos[0].name)
+    assert set(names) == {photos[1].name, photos[0].name, ""}      # "" : the move home
+    unchanged = run_folder(saved, cell, stored, tmp_path / "run", resume=True, pictures=False)
+    assert [s["photo"] for s in unchanged.photos] == [photos[1].name, photos[0].name]       # nothing taken twice
+
+
+def test_a_resumed_watch_keeps_waiting_for_a_refused_photo_and_takes_it_once_written(tmp_path):
+    cell, stored = _live_cell(tmp_path)
+    photos, cam = _saved_demo_photos(tmp_path, 2)
+    raw = photos[0].read_bytes()
+    (cam / photos[0].name).write_bytes(raw[:20000])                # cut short when the run saw it
+    run_folder(cam, cell, stored, tmp_path / "run", pictures=False)
+    watcher = PhotoWatcher(cam, PHOTO_SUFFIXES, settle_s=0.2, stall_s=0.3, poll_s=0.02, idle_stop_s=2.0)
+
+    def camera():                                      # the same bytes were skipped and are watched: written whole
+        while photos[0].name not in watcher.awaiting_rewrite:
+            time.sleep(0.02)
+        (cam / photos[0].name).write_bytes(raw)
+
+    writer = threading.Thread(target=camera, daemon=True)
+    writer.start()
+    again = run_folder(cam, cell, stored, tmp_path / "run", resume=True, photos=watcher, pictures=False)
+    writer.join(timeout=30)
+    assert [(s["photo"], s["status"], s.get("again", False)) for s in again.photos] == [
+        (photos[1].name, "planned", False), (photos[0].name, "planned", True)]
+    assert watcher.again == [photos[0].name]

@@ -91,6 +91,28 @@ def test_opencv_lens_file_round_trip(tmp_path):
     assert isinstance(lens, OpenCVLens)
 
 
+
+@pytest.mark.parametrize("header", ["", "%YAML:1.0\n---\n"])
+def test_lens_file_with_a_duplicated_key_is_refused_naming_the_key_and_its_line(tmp_path, header):
+    # PyYAML's safe_load keeps the last of two keys; the lens file is read as the cell file is (vision.yamltext)
+    from gripsight.vision.errors import LensFileError
+
+    path = tmp_path / "lens.yaml"
+    path.write_text(header + "camera_matrix: [[900, 0, 640], [0, 900, 480], [0, 0, 1]]\n"
+                    "distortion_coefficients: [0, 0, 0, 0, 0]\n"
+                    "camera_matrix: [[800, 0, 640], [0, 800, 480], [0, 0, 1]]\n")
+    line = 3 + header.count("\n")            # OpenCV's %YAML line is blanked, not dropped: lines keep their numbers
+    with pytest.raises(LensFileError) as info:
+        load_opencv_lens(path)
+    assert str(info.value) == f"{path}: line {line}, column 1: YAML error: duplicate key 'camera_matrix'"
+
+
+def test_lens_file_reads_yaml_1_2_numbers(tmp_path):
+    path = tmp_path / "lens.yaml"
+    path.write_text("camera_matrix: [[9e2, 0, 640], [0, 9e2, 480], [0, 0, 1]]\ndistortion_coefficients: [-1e-1, 0, 0, 0]\n")
+    lens = load_opencv_lens(path)
+    assert lens.K[0, 0] == 900.0 and lens.dist[0] == -0.1
+
 # ------------------------------------------------------------------ calibration on renders
 def _cell(**camera):
     data = sample_cell_data()

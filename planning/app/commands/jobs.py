@@ -9,10 +9,23 @@ import typer
 
 from gripsight.app.commands.common import _find_cell, _floats, _progress, calibration_option, cell_option, command  # noqa: F401
 
+#: the longest --idle-stop: a week (inf or 1e308 watched for ever without saying so; leave the option out for that)
+_IDLE_STOP_MAX_S = 7 * 24 * 3600.0
+
 
 def _note(text: str) -> None:
     """A note on stderr (stdout may be JSON)."""
     typer.echo(f"note: {text}", err=True)
+
+
+def _note_not_photos(folder) -> None:
+    """Say the entries named like photos that a run or batch leaves out (a folder, a broken link)."""
+    from gripsight.app.run import not_photo_files
+
+    odd = not_photo_files(folder)
+    if odd:
+        more = f" and {len(odd) - 10} more" if len(odd) > 10 else ""
+        _note(f"{folder}: left out, named like photos but not photo files: {', '.join(odd[:10])}{more}")
 
 
 @command()
@@ -218,7 +231,7 @@ def run(
                                       help="Move at this fraction of the cell's speeds (a first, careful run)."),
     watch: bool = typer.Option(False, "--watch", help="Live cell: keep watching the folder and take each photo as "
                                                       "soon as it is completely written, until Ctrl-C."),
-    idle_stop: Optional[float] = typer.Option(None, "--idle-stop", min=0.1, metavar="SECONDS",
+    idle_stop: Optional[float] = typer.Option(None, "--idle-stop", min=0.1, max=_IDLE_STOP_MAX_S, metavar="SECONDS",
                                               help="With --watch: end the run (arm home) when no photo came for this long."),
     pictures: bool = typer.Option(True, "--pictures/--no-pictures",
                                   help="Draw each photo's overlay.png, joints.png and path.png (in the background, "
@@ -247,6 +260,7 @@ def run(
     stored = load_or_make_calibration(cfg, calibration, say=_note)
     console = Console(soft_wrap=True)  # long lines (commands to copy) stay whole
     total = len(photos_in(folder))
+    _note_not_photos(folder)
     source = None
     if watch:
         import signal
@@ -265,7 +279,8 @@ def run(
     def report(photo, summary):
         picked = sum(summary["picked"].values())
         rejected = ", ".join(f"{k} {v}" for k, v in summary["rejected"].items()) or "none"
-        line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}: "
+        again = " (again: written since it was refused)" if summary.get("again") else ""
+        line = f"[{len(result_rows) + 1}{'' if watch else f'/{total}'}] {photo.name}{again}: "
         line += (f"{picked} picked, rejected: {rejected}" if summary["status"] == "planned"
                  else f"{summary['status']}: {summary['message']}")
         result_rows.append(summary)
@@ -355,6 +370,7 @@ def _batch(folder, cell_path, calibration, out, workers, scheduler, resume, chos
     check_output_paths(folders={"--out": out}, inputs={"the photo folder": folder, "the cell file": cell_path,
                                                        "--calibration": calibration})
     n = len(photos_in(folder))
+    _note_not_photos(folder)
     stop = threading.Event()
 
     def _on_ctrl_c(signum, frame):

@@ -22,6 +22,8 @@ import cv2
 import numpy as np
 import yaml
 
+from tests.app.hostile.third import third_pass
+
 __all__ = ["Case", "build_corpus"]
 
 ROOT = Path(__file__).resolve().parents[3]
@@ -601,6 +603,7 @@ def build_corpus(root: Path) -> list[Case]:  # noqa: C901 - one long list of cas
     add("misc/run-empty-folder", ["run", pdir / "folder.jpg", *CELL, *CAL, "--out", root / "o-empty-run"], "error", None,
         "no photos")
     _newer_features(root, add, cell_data, photo, calib_photo, image, CELL, CAL)
+    third_pass(root, add, cell_data, cal_data, photo, calib_photo, CELL, CAL)
     assert len({c.name for c in cases}) == len(cases), "case names must be unique"
     return cases
 
@@ -674,6 +677,8 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         "size-tiny": k_ok + zeros + "image_width: 1.0e-300\nimage_height: 1.0e-300\n",
         "size-text": k_ok + zeros + "image_width: wide\nimage_height: 960\n",
         "size-one-of-two": k_ok + zeros + "image_width: 1280\n",
+        # third pass: read with the cell file's YAML rules (PyYAML's safe_load kept the last of two keys)
+        "duplicate-key": k_ok + zeros + "camera_matrix: [[800, 0, 640], [0, 800, 480], [0, 0, 1]]\n",
     }
     for name, text in lenses.items():
         lens = ndir / f"lens-{name}.yaml"
@@ -683,6 +688,8 @@ def _newer_features(root: Path, add, cell_data: dict, photo: Path, calib_photo: 
         path = _dump(ndir / f"cell-lens-{name}.yaml", data)
         add(f"lens/{name}", ["calibrate", calib_photo, "--cell", path, "--out", ndir / f"o-lens-{name}.yaml"], "error",
             BAD_INPUT, f"lens-{name}.yaml")
+    add("lens/duplicate-key/validate", ["validate", ndir / "cell-lens-duplicate-key.yaml"], "error", BAD_INPUT,
+        "lens-duplicate-key.yaml: line 3, column 1: YAML error: duplicate key 'camera_matrix'")
     # ------------------------------------------------------------ render options and scenes
     cell_path = CELL[1]
     for name, opts, fragment in [("shift-nan", ["--camera-shift-mm", "nan"], "--camera-shift-mm"),

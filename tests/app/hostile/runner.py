@@ -74,6 +74,7 @@ def _env(case: Case) -> dict:
                 "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1", "OPENCV_FOR_THREADS_NUM": "1",
                 "MPLBACKEND": "Agg", "COLUMNS": "200", "PYTHONWARNINGS": "ignore"})
     env.pop("GRIPSIGHT_HOSTILE_READONLY", None)
+    env.pop("GRIPSIGHT_HOSTILE_UNREADABLE", None)
     env.pop("GRIPSIGHT_MAX_PIXELS", None)
     if case.readonly is not None:
         env["GRIPSIGHT_HOSTILE_READONLY"] = str(case.readonly)

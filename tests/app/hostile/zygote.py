@@ -39,10 +39,9 @@ def _child(req: dict) -> None:
     os.environ.update(req["env"])
     code = 1
     try:
-        if req.get("readonly"):
-            from tests.app.hostile.shim import _install_readonly
+        from tests.app.hostile.shim import install_faults
 
-            _install_readonly(req["readonly"])
+        install_faults(req.get("readonly", ""))
         from gripsight.app.cli import main
 
         code = main(req["argv"])
