@@ -85,6 +85,8 @@ def stands_in_front(layout, size_mm: float, margin_mm: float, camera_centre_mm) 
         square = marker_paper_corners_mm(placement, size_mm)[:, :2]
         zone = marker_paper_corners_mm(placement, size_mm, 0.5 * margin_mm)[:, :2]
         for stand_id, outline in stands.items():
+            if np.any(outline.min(axis=0) > zone.max(axis=0)) or np.any(outline.max(axis=0) < zone.min(axis=0)):
+                continue                                                     # their boxes are apart
             over_zone = polygon_area(convex_overlap(outline, zone))
             if over_zone <= 0:
                 continue
