@@ -6,8 +6,12 @@ Every corner of every marker lying on the table is a correspondence (photo pixel
    raised markers (they serve the camera centre, not the table plane).
 2. ``H_table_from_pixel`` is fitted jointly with the lens (Fitzgibbon's division model when the cell asks
    ``lens: estimate``) by ``scipy.optimize.least_squares`` on the table-mm residuals, starting from the
-   normalised DLT. A marker whose residual is an outlier among the others (robust z-score > 5 and more
-   than 1 mm) has moved on the table: it is named, left out, and the fit is repeated.
+   normalised DLT. A marker that the fit of the others puts more than 1 mm and 5x their typical residual
+   from its place is left out, and the fit is repeated. Why it is off is then read from its corners:
+   through the others' fit they still make its printed square (a rigid move: it has *moved* on the
+   table), or they do not (a side short, a corner off: something stands in front of it, it is *hidden*).
+   With the camera centre (step 4), a raised marker's stand whose image on the table covers a marker's
+   square or quiet zone is named: set aside as hidden by it, or kept, with a note, if its corners fit.
 3. The division model is kept only when it lowers the RMS residual by at least 20 % and the markers
    reach far enough from the image centre to show the distortion; otherwise no lens correction.
 4. The camera centre: measured (``camera.centre_mm``), or from raised markers. A raised corner P at height
@@ -29,12 +33,13 @@ from gripsight.vision.homography import FitFailure, TableMapping, apply_homograp
 from gripsight.vision.lens import DivisionLens, NoLens
 from gripsight.vision.settings import LensMode
 from gripsight.vision.markers import MarkerDetection
-from gripsight.vision.markergeom import marker_paper_corners_mm
+from gripsight.vision.markergeom import marker_paper_corners_mm, stands_in_front
 
 __all__ = ["Calibration", "CalibrationError", "MarkerFit", "MarkerRole", "CentreSource", "Verdict", "calibrate",
            "camera_centre_from_raised", "VERDICTS"]
 
 _MOVED_MIN_MM = 1.0
+_OUTLIER_FACTOR = 5.0       # beyond this many times the other markers' typical residual, a marker is off
 _LENS_GAIN = 0.8            # keep the division model if it brings the RMS below 80 % of the plain fit
 _LENS_MIN_REACH = 0.55      # ... and used corners reach this fraction of the half-diagonal from the centre
 _CENTRE_MIN_MARKERS = 6     # markers needed to fit the distortion centre as well
@@ -70,7 +75,8 @@ class MarkerRole(StrEnum):
 
     USED = "used"                          # its corners went into the table mapping
     RAISED = "raised"                      # above the table: used for the camera centre
-    MOVED = "moved"                        # set aside: the others put it elsewhere (moved on the table?)
+    MOVED = "moved"                        # set aside: the others put its printed square elsewhere (moved on the table?)
+    HIDDEN = "hidden"                      # set aside: its corners do not make its printed square (partly hidden)
     NOT_IN_LAYOUT = "not_in_layout"        # an id the cell's layout does not have
     DUPLICATE = "duplicate"                # an id seen more than once in the photo
 
@@ -233,7 +239,8 @@ def _fit_used(fits, lens_kind, image_size, fixed_lens, photo):
 
 def _fit_with_outliers(fits, lens_kind, image_size, fixed_lens, photo):
     """Fit, then test the worst marker against a fit of the others (leave one out): if the others
-    predict it more than 1 mm and 5x their own typical residual away, it has moved; repeat."""
+    predict it more than 1 mm and 5x their own typical residual away, it is set aside (moved or hidden:
+    :func:`_why_off`); repeat."""
     while True:
         mapping, res = _fit_used(fits, lens_kind, image_size, fixed_lens, photo)
         used = [f for f in fits if f.used]
@@ -249,12 +256,90 @@ def _fit_with_outliers(fits, lens_kind, image_size, fixed_lens, photo):
         rest = [f for f in fits if f.used]
         predicted = float(_marker_residuals(others, [worst])[0])
         typical = float(np.median(_marker_residuals(others, rest)))
-        if predicted > max(_MOVED_MIN_MM, 5.0 * typical):
-            worst.reason = f"moved on the table? {predicted:.1f} mm from where the other markers put it"
-            worst.role = MarkerRole.MOVED
+        if predicted > max(_MOVED_MIN_MM, _OUTLIER_FACTOR * typical):
+            worst.role, worst.reason = _why_off(worst, others, typical)
             continue
         worst.used = True
         return mapping, res
+
+
+def _rigid_fit_mm(square_mm: np.ndarray, seen_mm: np.ndarray) -> tuple[np.ndarray, float, float]:
+    """The rigid motion that best puts a printed square's corners (4, 2) table mm on the corners seen
+    (4, 2) table mm, by least squares (the 2-D case of Kabsch's fit: the turn about the centroids from the
+    summed cross and dot products): (shift (2,) mm, turn rad, RMS mm of what it leaves)."""
+    p0, q0 = square_mm.mean(axis=0), seen_mm.mean(axis=0)
+    a, b = square_mm - p0, seen_mm - q0
+    turn = float(np.arctan2((a[:, 0] * b[:, 1] - a[:, 1] * b[:, 0]).sum(), (a * b).sum()))
+    rot = np.array([[np.cos(turn), -np.sin(turn)], [np.sin(turn), np.cos(turn)]])
+    rest = b - a @ rot.T
+    return q0 - p0, turn, float(np.sqrt((rest ** 2).sum(axis=1).mean()))
+
+
+def _why_off(fit: MarkerFit, others: TableMapping, typical_mm: float) -> tuple[MarkerRole, str]:
+    """Why a marker the others put elsewhere is off. A marker moved on the table is still its printed
+    square: through the others' mapping its corners fit the square by a rigid motion, leaving no more
+    than the others' own scatter. A marker partly hidden (a stand, a part over its edge, an arm in the
+    photo) was found by the part of its edges in view: a side comes out short or a corner off, and no
+    rigid motion explains its corners (more than ``_OUTLIER_FACTOR`` times the others' typical residual
+    is left, the test that set it aside)."""
+    seen = others(fit.corners_px)
+    square = fit.corners_mm[:, :2]
+    shift, turn, rest = _rigid_fit_mm(square, seen)
+    off = float(np.sqrt(((seen - square) ** 2).sum(axis=1).mean()))
+    if rest > _OUTLIER_FACTOR * typical_mm:
+        sides = np.linalg.norm(seen - np.roll(seen, -1, axis=0), axis=1)
+        printed = float(np.linalg.norm(square[1] - square[0]))
+        return MarkerRole.HIDDEN, (f"partly hidden? its corners do not make its printed {printed:g} mm square (sides "
+                                   f"{sides.min():.1f}-{sides.max():.1f} mm; {off:.1f} mm from where the other markers "
+                                   "put it): something over its edge or in front of it")
+    turned = f", turned {np.degrees(turn):.1f} deg," if abs(np.degrees(turn)) >= 0.05 else ""
+    return MarkerRole.MOVED, (f"moved on the table? {np.linalg.norm(shift):.1f} mm{turned} from where the other "
+                              "markers put it")
+
+
+def _left_out_mm(fits: list[MarkerFit], fit: MarkerFit, mapping: TableMapping, image_size) -> tuple[float, float]:
+    """How far the other used markers put a used one (RMS over its corners, mm) and their own typical (median)
+    residual, by a fit of the others through the mapping's lens; (0, inf) where the others cannot be fitted."""
+    rest = [f for f in fits if f.used and f is not fit]
+    if len(rest) < 4:
+        return 0.0, np.inf
+    uv = np.concatenate([f.corners_px for f in rest])
+    xy = np.concatenate([f.corners_mm[:, :2] for f in rest])
+    try:
+        others, _ = _fit(uv, xy, "fixed", image_size, fixed_lens=mapping.lens)
+    except (FitFailure, ValueError):
+        return 0.0, np.inf
+    return float(_marker_residuals(others, [fit])[0]), float(np.median(_marker_residuals(others, rest)))
+
+
+def _stands_in_front(fits: list[MarkerFit], cell, centre_mm: np.ndarray, mapping: TableMapping, image_size,
+                     notes: list[str]) -> set[int]:
+    """Name the raised markers' stands that cover a table marker as the camera at ``centre_mm`` sees it
+    (:func:`gripsight.vision.markergeom.stands_in_front`): a marker set aside is hidden by the stand; one
+    not seen gets a note. One kept is tested again without the 1 mm floor of the leave-one-out test (the
+    floor keeps small offsets from being called moves; here the cause is known): if the others put it more
+    than ``_OUTLIER_FACTOR`` times their typical residual away, its id is returned (to be set aside), else
+    it stays, with a note. Returns the ids to set aside."""
+    seen = {f.id: f for f in fits if f.corners_mm is not None and not f.raised
+            and f.role in (MarkerRole.USED, MarkerRole.MOVED, MarkerRole.HIDDEN)}
+    off = set()
+    for o in stands_in_front(cell.markers.layout, cell.markers.size_mm, cell.markers.margin_mm, centre_mm):
+        f = seen.get(o.marker_id)
+        where = f"raised marker {o.stand_id}'s stand stands in front of marker {o.marker_id} as the camera sees it"
+        if f is None:
+            notes.append(f"{where} ({o.describe()}); marker {o.marker_id} not seen")
+        elif f.used:
+            predicted, typical = _left_out_mm(fits, f, mapping, image_size)
+            if predicted > _OUTLIER_FACTOR * typical:
+                off.add(f.id)
+            else:
+                notes.append(f"{where} ({o.describe()}); its corners fit ({predicted:.2f} mm from where the other "
+                             "markers put them), kept")
+        else:
+            f.role = MarkerRole.HIDDEN
+            f.reason = (f"partly hidden by raised marker {o.stand_id}'s stand as the camera sees it ({o.describe()}); "
+                        f"its corners are {f.residual_mm:.1f} mm from where the other markers put them")
+    return off
 
 
 def camera_centre_from_raised(mapping: TableMapping, raised: list[MarkerFit]) -> np.ndarray:
@@ -333,7 +418,21 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
     if not detections:
         raise CalibrationError(f"{photo}: no {cell.markers.dictionary} markers found; check the dictionary in "
                                "the cell file, the lighting and the focus")
+    behind: set[int] = set()
+    while True:                  # again without the markers a stand covers whose corners are off (at most once each)
+        cal, more = _calibrate(detections, cell, image_size, photo, lens, behind)
+        if not more:
+            return cal
+        behind |= more
+
+
+def _calibrate(detections, cell, image_size, photo, lens, behind: set[int]) -> tuple[Calibration, set[int]]:
+    """:func:`calibrate` with the markers ``behind`` a stand set aside from the start; returns the calibration
+    and the markers a stand covers that were kept but whose corners the others put off (to set aside too)."""
     fits = _table_markers(detections, cell)
+    for f in fits:
+        if f.id in behind and f.used:
+            f.used, f.role, f.reason = False, MarkerRole.HIDDEN, "partly hidden by a raised marker's stand"
     mode = cell.camera.lens
     notes = []
     if lens is not None or mode == LensMode.NONE:
@@ -405,6 +504,7 @@ def calibrate(detections: list[MarkerDetection], cell, image_size: tuple[int, in
             notes.append(f"camera centre assumed: {centre[2]:.0f} mm up "
                          f"{'(camera.height_mm ' + format(height, 'g') + ' mm)' if cell.camera.height_mm else '(default; set camera.height_mm or add a raised marker)'}"
                          f", over the nadir the table's perspective shows ({centre[0]:.0f}, {centre[1]:.0f}) mm")
+    more = _stands_in_front(fits, cell, np.asarray(centre, float), mapping, image_size, notes)
     return Calibration(mapping, np.asarray(centre, float), source, fits, tuple(image_size), rms_mm, max_mm,
-                       rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes)
+                       rms_px, max_px, _verdict(rms_mm, max_mm, len(used)), notes), more
 

@@ -140,6 +140,7 @@ class _Result:
         self.score, self.markers_found, self.markers_expected, self.refusals = Score(), 0, 0, []
         self.statuses: dict[str, int] = {}
         self.calib_markers = "-"
+        self.set_aside: list[str] = []               # the calibration's reasons for table markers it left out
         self.warnings: dict[str, int] = {}           # warning or note -> photos
 
 
@@ -155,6 +156,10 @@ def run_look(name: str, look: dict, n: int, seed: int, folder: Path) -> _Result:
         cal, seen = calibrate_photo(image, cell, str(calib_photo))       # as `gripsight calibrate` does
         res.calib_markers = f"{len(seen)}/{len(cell.markers.layout)}, " + (
             "sRGB" if cal.tone_power is None else f"code^{cal.tone_power:g}")        # the grey-to-light curve found
+        aside = [f"{m.id} {m.role.value}" for m in cal.markers if not m.used and m.role.value != "raised"]
+        if aside:                                                         # table markers the calibration left out
+            res.calib_markers += ", set aside " + ", ".join(aside)
+            res.set_aside = [f"marker {m.id}: {m.reason}" for m in cal.markers if not m.used and m.role.value != "raised"]
         path = folder / "calibration.yaml"
         write_calibration(path, cal, cell, calib_photo)
         stored = read_calibration(path)
@@ -218,6 +223,8 @@ def main(argv=None) -> None:
             for msg, n in sorted(r.warnings.items(), key=lambda kv: -kv[1])[:4]:
                 print(f"    warning ({n} photos): {msg}")
             if args.verbose:
+                for msg in r.set_aside:
+                    print(f"    calibration: {msg}")
                 print(f"    verdicts: {r.statuses}")
                 for m in r.score.misses:
                     print(f"    missed {m[0]} part {m[1]} ({m[2]}); reported there: {', '.join(m[3]) or 'nothing'}")

@@ -13,13 +13,13 @@ import yaml
 from gripsight.app.cli import main
 from gripsight.app.cellfile import parse_cell
 from gripsight.app.calfile import read_calibration, write_calibration
-from gripsight.vision.calibration import CalibrationError, calibrate
+from gripsight.vision.calibration import CalibrationError, MarkerRole, calibrate
 from gripsight.vision.camera import Camera
 from gripsight.vision.drift import check_drift, register, work_area_grid_mm
 from gripsight.vision.homography import FitFailure, apply_homography, fit_homography_dlt
 from gripsight.vision.lens import DivisionLens, OpenCVLens, load_opencv_lens
 from gripsight.vision.markers import MarkerDetection, detect_markers
-from gripsight.app.photoset import read_truth
+from gripsight.app.photoset import demo_camera_spec, read_truth
 from gripsight.vision.synth.render import encode_photo, render_scene
 from gripsight.vision.synth.scene import CameraSpec, Scene, SensorSpec
 from tests.conftest import ROOT, SAMPLE_CELL, sample_cell_data
@@ -186,6 +186,97 @@ def test_a_marker_moved_on_the_table_is_named_and_left_out():
     assert _mapping_error_mm(cal.mapping, cam, cell).max() < 0.3
 
 
+def _demo_shot(size_mm: float, moved: dict | None = None, marker_3_y_mm: float = 255.0):
+    """The demo cell with markers of another size (as bench_looks' "markers 60 mm" renders it: the demo
+    camera, 760 mm above the markers' middle), photographed with the markers in ``moved`` (id -> (dx, dy)
+    mm) lying elsewhere than the cell file says; returns the cell file's cell and the calibration."""
+    data = sample_cell_data()
+    data["markers"]["size_mm"] = size_mm
+    data["markers"]["layout"][3]["y"] = marker_3_y_mm
+    cell = parse_cell(data)
+    for marker_id, (dx, dy) in (moved or {}).items():
+        data["markers"]["layout"][marker_id]["x"] += dx
+        data["markers"]["layout"][marker_id]["y"] += dy
+    drawn = parse_cell(data)
+    r = render_scene(drawn, Scene(camera=demo_camera_spec(drawn), sensor=SensorSpec(), table_seed=3))
+    return cell, calibrate(detect_markers(r.image_bgr, cell.markers.dictionary), cell, (1280, 960))
+
+
+def _set_aside(cal) -> dict:
+    return {m.id: m for m in cal.markers if not m.used and m.role is not MarkerRole.RAISED}
+
+
+def test_markers_the_raised_markers_stand_hides_are_hidden_not_moved():
+    """60 mm markers in the layout made for 40 mm ones: the riser's 80 mm box is seen over a 3 mm strip
+    of marker 3's black square (test_markergeom works it out by hand), so its near side is found 3 mm
+    short and its corners 2.2 mm (RMS) off. It is set aside as hidden by raised marker 9's stand."""
+    cell, cal = _demo_shot(60.0)
+    (m3,) = _set_aside(cal).values()
+    assert m3.id == 3 and m3.role is MarkerRole.HIDDEN
+    assert m3.reason.startswith("partly hidden by raised marker 9's stand as the camera sees it (its image covers "
+                                "5 % of the black square)")
+    assert m3.residual_mm == pytest.approx(2.2, abs=0.3)
+    assert len(cal.used) == 7 and cal.rms_mm < 0.1 and cal.verdict == "good"
+
+
+def test_a_stand_over_1_mm_of_the_square_is_hidden_below_the_1_mm_floor_and_one_over_the_quiet_zone_is_kept():
+    """Marker 3 2 mm farther from the riser: the stand's image covers about 1 mm of its square; its corners
+    are 0.8 mm off, under the leave-one-out test's 1 mm floor, which does not apply to a marker a stand
+    covers: hidden, and the fit is as tight as without it. 3 mm farther: the image covers only the quiet
+    zone, the corners fit, and it is kept with a note."""
+    cell, cal = _demo_shot(60.0, marker_3_y_mm=257.0)
+    (m3,) = _set_aside(cal).values()
+    assert m3.id == 3 and m3.role is MarkerRole.HIDDEN
+    assert m3.reason.startswith("partly hidden by raised marker 9's stand as the camera sees it (its image covers 2 %")
+    assert m3.residual_mm == pytest.approx(0.75, abs=0.15)
+    assert cal.rms_mm < 0.1 and len(cal.used) == 7
+    cell, cal = _demo_shot(60.0, marker_3_y_mm=258.0)
+    assert _set_aside(cal) == {} and len(cal.used) == 8 and cal.rms_mm < 0.1
+    (note,) = [n for n in cal.notes if "stand" in n]
+    assert re.fullmatch(r"raised marker 9's stand stands in front of marker 3 as the camera sees it \(its image covers "
+                        r"2\d % of the quiet zone around the black square\); its corners fit \(0\.0\d mm from where the "
+                        r"other markers put them\), kept", note), note
+
+
+def test_40_mm_markers_are_neither_hidden_nor_moved():
+    cell, cal = _demo_shot(40.0)
+    assert _set_aside(cal) == {}
+    assert len(cal.used) == 8 and not any("stand" in n for n in cal.notes)
+
+
+def test_a_marker_moved_by_4_mm_is_moved_beside_one_hidden():
+    """Marker 4 lies 4 mm off its place (nothing in front of it): moved, with the shift the others see;
+    marker 3 stays hidden by the stand. And on the 40 mm layout a 3 mm move of marker 5 is a move."""
+    cell, cal = _demo_shot(60.0, moved={4: (0.0, 4.0)})
+    off = _set_aside(cal)
+    assert sorted(off) == [3, 4]
+    assert off[3].role is MarkerRole.HIDDEN and off[4].role is MarkerRole.MOVED
+    shift = float(re.match(r"moved on the table\? ([0-9.]+) mm from where the other markers put it$", off[4].reason)[1])
+    assert shift == pytest.approx(4.0, abs=0.3)
+    cell, cal = _demo_shot(40.0, moved={5: (0.0, -3.0)})
+    (m5,) = _set_aside(cal).values()
+    assert m5.id == 5 and m5.role is MarkerRole.MOVED and m5.reason == "moved on the table? 3.1 mm from where the other markers put it"
+
+
+def test_a_marker_whose_side_is_cut_short_is_hidden_without_a_stand():
+    """Something over a marker's edge (a part, the arm) and no stand in front of it: the detector finds
+    the edge in view, so two corners come 3 mm in along its sides; its corners no longer make its printed
+    square, and it is hidden, not moved."""
+    cell = _cell()
+    image, cam = _shot(cell, np.random.default_rng(9))
+    dets = detect_markers(image, cell.markers.dictionary)
+    good = calibrate(dets, cell, (1280, 960))
+    m4 = next(m for m in good.markers if m.id == 4)
+    corners_mm = m4.corners_mm[:, :2].copy()
+    inward = (corners_mm[3] - corners_mm[0]) / np.linalg.norm(corners_mm[3] - corners_mm[0])
+    corners_mm[[0, 1]] += 3.0 * inward                                    # top edge covered 3 mm deep
+    cut = [MarkerDetection(d.id, good.mapping.inverse(corners_mm) if d.id == 4 else d.corners_px) for d in dets]
+    cal = calibrate(cut, cell, (1280, 960))
+    (m,) = _set_aside(cal).values()
+    assert m.id == 4 and m.role is MarkerRole.HIDDEN
+    assert m.reason.startswith("partly hidden? its corners do not make its printed 40 mm square (sides 37.0-40.0 mm; ")
+
+
 def test_unknown_and_duplicate_ids_are_ignored_not_fatal():
     cell = _cell()
     image, _ = _shot(cell, np.random.default_rng(10))
@@ -327,6 +418,23 @@ def test_calibrate_command_writes_history_and_never_overwrites_on_failure(tmp_pa
     assert code == 1 and "no aruco_4x4_50 markers found" in err
     assert out.read_text() == before
     assert (tmp_path / "calibration_overlay.png").exists()
+
+
+def test_calibrate_command_says_which_marker_a_stand_hides_and_writes_its_role(tmp_path, capsys):
+    data = sample_cell_data()
+    data["markers"]["size_mm"] = 60
+    (tmp_path / "cell.yaml").write_text(yaml.safe_dump(data, sort_keys=False))
+    cell = parse_cell(data)
+    r = render_scene(cell, Scene(camera=demo_camera_spec(cell), sensor=SensorSpec(), table_seed=3))
+    cv2.imwrite(str(tmp_path / "calibration.png"), r.image_bgr)
+    assert main(["calibrate", str(tmp_path / "calibration.png"), "--cell", str(tmp_path / "cell.yaml")]) == 0
+    printed = capsys.readouterr().out
+    assert ("warning: marker 3 is partly hidden and was left out (partly hidden by raised marker 9's stand as the "
+            "camera sees it") in printed
+    assert "moved on the table" not in printed
+    record = yaml.safe_load((tmp_path / "calibration.yaml").read_text())
+    (m3,) = [m for m in record["markers"] if m["id"] == 3]
+    assert m3["role"] == "hidden" and not m3["used"]
 
 
 def test_markers_of_another_dictionary_are_not_found(tmp_path, capsys):

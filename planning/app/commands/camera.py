@@ -270,10 +270,13 @@ def _print_calibration(cal, out, overlay, moved, layout_ids=()) -> None:
     if cal.verdict == "poor":
         console.print("warning: this calibration is poor: part positions will be off; take a sharper photo with "
                       "every marker in view and calibrate again")
-    moved_markers = [m for m in cal.markers if m.role is MarkerRole.MOVED]
-    for m in moved_markers:
-        console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
-                      "where the cell file says, or update its position")
+    for m in cal.markers:
+        if m.role is MarkerRole.MOVED:
+            console.print(f"warning: marker {m.id} seems to have moved on the table and was left out; put it back "
+                          "where the cell file says, or update its position")
+        elif m.role is MarkerRole.HIDDEN:
+            console.print(f"warning: marker {m.id} is partly hidden and was left out ({m.reason}); clear what is in "
+                          "front of it, or move it where the camera sees all of it")
     if moved is not None:
         console.print(f"the previous calibration was moved to {moved}")
     console.print(f"wrote {out} and {overlay}")

@@ -57,6 +57,32 @@ def validate(cell: Path = typer.Argument(..., help="The cell file to check.")):
         f"{len(cfg.markers.layout)} markers ({raised} raised), {len(cfg.parts)} part classes, "
         f"{len(cfg.bins)} bins; reach at grip height {grip.describe()}")
     _say_shared_colours(cfg)
+    _say_stands_in_front(cfg)
+
+
+def _say_stands_in_front(cfg) -> None:
+    """A warning for each table marker a raised marker's stand will hide from the camera (its image on
+    the table covers the marker's square or quiet zone; :func:`gripsight.vision.markergeom.stands_in_front`),
+    from the cell file alone: the camera at ``camera.centre_mm``, or ``camera.height_mm`` above the middle
+    of the markers. With neither, nothing is assumed here (calibrate names such a marker from the photo)."""
+    from gripsight.vision.markergeom import stands_in_front
+
+    layout = cfg.markers.layout
+    if not any(m.z > 0 for m in layout.values()):
+        return
+    if cfg.camera.centre_mm is not None:
+        centre = list(cfg.camera.centre_mm)
+        where = "camera.centre_mm"
+    elif cfg.camera.height_mm is not None:
+        xs, ys = [m.x for m in layout.values()], [m.y for m in layout.values()]
+        centre = [0.5 * (min(xs) + max(xs)), 0.5 * (min(ys) + max(ys)), float(cfg.camera.height_mm)]
+        where = f"a camera {cfg.camera.height_mm:g} mm (camera.height_mm) above the markers' middle"
+    else:
+        return
+    for o in stands_in_front(layout, cfg.markers.size_mm, cfg.markers.margin_mm, centre):
+        typer.echo(f"warning: markers.layout.{o.marker_id}: raised marker {o.stand_id}'s stand will stand in front of "
+                   f"it as seen from {where} ({o.describe()}); calibration will set it aside if its corners are off: "
+                   f"move one of them apart", err=True)
 
 
 def _shape_words(cls) -> str:
