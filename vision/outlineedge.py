@@ -57,6 +57,7 @@ _PIXEL_EDGE_PX = 0.5     # a pixel-centre outline lies half a pixel inside its r
 _MORE_PASSES = 6         # profiles centred again on the edge found, at most this many times ...
 _SETTLED_PX = 0.05       # ... while the edge still moves more than this
 _MAX_MOVE_PX = 1.0       # a pass that moves an edge further found another edge: the previous place stays
+_FLAT = 0.05             # a profile's end is level when its two samples differ by less than this of the step
 
 
 def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tuple[list[np.ndarray], list[np.ndarray]]:
@@ -68,18 +69,21 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
     lengths = np.cumsum([len(o) for o in outlines_px])[:-1]
     pts = np.concatenate(outlines_px).astype(float)
     normals = np.concatenate(outlines_geometry([np.asarray(o, float) for o in outlines_px])[2])
-    e, clear, near, far = _edge_offsets(image_bgr, pts, normals)
+    e, clear, near, far, flat = _edge_offsets(image_bgr, pts, normals)
     # then again with each profile centred on the edge just found, until it stays: from a mask outline a
     # pixel or more inside the edge the far plateau lies in the blur, which pulls the area's edge inward;
     # centred on the edge, the two plateaus lie in the blur alike and the area finds the step itself
-    moving = np.flatnonzero(clear)
+    moving = np.flatnonzero(clear & ~flat)          # a profile whose two ends are level spans the blur: exact
+    last = e[moving]
     for _ in range(_MORE_PASSES):
         if not len(moving):
             break
-        step, clear_again, _, _ = _edge_offsets(image_bgr, pts[moving] + e[moving, None] * normals[moving], normals[moving])
+        step, clear_again, _, _, _ = _edge_offsets(image_bgr, pts[moving] + e[moving, None] * normals[moving], normals[moving])
         ok = clear_again & (np.abs(step) < _MAX_MOVE_PX)
         e[moving[ok]] += step[ok]
-        moving = moving[ok & (np.abs(step) > _SETTLED_PX)]
+        # on until it moves less than 0.05 px, or turns back (it is at the edge within the photo's noise)
+        on = ok & (np.abs(step) > _SETTLED_PX) & (step * last > 0)
+        moving, last = moving[on], step[on]
     offset = np.where(clear, e, _PIXEL_EDGE_PX)
     shaded = np.zeros(len(pts), bool)
     darker = np.flatnonzero(clear & (far.sum(axis=1) < near.sum(axis=1)))
@@ -89,7 +93,7 @@ def edge_outlines_px(image_bgr: np.ndarray, outlines_px: list[np.ndarray]) -> tu
 
 def _edge_offsets(image_bgr: np.ndarray, pts: np.ndarray, normals: np.ndarray):
     """Per point (N, 2 px) and unit normal: the edge's offset along the normal (px), whether the profile
-    shows a clear step, and the two sides' levels (N, 3 codes each)."""
+    shows a clear step, the two sides' levels (N, 3 codes each), and whether both ends are level."""
     h, w = image_bgr.shape[:2]
     s = np.arange(-_REACH_PX, _REACH_PX + 1e-9, _STEP_PX).astype(np.float32)
     map_u = (pts[:, 0, None] + s * normals[:, 0, None]).astype(np.float32)        # (N, S)
@@ -99,7 +103,8 @@ def _edge_offsets(image_bgr: np.ndarray, pts: np.ndarray, normals: np.ndarray):
     # (N, S, 3) codes, bilinear (OpenCV's 1/32 px weights; the area sums 7 samples, so rounding to
     # whole codes moves an edge by well under 0.01 px); a profile leaving the photo reads its border
     values = cv2.remap(image_bgr, map_u, map_v, cv2.INTER_LINEAR, borderMode=cv2.BORDER_REPLICATE).astype(np.float32)
-    near, far = values[:, :_PLATEAU].mean(axis=1), values[:, -_PLATEAU:].mean(axis=1)
+    near = sum(values[:, i] for i in range(_PLATEAU)) * (1.0 / _PLATEAU)      # (N, 3); sums of columns are
+    far = sum(values[:, -1 - i] for i in range(_PLATEAU)) * (1.0 / _PLATEAU)   # faster than mean over a short axis
     step = far - near                                                              # (N, 3)
     size2 = np.einsum("nc,nc->n", step, step)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -107,9 +112,12 @@ def _edge_offsets(image_bgr: np.ndarray, pts: np.ndarray, normals: np.ndarray):
     # a step at e: the integral of (1 - t) over the profile (0 near .. 1 far) is e + reach
     inner = np.clip(1.0 - t, 0.0, 1.0)
     e = _STEP_PX * (inner.sum(axis=1) - 0.5 * (inner[:, 0] + inner[:, -1])) - _REACH_PX
-    brighter = np.maximum(near.max(axis=1), far.max(axis=1))
+    both = np.maximum(near, far)
+    brighter = np.maximum(np.maximum(both[:, 0], both[:, 1]), both[:, 2])
     clear = inside_photo & (size2 >= (_MIN_CONTRAST * brighter) ** 2) & (np.abs(e) < _REACH_PX - 1.0)
-    return e, clear, near, far
+    # both ends level (their two samples within 5 % of the step of each other): the blur ends inside the profile
+    flat = (np.abs(t[:, 1] - t[:, 0]) < _FLAT) & (np.abs(t[:, -1] - t[:, -2]) < _FLAT)
+    return e, clear, near, far, flat
 
 
 def _shading_step(near: np.ndarray, far: np.ndarray) -> np.ndarray:

@@ -134,16 +134,23 @@ def _shape_residuals(point_sets, round_, half):
         pts[i, :len(p)], mask[i, :len(p)] = p, 1.0
     px, py, mask = pts[None, ..., 0].transpose(1, 0, 2), pts[None, ..., 1].transpose(1, 0, 2), mask[:, None, :]
     hx, hy = half[:, 0, None, None], half[:, 1, None, None]
+    any_round, all_round = bool(np.any(round_)), bool(np.all(round_))
     round_ = round_[:, None, None]
 
     def residual(p):
         dx, dy = px - p[..., 0:1], py - p[..., 1:2]
+        scale = p[..., 3:4]
+        if all_round:
+            return (np.sqrt(dx * dx + dy * dy) - scale * hx) * mask
         c, sn = np.cos(p[..., 2:3]), np.sin(p[..., 2:3])
-        qx = np.abs(dx * c + dy * sn) - p[..., 3:4] * hx
-        qy = np.abs(dy * c - dx * sn) - p[..., 3:4] * hy
+        qx = np.abs(dx * c + dy * sn) - scale * hx
+        qy = np.abs(dy * c - dx * sn) - scale * hy
         ox, oy = np.maximum(qx, 0.0), np.maximum(qy, 0.0)          # (np.hypot is slow)
-        box = np.where((qx > 0) | (qy > 0), np.sqrt(ox * ox + oy * oy), np.maximum(qx, qy))
-        return np.where(round_, np.sqrt(dx * dx + dy * dy) - p[..., 3:4] * hx, box) * mask
+        # outside: the distance to the nearest corner or side; inside: minus the distance to the nearest side
+        box = np.sqrt(ox * ox + oy * oy) + np.minimum(np.maximum(qx, qy), 0.0)
+        if any_round:
+            box = np.where(round_, np.sqrt(dx * dx + dy * dy) - scale * hx, box)
+        return box * mask
 
     return residual, mask[:, 0, :]
 
@@ -168,10 +175,11 @@ def fit_top_faces(problems: list[TopFaceProblem]) -> list:
     scale off k by more than 15 %, or a median residual over 0.4 mm), else (top face centre in
     table-mapped mm, unit vector of the footprint's first axis, fitted scale). The centre and axis are
     those of :func:`place_top_faces` (the face at its known size); the scale is the free fit's."""
-    return place_top_faces(problems, [s.fit for s in score_top_faces(problems)])
+    scores, outer = _score_top_faces(problems)
+    return place_top_faces(problems, [s.fit for s in scores], outer)
 
 
-def place_top_faces(problems: list[TopFaceProblem], fits: list) -> list:
+def place_top_faces(problems: list[TopFaceProblem], fits: list, outer: dict | None = None) -> list:
     """Each held fit (as :func:`score_top_faces` gives it; None stays None) with its centre and axis
     fitted again to the same outer outline, the top face now at its known size: the class's footprint
     scaled by k (the camera's height and the class's height give k; the cell gives the footprint).
@@ -182,12 +190,14 @@ def place_top_faces(problems: list[TopFaceProblem], fits: list) -> list:
     is seen. At its known size the face can only move to fit. Measured on the outside set (nominal
     photos), pick-point RMS 0.151 -> about 0.06 mm with the edges of :mod:`vision.outlineedge`; a part
     printed 0.2 mm over its nominal size moves its estimate by about 0.1 mm along the camera's radial.
-    The fitted scale stays in the result (it is the measured size, which the reports give)."""
+    The fitted scale stays in the result (it is the measured size, which the reports give). ``outer``
+    (problem index -> its outer outline points) saves finding them again."""
     held = [i for i, f in enumerate(fits) if f is not None]
     out = list(fits)
     if not held:
         return out
-    sets = [_outer_points(problems[i], problems[i].centre) for i in held]
+    outer = outer or {}
+    sets = [outer[i] if i in outer else _outer_points(problems[i], problems[i].centre) for i in held]
     residual, _ = _shape_residuals(sets, np.array([problems[i].round for i in held]),
                                    np.array([problems[i].half_mm for i in held], float))
     k = np.array([problems[i].k for i in held])[:, None, None]
@@ -196,7 +206,7 @@ def place_top_faces(problems: list[TopFaceProblem], fits: list) -> list:
         return residual(np.concatenate([p, np.broadcast_to(k, p.shape[:2] + (1,))], axis=-1))
 
     starts = np.array([[fits[i][0][0], fits[i][0][1], np.arctan2(fits[i][1][1], fits[i][1][0])] for i in held])
-    x, _ = robust_lm(at_known_size, starts, _SOFT_L1_MM)
+    x, _ = robust_lm(at_known_size, starts, _SOFT_L1_MM, iterations=2)      # from the free fit's place: two steps (equal figures to four)
     for i, params in zip(held, x):
         yaw = 0.0 if problems[i].round else params[2]
         out[i] = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), fits[i][2])
@@ -216,19 +226,25 @@ class TopFaceScore:
 
 def score_top_faces(problems: list[TopFaceProblem]) -> list[TopFaceScore]:
     """:func:`fit_top_faces` with the figures its verdict rests on, per problem (all fitted together)."""
+    return _score_top_faces(problems)[0]
+
+
+def _score_top_faces(problems: list[TopFaceProblem]) -> tuple[list[TopFaceScore], dict]:
+    """:func:`score_top_faces`, and each fitted problem's outer outline points (index -> (N, 2))."""
     nan = float("nan")
     results = [TopFaceScore(None, nan, nan)] * len(problems)
-    rows, starts, sets = [], [], []
+    rows, starts, sets, outer = [], [], [], {}
     for i, p in enumerate(problems):
         pts = _outer_points(p, p.centre)
         if len(pts) < 12:
             continue
+        outer[i] = pts
         for yaw in ([0.0] if p.round else [p.yaw_guess_deg, p.yaw_guess_deg + 45.0]):
             rows.append(i)
             starts.append([p.centre[0], p.centre[1], np.radians(yaw), p.k])
             sets.append(pts)
     if not rows:
-        return results
+        return results, outer
     x, r, mask = _fit(sets, [problems[i] for i in rows], np.array(starts))
     cost = soft_l1(r, _SOFT_L1_MM)
     median = masked_median(np.abs(r), mask > 0)
@@ -244,7 +260,7 @@ def score_top_faces(problems: list[TopFaceProblem]) -> list[TopFaceScore]:
             yaw = 0.0 if problems[i].round else params[2]
             fit = (params[:2].copy(), np.array([np.cos(yaw), np.sin(yaw)]), float(params[3]))
         results[i] = TopFaceScore(fit, float(median[j]), ratio)
-    return results
+    return results, outer
 
 
 def _fit(point_sets, problems, starts):
