@@ -6,7 +6,7 @@ Every corner of every marker lying on the table is a correspondence (photo pixel
    raised markers (they serve the camera centre, not the table plane).
 2. ``H_table_from_pixel`` is fitted jointly with the lens (Fitzgibbon's division model when the cell asks
    ``lens: estimate``) by ``scipy.optimize.least_squares`` on the table-mm residuals, starting from the
-   normalised DLT. A marker that the fit of the others puts more than 1 mm and 5x their typical residual
+   normalised DLT (:mod:`vision.tablefit`). A marker that the fit of the others puts more than 1 mm and 5x their typical residual
    from its place is left out, and the fit is repeated. Why it is off is then read from its corners:
    through the others' fit they still make its printed square (a rigid move: it has *moved* on the
    table), or they do not (a side short, a corner off: something stands in front of it, it is *hidden*).
@@ -29,11 +29,11 @@ import numpy as np
 
 from gripsight.vision.camerapose import fit_pinhole
 from gripsight.vision.errors import CalibrationError
-from gripsight.vision.homography import FitFailure, TableMapping, apply_homography, fit_homography_dlt, normalising_transform
-from gripsight.vision.lens import DivisionLens, NoLens
+from gripsight.vision.homography import FitFailure, TableMapping
 from gripsight.vision.settings import LensMode
 from gripsight.vision.markers import MarkerDetection
 from gripsight.vision.markergeom import marker_paper_corners_mm, stands_in_front
+from gripsight.vision.tablefit import fit_table_mapping, fit_used_markers, marker_residuals_mm
 
 __all__ = ["Calibration", "CalibrationError", "MarkerFit", "MarkerRole", "CentreSource", "Verdict", "calibrate",
            "camera_centre_from_raised", "VERDICTS"]
@@ -148,114 +148,25 @@ def _table_markers(detections: list[MarkerDetection], cell):
     return fits
 
 
-def _check_geometry(fits: list[MarkerFit], photo: str) -> None:
-    used = [f for f in fits if f.used]
-    if len(used) < 3:
-        found = ", ".join(str(f.id) for f in fits) or "none"
-        raise CalibrationError(f"{photo}: {len(used)} usable table marker(s) found (ids: {found}); at least 3 "
-                               "not in a line are needed; check that the markers are in view, lit and in focus")
-    centres = np.array([f.corners_mm[:, :2].mean(axis=0) for f in used])
-    sv = np.linalg.svd(centres - centres.mean(axis=0), compute_uv=False)
-    if sv[1] < 0.08 * sv[0]:
-        ids = ", ".join(str(f.id) for f in used)
-        raise CalibrationError(f"{photo}: the usable markers ({ids}) lie nearly in a line; the mapping across "
-                               "the table would be unreliable; make sure markers on both sides of the work area are seen")
-
-
-def _fit(uv, xy, lens_kind: str, image_size, fixed_lens=None, start=None):
-    """Least-squares fit from photo pixels to table mm; returns (mapping, residual vectors (N, 2) mm).
-
-    ``lens_kind``: ``fixed`` (H only, through ``fixed_lens`` or none), ``division`` (H and lambda, centre
-    at the image centre) or ``division_centre`` (H, lambda and the distortion centre; started from
-    ``start``, a division fit).
-    """
-    w, h = image_size
-    base = fixed_lens if fixed_lens is not None else DivisionLens.for_image(0.0, w, h)
-    if start is not None:
-        base = start.lens
-    ideal0 = base.ideal(uv) if (fixed_lens is not None or start is not None) else uv
-    T_px, T_mm = normalising_transform(ideal0), normalising_transform(xy)
-    Hn0 = T_mm @ fit_homography_dlt(ideal0, xy) @ np.linalg.inv(T_px)
-    Hn0 = Hn0 / Hn0[2, 2]
-    free_lens = lens_kind in ("division", "division_centre")
-    free_centre = lens_kind == "division_centre"
-    centre0 = np.asarray(base.centre_px, float) if free_lens else None
-
-    def lens_of(params):
-        if not free_lens:
-            return None
-        centre = centre0 + (params[9:11] * base.scale_px if free_centre else 0.0)
-        return DivisionLens(params[8], tuple(centre), base.scale_px)
-
-    def residual(params):
-        Hn = np.append(params[:8], 1.0).reshape(3, 3)
-        ideal = lens_of(params).ideal(uv) if free_lens else ideal0
-        pred = apply_homography(np.linalg.inv(T_mm) @ Hn @ T_px, ideal)
-        return (pred - xy).ravel()
-
-    A_mm = np.linalg.inv(T_mm)
-    q_px = np.column_stack([ideal0, np.ones(len(ideal0))]) @ T_px.T        # (N, 3) normalised pixels
-
-    def jacobian(params):
-        """d residual / d Hn[:8] for a fixed lens, in closed form: z = A Hn q, pred = z[:2] / z[2]."""
-        Hn = np.append(params[:8], 1.0).reshape(3, 3)
-        z = q_px @ (A_mm @ Hn).T                                           # (N, 3)
-        inv_w = 1.0 / z[:, 2]
-        d_pred_dz = np.zeros((len(z), 2, 3))
-        d_pred_dz[:, 0, 0] = d_pred_dz[:, 1, 1] = inv_w
-        d_pred_dz[:, :, 2] = -z[:, :2] * (inv_w ** 2)[:, None]
-        G = d_pred_dz @ A_mm                                               # (N, 2, 3): d pred / d (Hn q)
-        J = G[:, :, :, None] * q_px[:, None, None, :]                      # (N, 2, 3 rows of Hn, 3 columns)
-        return J.reshape(2 * len(z), 9)[:, :8]
-
-    x0 = Hn0.ravel()[:8]
-    if free_lens:
-        x0 = np.append(x0, [base.lam if start is not None else 0.0] + ([0.0, 0.0] if free_centre else []))
-    from scipy.optimize import least_squares     # 0.5 s to import: only when fitting
-
-    sol = least_squares(residual, x0, jac="2-point" if free_lens else jacobian, method="lm",
-                        xtol=1e-15, ftol=1e-15, gtol=1e-15, max_nfev=3000)
-    Hn = np.append(sol.x[:8], 1.0).reshape(3, 3)
-    H = np.linalg.inv(T_mm) @ Hn @ T_px
-    lens = lens_of(sol.x) if free_lens else (fixed_lens or NoLens())
-    return TableMapping(H / H[2, 2], lens), sol.fun.reshape(-1, 2)
-
-
-def _marker_residuals(mapping: TableMapping, fits: list[MarkerFit]) -> np.ndarray:
-    """RMS table-mm residual of each marker's corners under a mapping."""
-    return np.array([np.sqrt(((mapping(f.corners_px) - f.corners_mm[:, :2]) ** 2).sum(axis=1).mean()) for f in fits])
-
-
-def _fit_used(fits, lens_kind, image_size, fixed_lens, photo):
-    used = [f for f in fits if f.used]
-    _check_geometry(fits, photo)
-    uv = np.concatenate([f.corners_px for f in used])
-    xy = np.concatenate([f.corners_mm[:, :2] for f in used])
-    try:
-        return _fit(uv, xy, lens_kind, image_size, fixed_lens)
-    except FitFailure as exc:
-        raise CalibrationError(f"{photo}: {exc}") from None
-
-
 def _fit_with_outliers(fits, lens_kind, image_size, fixed_lens, photo):
     """Fit, then test the worst marker against a fit of the others (leave one out): if the others
     predict it more than 1 mm and 5x their own typical residual away, it is set aside (moved or hidden:
     :func:`_why_off`); repeat."""
     while True:
-        mapping, res = _fit_used(fits, lens_kind, image_size, fixed_lens, photo)
+        mapping, res = fit_used_markers(fits, lens_kind, image_size, fixed_lens, photo)
         used = [f for f in fits if f.used]
         if len(used) <= 4:
             return mapping, res
-        worst = used[int(np.argmax(_marker_residuals(mapping, used)))]
+        worst = used[int(np.argmax(marker_residuals_mm(mapping, used)))]
         worst.used = False
         try:
-            others, _ = _fit_used(fits, lens_kind, image_size, fixed_lens, photo)
+            others, _ = fit_used_markers(fits, lens_kind, image_size, fixed_lens, photo)
         except CalibrationError:
             worst.used = True
             return mapping, res
         rest = [f for f in fits if f.used]
-        predicted = float(_marker_residuals(others, [worst])[0])
-        typical = float(np.median(_marker_residuals(others, rest)))
+        predicted = float(marker_residuals_mm(others, [worst])[0])
+        typical = float(np.median(marker_residuals_mm(others, rest)))
         if predicted > max(_MOVED_MIN_MM, _OUTLIER_FACTOR * typical):
             worst.role, worst.reason = _why_off(worst, others, typical)
             continue
@@ -306,10 +217,10 @@ def _left_out_mm(fits: list[MarkerFit], fit: MarkerFit, mapping: TableMapping, i
     uv = np.concatenate([f.corners_px for f in rest])
     xy = np.concatenate([f.corners_mm[:, :2] for f in rest])
     try:
-        others, _ = _fit(uv, xy, "fixed", image_size, fixed_lens=mapping.lens)
+        others, _ = fit_table_mapping(uv, xy, "fixed", image_size, fixed_lens=mapping.lens)
     except (FitFailure, ValueError):
         return 0.0, np.inf
-    return float(_marker_residuals(others, [fit])[0]), float(np.median(_marker_residuals(others, rest)))
+    return float(marker_residuals_mm(others, [fit])[0]), float(np.median(marker_residuals_mm(others, rest)))
 
 
 def _stands_in_front(fits: list[MarkerFit], cell, centre_mm: np.ndarray, mapping: TableMapping, image_size,
@@ -460,7 +371,7 @@ def _calibrate(detections, cell, image_size, photo, lens, behind: set[int]) -> t
                 uv_u = np.concatenate([f.corners_px for f in used])
                 xy_u = np.concatenate([f.corners_mm[:, :2] for f in used])
                 try:
-                    moved, res_c = _fit(uv_u, xy_u, "division_centre", image_size, start=mapping)
+                    moved, res_c = fit_table_mapping(uv_u, xy_u, "division_centre", image_size, start=mapping)
                 except (FitFailure, ValueError):
                     moved = None
                 if moved is not None:
