@@ -21,7 +21,7 @@ from enum import Enum
 from pathlib import Path
 
 from gripsight.app.fileio import child_folder, output_dir, remove_leftover_temps, strict_json, write_text_atomic
-from gripsight.app.workers import start_workers, stop_workers, worker_start
+from gripsight.app.workers import start_workers, stop_pool, worker_start
 
 __all__ = ["BatchJob", "BatchInterrupted", "Pictures", "SAMPLE_EVERY", "process_photo", "run_batch"]
 
@@ -280,9 +280,7 @@ def run_batch(folder, cell_path, calibration_path, out, workers: int = 1, schedu
             # go must not leave them behind or print a trace
             previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
             try:
-                pool.terminate()
-                pool.join()
-                stop_workers()
+                stop_pool(pool)
             finally:
                 signal.signal(signal.SIGINT, previous)
             raise BatchInterrupted(len(rows), len(photos)) from None

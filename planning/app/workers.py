@@ -12,7 +12,7 @@ import sys
 import threading
 import time
 
-__all__ = ["start_workers", "stop_workers", "worker_start"]
+__all__ = ["start_workers", "stop_workers", "stop_pool", "worker_start"]
 
 
 def stop_workers() -> None:
@@ -37,6 +37,24 @@ def stop_workers() -> None:
     server._forkserver_pid = server._forkserver_alive_fd = server._forkserver_address = None
 
 
+_POOL_STOP_S = 5.0      # the pool's own stop gets this long; then the fork server goes, and its workers with it
+
+
+def stop_pool(pool) -> None:
+    """Stop a pool of :func:`start_workers`'s workers now, and never wait on it for ever: the pool's own stop
+    (each worker asked to unwind: a write in progress removes its temporary file) runs in a thread for at
+    most ``_POOL_STOP_S``; if it has not ended by then, the fork server is killed, which ends its workers
+    (PR_SET_PDEATHSIG on Linux, each worker's watchdog elsewhere) and so every wait of the pool's stop.
+    Seen once in about eighty Ctrl-C trials: the pool's stop waiting for ever on a worker that stayed in
+    its wait for the task queue's lock, the batch with it."""
+    stopping = threading.Thread(target=lambda: (pool.terminate(), pool.join()), name="gripsight-pool-stop",
+                                daemon=True)
+    stopping.start()
+    stopping.join(_POOL_STOP_S)
+    stop_workers()
+    stopping.join(_POOL_STOP_S)
+
+
 def worker_start(parent_pid: int) -> None:
     """In each worker: Ctrl-C is the parent's to handle (it stops the pool), and the worker ends when
     the batch process ends, however it ends (kill -9 included): on Linux the kernel kills it when its
@@ -57,7 +75,18 @@ def worker_start(parent_pid: int) -> None:
             if os.getppid() != ppid or not _alive(parent_pid):
                 os._exit(1)
 
-    threading.Thread(target=watch, name="gripsight-parent-watch", daemon=True).start()
+    # the watchdog thread never takes the pool's SIGTERM: Python runs a handler in the main thread only, and a
+    # signal the kernel hands to another thread does not wake the main thread from its wait on the task queue's
+    # lock (which the pool's stop holds). The thread starts with the signals blocked (a new thread inherits the
+    # mask), then they are unblocked here
+    stop_signals = {signal.SIGTERM, signal.SIGINT}
+    if hasattr(signal, "pthread_sigmask"):
+        signal.pthread_sigmask(signal.SIG_BLOCK, stop_signals)
+    try:
+        threading.Thread(target=watch, name="gripsight-parent-watch", daemon=True).start()
+    finally:
+        if hasattr(signal, "pthread_sigmask"):
+            signal.pthread_sigmask(signal.SIG_UNBLOCK, stop_signals)
 
 
 def _exit_on_term(signum, frame) -> None:
