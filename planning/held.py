@@ -32,7 +32,7 @@ from gripsight.planning.errors import Problem
 from gripsight.planning.targets import PartTarget
 
 __all__ = ["Obstacle", "PickHeights", "footprint_outline_mm", "static_obstacles", "part_obstacle",
-           "touching_parts", "TOUCH_DEPTH_MM", "pick_heights", "class_carry_problems"]
+           "pick_heights", "class_carry_problems"]
 
 _ROUND_SIDES = 8     # a circle as the regular 8-gon around it (conservative: contains the circle)
 
@@ -123,29 +123,6 @@ def pick_heights(cell, height_mm: float, bin_name: str, tallest_other_mm: float)
     carry = max(m.safe_z_mm, hang + clearance + _carry_floor_mm(cell, tallest_other_mm), release)
     approach = max(m.safe_z_mm, height_mm + clearance)
     return PickHeights(float(approach), float(height_mm - m.grip_depth_mm), float(carry), float(release), hang)
-
-
-TOUCH_DEPTH_MM = 1.0     # footprints overlapping less deeply than this are parts touching (see touching_parts)
-
-
-def touching_parts(parts: list[PartTarget]) -> np.ndarray:
-    """(P, P) bool: part i's footprint overlaps part j's, by less than ``TOUCH_DEPTH_MM`` (i's footprint
-    shrunk by that on every side is apart from j's). Two solid parts cannot overlap: footprints that do by
-    so little are parts standing against each other, placed with the photo's errors (pick points within
-    0.5 mm at p95 on photos of another renderer, a footprint's yaw within a degree: 0.2 mm at a 22 mm
-    cube's corner). The straight rise off the table cannot hit a part it stands against, since it does
-    not move across the table; the carry after it still clears every part's top. A deeper overlap is no
-    such pair (one part on another, or a detection gone wrong) and stays an obstacle to the rise."""
-    n = len(parts)
-    out = np.zeros((n, n), bool)
-    full = [footprint_outline_mm(p.length_mm, p.width_mm, p.yaw_deg, p.round) + np.asarray(p.xy_mm, float) for p in parts]
-    shrunk = [footprint_outline_mm(max(p.length_mm - 2 * TOUCH_DEPTH_MM, 1e-3), max(p.width_mm - 2 * TOUCH_DEPTH_MM, 1e-3),
-                                   p.yaw_deg, p.round) + np.asarray(p.xy_mm, float) for p in parts]
-    for i in range(n):
-        for j in range(n):
-            if i != j:
-                out[i, j] = (not _separated_xy(full[i][None], full[j])[0]) and bool(_separated_xy(shrunk[i][None], full[j])[0])
-    return out
 
 
 def _separated_xy(held_xy: np.ndarray, outline: np.ndarray) -> np.ndarray:

@@ -22,9 +22,9 @@ from gripsight.planning.cellcheck import cell_problems
 from gripsight.planning.checks import (Check, CheckContext, Rejection, first_failing_sample, first_failing_segment,
                                        grip_fit_rejection)
 from gripsight.planning.errors import CellProblems
-from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights, touching_parts,
+from gripsight.planning.held import (PickHeights, footprint_outline_mm, part_obstacle, pick_heights,
                                      static_obstacles)
-from gripsight.planning.heldcheck import HeldSpec, ObstacleSet, held_part_failure
+from gripsight.planning.heldcheck import HeldSpec, ObstacleSet, held_part_failure, touching_parts
 from gripsight.planning.motion import SampledSegment, Segment, SegmentKind, timed_samples
 from gripsight.planning.ordering import order_nearest_two_opt
 from gripsight.planning.pickmoves import straight_segments, transfer_segments
@@ -185,7 +185,7 @@ class Planner:
             if mask is None:
                 mask = present.copy()
                 mask[index[part.id]] = False
-            # the rise off its place (straight up) cannot hit the parts it stands against (held.touching_parts)
+            # the rise off its place (straight up) cannot hit the parts it stands against (heldcheck.touching_parts)
             seg_mask = mask & ~self._touching[part.id] if floor is None else mask
             base = float(np.arctan2(part.xy_mm[1], part.xy_mm[0]))
             specs.append(HeldSpec(part, part.height_mm - m.grip_depth_mm, m.grip_depth_mm, base, floor,

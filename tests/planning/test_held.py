@@ -10,7 +10,8 @@ import pytest
 from gripsight.app.cellfile import parse_cell
 from gripsight.planning.arm import Arm
 from gripsight.planning.cellcheck import cell_problems
-from gripsight.planning.held import _separated_xy, footprint_outline_mm, touching_parts
+from gripsight.planning.held import _separated_xy, footprint_outline_mm
+from gripsight.planning.heldcheck import touching_parts
 from gripsight.planning.picks import Planner
 from gripsight.planning.targets import PartTarget
 from tests.conftest import sample_cell_data
@@ -121,7 +122,7 @@ def test_parts_standing_against_each_other_are_lifted_but_one_part_on_another_is
     # two 22 mm cubes face to face: centres 22 mm apart in truth, seen 21.99 mm apart (a photo's error),
     # a 0.01 mm overlap of their footprints. Solids cannot overlap, so they touch: the straight rise off
     # the table slides along the neighbour's face (plane geometry) and both are planned. Seen 19 mm apart
-    # (a 3 mm overlap, deeper than held.TOUCH_DEPTH_MM) they are no such pair: the rise would go through
+    # (a 3 mm overlap, deeper than heldcheck.TOUCH_DEPTH_MM) they are no such pair: the rise would go through
     # the other part, which stays an obstacle (its top 22 + 2 mm clearance).
     cell = _cell(22.0)
     for gap_mm, planned in ((21.99, ["planned", "planned"]), (19.0, ["rejected", "rejected"])):
